@@ -1,0 +1,115 @@
+"""Opening and auditing the key: the unsealing gate, and rebuilding a round from its secret.
+
+``unseal_round`` writes key.json only when every laboratory's results are in
+the ledger (or when forced with a recorded reason) and checks that its SHA-256
+equals the fingerprint published before shipping. ``verify_round`` rebuilds
+the round from the spec and the key's secret and names every unit that differs,
+so anyone can check that the key was not edited after the results came in.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from planner import plan, seal
+from planner.errors import LedgerError, SealError, Where
+
+if TYPE_CHECKING:
+    from planner.ledger import Ledger
+    from planner.spec import Study
+
+__all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict"]
+
+
+def missing_labs(study: Study, ledger: Ledger, round_id: str) -> list[str]:
+    """Return the laboratories of a round whose results have not been received, in spec order."""
+    received = {e.detail.get("lab") for e in ledger.events(round_id, "received")}
+    return [lab.id for lab in study.laboratories if lab.id not in received]
+
+
+def check_gate(study: Study, ledger: Ledger, round_id: str, *, force: bool = False,
+               reason: str | None = None) -> list[str]:
+    """Return the laboratories still missing; raise LedgerError if the key may not open yet."""
+    if ledger.current_round(round_id) is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder")
+    if ledger.round_status(round_id) in ("unsealed", "evaluated"):
+        raise LedgerError(f"round {round_id!r} is already unsealed; key.json is in its folder")
+    missing = missing_labs(study, ledger, round_id)
+    if missing and not force:
+        raise LedgerError(f"results are still missing from {', '.join(missing)}; the key opens "
+                          "when every laboratory has reported (or use --force --reason TEXT)")
+    if force and missing and not (reason and reason.strip()):
+        raise LedgerError("--force needs --reason TEXT saying why the key is opened early; "
+                          "the reason is recorded in the ledger")
+    return missing
+
+
+def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
+                 passphrase: str, force: bool = False, reason: str | None = None) -> Path:
+    """Decrypt the key, write key.json (owner-only) and record the event; return its path.
+
+    Raises LedgerError while results are missing (unless ``force`` with a
+    ``reason``) and SealError for a wrong passphrase, a damaged file or a key
+    that does not match its fingerprint.
+    """
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    missing = check_gate(study, ledger, round_id, force=force, reason=reason)
+    key = seal.open_key(folder, passphrase)
+    if key.get("round") != round_id or key.get("study") != study.id:
+        raise SealError(f"the sealed key belongs to study {key.get('study')!r} round "
+                        f"{key.get('round')!r}, not to this round", Where(str(folder)))
+    key_json = seal.canonical(key)
+    if seal.fingerprint(key_json) != manifest["fingerprint"]:
+        raise SealError("the key does not match the fingerprint in the manifest",
+                        Where(str(folder / plan.MANIFEST_NAME)))
+    target = folder / seal.KEY_NAME
+    seal.write_private(target, key_json)
+    with ledger.transaction():
+        ledger.record_event(round_id, "unsealed", {
+            "fingerprint": manifest["fingerprint"], "forced": bool(force and missing),
+            "reason": reason if force and missing else None, "missing": missing})
+    return target
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    fingerprint_ok: bool
+    units_checked: int
+    differences: tuple[str, ...]
+
+    @property
+    def ok(self) -> bool:
+        return self.fingerprint_ok and not self.differences
+
+
+def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger) -> Verdict:
+    """Check key.json against the fingerprint and rebuild the round from its secret.
+
+    Returns a Verdict listing every unit whose code, material, kind,
+    laboratory, trial or position differs between the key and the rebuild.
+    """
+    folder = plan.round_dir(study_dir, round_id)
+    path = folder / seal.KEY_NAME
+    try:
+        key_json = path.read_bytes()
+    except OSError:
+        raise SealError("the key has not been unsealed yet; run 'ringplan unseal' first",
+                        Where(str(path))) from None
+    manifest = plan.read_manifest(folder)
+    fingerprint_ok = seal.fingerprint(key_json) == manifest["fingerprint"]
+    try:
+        key = json.loads(key_json)
+        secret = bytes.fromhex(key["secret"])
+        host = str(key["host"])
+    except (ValueError, KeyError, TypeError):
+        raise SealError("key.json is not a readable ringplan key", Where(str(path))) from None
+    current = ledger.current_round(round_id)
+    taken = ledger.codes(before_row=current.row) if current else set()
+    rebuilt = plan.build_units(study, host=host, secret=secret, taken=taken)
+    found = plan.units_from_key(key)
+    return Verdict(fingerprint_ok, len(found), tuple(plan.compare_units(rebuilt, found)))

@@ -1,0 +1,278 @@
+"""The ringplan command line: parse arguments, call one library function, print.
+
+Heavy libraries are imported inside the commands so that ``ringplan --help``
+answers at once. A PlannerError is printed as one line on stderr with exit
+status 2; anything else is a bug and keeps its traceback (locals hidden, so a
+crash never shows a secret or a passphrase).
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import sys
+from collections.abc import Callable
+from datetime import date
+from pathlib import Path
+from typing import Annotated, Any, TypeVar
+
+import typer
+
+from planner.errors import PlannerError, SealError
+
+app = typer.Typer(
+    name="ringplan",
+    help="Plan, blind, print and evaluate interlaboratory comparison rounds.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_show_locals=False,
+    rich_markup_mode=None,
+)
+
+_F = TypeVar("_F", bound=Callable[..., Any])
+
+StudyDir = Annotated[Path, typer.Argument(help="The study folder (holds study.yaml).")]
+RoundOpt = Annotated[str, typer.Option("--round", help="The round id, e.g. 2027-1.")]
+PassFile = Annotated[Path | None, typer.Option(
+    "--passphrase-file", help="Read the key passphrase from this file (first line). "
+    "Otherwise RINGPLAN_PASSPHRASE, otherwise a hidden prompt.")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of tables.")]
+
+
+def _fail(message: str) -> None:
+    typer.echo(f"error: {message}", err=True)
+
+
+def _command(func: _F) -> _F:
+    """Turn a PlannerError into one line on stderr and exit status 2."""
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return func(*args, **kwargs)
+        except PlannerError as exc:
+            for line in str(exc).splitlines():
+                _fail(line)
+            raise typer.Exit(2) from None
+    return wrapper  # type: ignore[return-value]
+
+
+def _passphrase(path: Path | None, *, confirm: bool) -> str:
+    """Return the passphrase from the file, the environment, or a hidden prompt."""
+    if path is not None:
+        try:
+            lines = path.read_text(encoding="utf-8").splitlines()
+        except OSError as exc:
+            raise SealError(f"cannot read the passphrase file ({exc.strerror.lower()})",
+                            _where(path)) from None
+        if not lines or not lines[0].strip():
+            raise SealError("the passphrase file is empty; put the passphrase on its first line",
+                            _where(path))
+        return lines[0].strip()
+    env = os.environ.get("RINGPLAN_PASSPHRASE")
+    if env:
+        return env
+    if not sys.stdin.isatty():
+        raise SealError("no passphrase given; use --passphrase-file FILE or set "
+                        "RINGPLAN_PASSPHRASE (no terminal to ask at)")
+    return str(typer.prompt("Key passphrase", hide_input=True, confirmation_prompt=confirm))
+
+
+def _where(path: Path) -> Any:
+    from planner.errors import Where
+
+    return Where(str(path))
+
+
+def _console() -> Any:
+    from rich.console import Console
+
+    return Console(highlight=False)
+
+
+def _table(title: str, columns: list[str], rows: list[list[Any]]) -> Any:
+    from rich.table import Table
+
+    table = Table(title=title, title_justify="left", title_style="bold", header_style="bold")
+    for col in columns:
+        table.add_column(col, justify="right" if col.startswith(("#", "units", "amount")) else "left")
+    for row in rows:
+        table.add_row(*("" if v is None else str(v) for v in row))
+    return table
+
+
+def _print_json(data: Any) -> None:
+    typer.echo(json.dumps(data, indent=2, ensure_ascii=False, default=str))
+
+
+def _load(study_dir: Path) -> Any:
+    from planner import spec
+
+    return spec.load(study_dir)
+
+
+# --- commands ------------------------------------------------------------------
+
+@app.command()
+@_command
+def new(folder: Annotated[Path, typer.Argument(help="A new study folder to create.")]) -> None:
+    """Write a new study folder with a fully commented study.yaml to edit."""
+    from planner.resources import template_path
+
+    target = folder / "study.yaml"
+    if target.exists():
+        raise PlannerError(f"{target} already exists; edit it, or choose a new folder")
+    folder.mkdir(parents=True, exist_ok=True)
+    text = template_path("study.yaml").read_text(encoding="utf-8")
+    tmp = target.with_name(".study.yaml.tmp")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(target)
+    typer.echo(f"wrote {target}; edit it, then run: ringplan check {folder}")
+
+
+@app.command()
+@_command
+def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
+    """Validate study.yaml and show the units to prepare and the proposed next host."""
+    from planner import overview
+
+    study = _load(study_dir)
+    info = overview.summarize(study, study_dir)
+    if as_json:
+        _print_json(info)
+        return
+    con = _console()
+    con.print(f"[bold]{info['title']}[/bold]  ({info['study']})")
+    con.print(f"measurand: {info['measurand']} [{info['unit']}]   design: "
+              f"{info['design']['trials']} trials, {info['design']['run_order']} run order, "
+              f"{info['design']['mode']} samples")
+    con.print(_table("Laboratories", ["id", "name", "country", "can host", "decimal", "hosted"],
+                     [[lab["id"], lab["name"], lab["country"], "yes" if lab["can_host"] else "no",
+                       lab["decimal"], lab["hosted"]] for lab in info["laboratories"]]))
+    con.print(_table(
+        "Units to prepare per material",
+        ["material", "description", "test", "spare", "retained", "homog.", "units",
+         "amount / unit", "amount total", "stable (days)", "hazard"],
+        [[m["id"], m["description"], m["test"], m["spare"], m["retained"], m["homogeneity"],
+          m["units"], f"{m['amount_per_unit']:g} {m['amount_unit']}",
+          f"{m['total_amount']:g} {m['amount_unit']}", m["stability_days"], m["hazard"] or ""]
+         for m in info["materials"]]))
+    con.print(f"units in total: {info['units_total']} ({info['units_per_material']} per material)")
+    nxt = info["next_host"]
+    con.print(f"proposed next host: [bold]{nxt['host']}[/bold] — {nxt['reason']}")
+    _print_schedule(con, info["schedule"])
+    con.print("study spec is valid")
+
+
+def _print_schedule(con: Any, dates: dict[str, Any]) -> None:
+    con.print(f"prepare on {dates['prepare_on']}; all laboratories test {dates['test_start']} "
+              f"to {dates['test_end']}; results due {dates['results_due']}")
+    con.print(_table("Shipping", ["laboratory", "ship", "arrive", "transit (working days)"],
+                     [[lab, d["ship"], d["arrive"], d["transit_days"]]
+                      for lab, d in dates["labs"].items()]))
+
+
+@app.command()
+@_command
+def plan(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    host: Annotated[str | None, typer.Option(help="The host laboratory (default: the "
+                                             "rotation's proposal).")] = None,
+    receive_by: Annotated[str | None, typer.Option(
+        "--receive-by", help="Date (YYYY-MM-DD) by which every parcel must have arrived.")] = None,
+    replace: Annotated[bool, typer.Option(
+        help="Plan an existing round again (only if nothing was printed or received).")] = False,
+    passphrase_file: PassFile = None,
+) -> None:
+    """Draw codes and run orders for a round, seal the key, write the round folder."""
+    from planner import calendar, draw, overview, rotation, spec
+    from planner import plan as planning
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    if not spec.slug_ok(round_id):
+        raise PlannerError(f"--round {round_id!r} is not a usable round id; use letters, digits, "
+                           "'-', '_' or '.', e.g. 2027-1")
+    when = _date_option("--receive-by", receive_by)
+    if host is None:
+        host = rotation.propose(study, overview.past_rounds(study, study_dir), rounds=1,
+                                first_date=when)[0].host
+    elif host not in {lab.id for lab in study.laboratories}:
+        raise PlannerError(f"--host {host!r} is not a laboratory of this study; known: "
+                           + ", ".join(lab.id for lab in study.laboratories))
+    elif not study.lab(host).can_host:
+        raise PlannerError(f"--host {host!r} cannot host (can_host is false in study.yaml)")
+    dates = calendar.schedule_round(study, host, receive_by=when)
+    calendar.check_stability(study, dates)
+    passphrase = _passphrase(passphrase_file, confirm=True)
+    with Ledger.open(study_dir) as ledger:
+        taken = ledger.codes()
+        result = planning.plan_round(study, round_id=round_id, host=host, dates=dates,
+                                     secret=draw.new_secret(), taken=taken)
+        folder = planning.write_round(study, study_dir, result, ledger, passphrase=passphrase,
+                                      replace=replace)
+    con = _console()
+    con.print(f"planned round {round_id} of {study.id}: host {host}, "
+              f"{len(result.units)} units, {len(study.laboratories)} laboratories")
+    _print_schedule(con, dates.to_json())
+    con.print(f"fingerprint {result.fingerprint}")
+    con.print(f"wrote {folder}")
+    con.print("keep the passphrase safe: without it the key cannot be opened")
+
+
+def _date_option(name: str, value: str | None) -> date | None:
+    if value is None:
+        return None
+    try:
+        return date.fromisoformat(value)
+    except ValueError:
+        raise PlannerError(f"{name} {value!r} is not a date; write YYYY-MM-DD") from None
+
+
+@app.command()
+@_command
+def unseal(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    force: Annotated[bool, typer.Option(help="Open the key although results are missing.")] = False,
+    reason: Annotated[str | None, typer.Option(help="Why the key is opened early "
+                                               "(recorded in the ledger).")] = None,
+    passphrase_file: PassFile = None,
+) -> None:
+    """Open the sealed key once every laboratory has reported; check its fingerprint."""
+    from planner import audit
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    with Ledger.open(study_dir) as ledger:
+        audit.check_gate(study, ledger, round_id, force=force, reason=reason)
+        passphrase = _passphrase(passphrase_file, confirm=False)
+        path = audit.unseal_round(study, study_dir, round_id, ledger, passphrase=passphrase,
+                                  force=force, reason=reason)
+    typer.echo(f"wrote {path}; its SHA-256 equals key.fingerprint")
+
+
+@app.command()
+@_command
+def verify(study_dir: StudyDir, round_id: RoundOpt) -> None:
+    """Check key.json against the fingerprint and rebuild the round from its secret."""
+    from planner import audit
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    with Ledger.open(study_dir) as ledger:
+        verdict = audit.verify_round(study, study_dir, round_id, ledger)
+    if not verdict.fingerprint_ok:
+        _fail("key.json: its SHA-256 does not equal the fingerprint published before shipping")
+    for line in verdict.differences:
+        _fail(line)
+    if not verdict.ok:
+        raise typer.Exit(1)
+    typer.echo(f"round {round_id}: fingerprint matches and all {verdict.units_checked} units "
+               "rebuild from the secret exactly")
+
+
+def main() -> None:
+    """Entry point of the ``ringplan`` console script."""
+    app()

@@ -1,0 +1,78 @@
+"""What `check` shows: the study at a glance, the units to prepare, the next host.
+
+Built from the spec and the ledger's past rounds, returned as plain data so the
+CLI can print it as tables or as JSON.
+"""
+
+from __future__ import annotations
+
+from datetime import date
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import design
+
+if TYPE_CHECKING:
+    from planner.spec import Study
+
+__all__ = ["past_rounds", "summarize"]
+
+
+def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, date]]:
+    """Return (round, host, date) of every earlier round: the spec's history, then the ledger's."""
+    out = [(p.round, p.host, p.date) for p in study.history]
+    if study_dir is None or not (Path(study_dir) / "ledger.sqlite").exists():
+        return out
+    from planner.ledger import Ledger
+
+    known = {r for r, _, _ in out}
+    with Ledger.open(study_dir) as ledger:
+        for row in ledger.rounds():
+            if row.round in known:
+                continue
+            when = row.dates.get("test_start") or row.dates.get("prepare_on")
+            out.append((row.round, row.host, date.fromisoformat(when)))
+    return sorted(out, key=lambda r: r[2])
+
+
+def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
+    """Return the study summary: laboratories, materials with unit counts and amounts, next host."""
+    from planner import calendar, rotation
+
+    d = study.design
+    counts = design.unit_counts(labs=len(study.laboratories), trials=d.trials,
+                                spares=d.spares_per_lab, retained=d.retained_by_host,
+                                homogeneity=d.homogeneity_units)
+    materials = []
+    for m in study.materials:
+        materials.append({
+            "id": m.id, "description": m.description, "measurand": study.study.measurand,
+            "unit": study.study.unit, "test": counts.test, "spare": counts.spare,
+            "retained": counts.retained, "homogeneity": counts.homogeneity,
+            "units": counts.total, "amount_per_unit": m.amount, "amount_unit": m.amount_unit,
+            "total_amount": round(m.amount * counts.total, 6), "stability_days": m.stability_days,
+            "hazard": m.hazard.word if m.hazard else None,
+        })
+    past = past_rounds(study, study_dir)
+    proposals = rotation.propose(study, past, rounds=1)
+    host = proposals[0].host
+    dates = calendar.schedule_round(study, host)
+    return {
+        "study": study.id,
+        "title": study.study.title,
+        "measurand": study.study.measurand,
+        "unit": study.study.unit,
+        "laboratories": [{"id": lab.id, "name": lab.name, "country": lab.country,
+                          "can_host": lab.can_host, "decimal": lab.decimal,
+                          "hosted": sum(1 for _, h, _ in past if h == lab.id)}
+                         for lab in study.laboratories],
+        "materials": materials,
+        "units_per_material": counts.total,
+        "units_total": counts.total * len(study.materials),
+        "design": {"mode": d.mode, "trials": d.trials, "run_order": d.run_order,
+                   "spares_per_lab": d.spares_per_lab, "retained_by_host": d.retained_by_host,
+                   "homogeneity_units": d.homogeneity_units},
+        "past_rounds": [{"round": r, "host": h, "date": w.isoformat()} for r, h, w in past],
+        "next_host": {"host": host, "reason": proposals[0].reason},
+        "schedule": dates.to_json(),
+    }

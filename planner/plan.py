@@ -1,0 +1,285 @@
+"""Assemble a round: units, codes and run orders from a Study and a secret, and write it.
+
+``plan_round`` is pure: the same study, round, host, dates and secret give the
+same RoundPlan on any machine. ``write_round`` puts it on disk and in the
+ledger as one step: the files go to a hidden folder first, the ledger rows go
+in one transaction, and the folder is renamed into place just before the
+commit, so a failure part-way leaves neither a round folder nor ledger rows.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import secrets
+import shutil
+from collections.abc import Iterable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes, design, draw, seal
+from planner.errors import LedgerError, SealError, Where
+
+if TYPE_CHECKING:
+    from planner.calendar import RoundDates
+    from planner.ledger import Ledger
+    from planner.spec import Study
+
+__all__ = [
+    "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
+    "write_round", "round_dir", "read_manifest", "units_from_key", "compare_units",
+    "FORM_COLUMNS", "MANIFEST_NAME", "KINDS",
+]
+
+MANIFEST_NAME = "manifest.json"
+KINDS = ("test", "spare", "retained", "homogeneity")
+FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
+_KEY_FORMAT = "ringplan-key/1"
+
+
+@dataclass(frozen=True, slots=True)
+class Unit:
+    code: str
+    material: str
+    kind: str
+    lab: str
+    trial: int | None
+    position: int | None
+
+
+@dataclass(frozen=True, slots=True)
+class RoundPlan:
+    study_id: str
+    round_id: str
+    host: str
+    secret: bytes
+    salt: bytes
+    units: tuple[Unit, ...]
+    dates: RoundDates
+    fingerprint: str
+
+
+def _slots(study: Study) -> list[tuple[str, int]]:
+    return [(lab.id, t) for lab in study.laboratories for t in range(1, study.design.trials + 1)]
+
+
+def build_units(study: Study, *, host: str, secret: bytes,
+                taken: Iterable[str] = ()) -> tuple[Unit, ...]:
+    """Return every unit of a round (tests, spares, retained, homogeneity) with codes and positions.
+
+    Codes come from the secret's "codes" stream in a fixed unit order; run orders
+    from its "orders" stream through ``design.run_orders``.
+    """
+    d = study.design
+    material_ids = [m.id for m in study.materials]
+    orders = design.run_orders(material_ids, _slots(study), scheme=d.run_order,
+                               stream=draw.Stream(secret, "orders"))
+    skeleton: list[tuple[str, str, str, int | None, int | None]] = []
+    for material in material_ids:
+        for lab in study.laboratories:
+            for trial in range(1, d.trials + 1):
+                position = orders[(lab.id, trial)].index(material) + 1
+                skeleton.append((material, "test", lab.id, trial, position))
+        for lab in study.laboratories:
+            skeleton += [(material, "spare", lab.id, None, None)] * d.spares_per_lab
+        skeleton += [(material, "retained", host, None, None)] * d.retained_by_host
+        skeleton += [(material, "homogeneity", host, None, None)] * d.homogeneity_units
+    drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken))
+    return tuple(Unit(code, *rest) for code, rest in zip(drawn, skeleton, strict=True))
+
+
+def plan_round(study: Study, *, round_id: str, host: str, dates: RoundDates, secret: bytes,
+               taken: Iterable[str] = ()) -> RoundPlan:
+    """Return the RoundPlan of ``round_id`` hosted by ``host``, drawn from ``secret``."""
+    units = build_units(study, host=host, secret=secret, taken=taken)
+    salt = draw.Stream(secret, "salt").token(16)
+    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "")
+    return RoundPlan(study.id, round_id, host, secret, salt, units, dates,
+                     seal.fingerprint(seal.canonical(key_of(plan))))
+
+
+def key_of(plan: RoundPlan) -> dict[str, Any]:
+    """Return the decoding key of a plan as a JSON-ready dict, units sorted by code."""
+    return {
+        "format": _KEY_FORMAT,
+        "study": plan.study_id,
+        "round": plan.round_id,
+        "host": plan.host,
+        "secret": plan.secret.hex(),
+        "salt": plan.salt.hex(),
+        "units": [{"code": u.code, "material": u.material, "kind": u.kind, "lab": u.lab,
+                   "trial": u.trial, "position": u.position}
+                  for u in sorted(plan.units, key=lambda u: u.code)],
+    }
+
+
+def units_from_key(key: dict[str, Any]) -> tuple[Unit, ...]:
+    """Return the units written in a decoded key, sorted by code."""
+    try:
+        return tuple(sorted((Unit(str(u["code"]), str(u["material"]), str(u["kind"]), str(u["lab"]),
+                                  u["trial"], u["position"]) for u in key["units"]),
+                            key=lambda u: u.code))
+    except (KeyError, TypeError):
+        raise SealError("the key has no readable list of units") from None
+
+
+def compare_units(expected: Iterable[Unit], found: Iterable[Unit]) -> list[str]:
+    """Return one line per unit that differs between a rebuilt round and a key (empty if equal)."""
+    want = {u.code: u for u in expected}
+    have = {u.code: u for u in found}
+    out = []
+    for code in sorted(want.keys() | have.keys()):
+        a, b = want.get(code), have.get(code)
+        shown = codes.format(code) if codes.is_valid(code) else repr(code)
+        if a is None:
+            out.append(f"unit {shown}: in the key but not in the rebuilt round")
+        elif b is None:
+            out.append(f"unit {shown}: in the rebuilt round but missing from the key")
+        else:
+            diffs = [f"{f} is {getattr(b, f)!r}, rebuilt {getattr(a, f)!r}"
+                     for f in ("material", "kind", "lab", "trial", "position")
+                     if getattr(a, f) != getattr(b, f)]
+            if diffs:
+                out.append(f"unit {shown}: " + "; ".join(diffs))
+    return out
+
+
+def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
+    """Return the public manifest: per laboratory its codes by trial in run order, no materials."""
+    dates = plan.dates.to_json()
+    labs: dict[str, Any] = {}
+    for lab in study.laboratories:
+        trials = []
+        for trial in range(1, study.design.trials + 1):
+            run = sorted((u for u in plan.units if u.kind == "test" and u.lab == lab.id
+                          and u.trial == trial), key=lambda u: u.position or 0)
+            trials.append([u.code for u in run])
+        spares = sorted(u.code for u in plan.units if u.kind == "spare" and u.lab == lab.id)
+        labs[lab.id] = {"trials": trials, "spares": spares, **dates["labs"].get(lab.id, {})}
+    return {
+        "format": "ringplan-manifest/1",
+        "study": study.id,
+        "title": study.study.title,
+        "round": plan.round_id,
+        "host": plan.host,
+        "measurand": study.study.measurand,
+        "unit": study.study.unit,
+        "fingerprint": plan.fingerprint,
+        "run_order": study.design.run_order,
+        "trials": study.design.trials,
+        "dates": {k: v for k, v in dates.items() if k != "labs"},
+        "labs": labs,
+        "host_units": {kind: sorted(u.code for u in plan.units if u.kind == kind)
+                       for kind in ("retained", "homogeneity")},
+    }
+
+
+def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str) -> str:
+    """Return the text of a laboratory's blank result form.
+
+    Identity lines start with '#'; laboratories that write a decimal comma get
+    ';' as the separator, as spreadsheets in those locales expect.
+    """
+    lab = study.lab(lab_id)
+    sep = ";" if lab.decimal == "comma" else ","
+    out = io.StringIO()
+    for key, value in (("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
+                       ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
+                       ("decimal", lab.decimal), ("measurand", study.study.measurand),
+                       ("results due", manifest["dates"].get("results_due", ""))):
+        out.write(f"# {key}: {value}\n")
+    out.write(f"# fill in value (decimal {lab.decimal}, no thousands separator), optional expanded "
+              "uncertainty (k = 2), date (YYYY-MM-DD), analyst; leave value empty and say why "
+              "in remarks if a test failed\n")
+    writer = csv.writer(out, delimiter=sep, lineterminator="\n")
+    writer.writerow(FORM_COLUMNS)
+    for trial, run in enumerate(manifest["labs"][lab_id]["trials"], start=1):
+        for position, code in enumerate(run, start=1):
+            writer.writerow([trial, position, codes.format(code), "", "", "", "", ""])
+    return out.getvalue()
+
+
+def round_dir(study_dir: Path, round_id: str) -> Path:
+    """Return the folder of a round inside a study folder."""
+    return Path(study_dir) / "rounds" / round_id
+
+
+def read_manifest(folder: Path) -> dict[str, Any]:
+    """Return a round's manifest; raise LedgerError if the round has not been planned."""
+    path = Path(folder) / MANIFEST_NAME
+    try:
+        return dict(json.loads(path.read_text(encoding="utf-8")))
+    except FileNotFoundError:
+        raise LedgerError(f"round {Path(folder).name!r} has not been planned; run "
+                          "'ringplan plan' first", Where(str(path))) from None
+    except ValueError:
+        raise LedgerError("the manifest is not valid JSON; it was edited by hand",
+                          Where(str(path))) from None
+
+
+def _write(path: Path, text: str) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(text, encoding="utf-8")
+
+
+def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, *,
+                passphrase: str, replace: bool = False, _fail_after_files: bool = False) -> Path:
+    """Write a planned round's folder and ledger rows as one step; return the round folder.
+
+    Refuses (LedgerError) to overwrite a round unless ``replace`` and the round
+    has been neither printed nor received. ``_fail_after_files`` is a test hook
+    that raises after every file is written, to prove nothing is left behind.
+    """
+    target = round_dir(study_dir, plan.round_id)
+    current = ledger.current_round(plan.round_id)
+    if current is not None or target.exists():
+        status = ledger.round_status(plan.round_id)
+        if not replace:
+            raise LedgerError(f"round {plan.round_id!r} is already planned (status: "
+                              f"{status or 'folder exists'}); choose a new round id, or add "
+                              "--replace if nothing has been printed or received")
+        if status not in (None, "planned"):
+            raise LedgerError(f"round {plan.round_id!r} has been {status}; it cannot be "
+                              "re-planned, plan a new round id instead")
+    manifest = manifest_of(study, plan)
+    key_json = seal.canonical(key_of(plan))
+    sealed = seal.seal_key(key_json, passphrase)
+    staging = target.parent / f".{plan.round_id}.{secrets.token_hex(4)}.staging"
+    retired = target.parent / f".{plan.round_id}.{secrets.token_hex(4)}.replaced"
+    moved_old = placed = False
+    try:
+        staging.mkdir(parents=True)
+        _write(staging / MANIFEST_NAME, json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
+        seal.write_private(staging / seal.SEALED_NAME, sealed)
+        _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
+        for lab in study.laboratories:
+            _write(staging / "labs" / lab.id / "result-form.csv",
+                   result_form_csv(study, manifest, lab.id))
+        with ledger.transaction():
+            ledger.add_round(
+                study=study.id, round_id=plan.round_id, host=plan.host,
+                fingerprint=plan.fingerprint, dates=manifest["dates"],
+                units=[(u.code, u.lab, u.kind, u.trial, u.position) for u in plan.units],
+                replaces=current.row if current else None)
+            ledger.record_event(plan.round_id, "planned",
+                                {"fingerprint": plan.fingerprint, "host": plan.host,
+                                 "units": len(plan.units), "replaced": current is not None})
+            if _fail_after_files:
+                raise RuntimeError("injected failure after the files were written")
+            if target.exists():
+                os.rename(target, retired)
+                moved_old = True
+            os.rename(staging, target)
+            placed = True
+    except BaseException:
+        if placed:
+            shutil.rmtree(target, ignore_errors=True)
+        if moved_old:
+            os.rename(retired, target)
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    shutil.rmtree(retired, ignore_errors=True)
+    return target

@@ -1,0 +1,236 @@
+"""Page sizes, fonts, colours, margins and the running header and footer of every document.
+
+Our look: black text on white, one accent colour for titles and rules, a
+grey for secondary text, wide margins and air between sections. Codes are
+set in a monospaced bold face so that 0/O and 1/I are told apart at a glance
+(the code alphabet has no O, I or L, but readers do not know that). Every page
+of a document names the study and the round in the header and ends with
+"page N of M"; host documents carry a confidentiality line in the header.
+
+Only the 14 standard PDF fonts are used (nothing to embed, small files); they
+cover Latin-1, which is enough for the names and addresses of our studies.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+__all__ = [
+    "ACCENT", "INK", "MUTED", "RULE", "FONT", "BOLD", "MONO", "MONO_REGULAR",
+    "page_size", "styles", "Running", "build", "write_atomic", "fit_text", "wrap_words",
+    "rounded_box", "check_box",
+]
+
+ACCENT = "#1d5c63"
+"""The one accent colour (a deep blue-green) for titles, rules and marks."""
+INK = "#1a1a1a"
+MUTED = "#6b6b6b"
+RULE = "#c9cfd1"
+FONT = "Helvetica"
+BOLD = "Helvetica-Bold"
+MONO = "Courier-Bold"
+MONO_REGULAR = "Courier"
+
+_MM = 72.0 / 25.4
+_MARGIN_SIDE = 20 * _MM
+_MARGIN_TOP = 27 * _MM
+_MARGIN_BOTTOM = 20 * _MM
+
+
+def page_size(paper: str) -> tuple[float, float]:
+    """Return (width, height) in points of "A4" (ISO 216, 210 x 297 mm) or "letter" (8.5 x 11 in)."""
+    if paper == "A4":
+        return 210 * _MM, 297 * _MM
+    if paper == "letter":
+        return 8.5 * 72, 11 * 72
+    raise ValueError(f"unknown paper {paper!r}")
+
+
+def styles() -> dict[str, Any]:
+    """Return the paragraph styles of our documents by name."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.lib.styles import ParagraphStyle
+
+    body = ParagraphStyle("body", fontName=FONT, fontSize=9.5, leading=13.5,
+                          textColor=HexColor(INK))
+    return {
+        "body": body,
+        "title": ParagraphStyle("title", parent=body, fontName=BOLD, fontSize=19, leading=23,
+                                textColor=HexColor(ACCENT), spaceAfter=3 * _MM),
+        "lead": ParagraphStyle("lead", parent=body, fontSize=10.5, leading=15,
+                               spaceAfter=5 * _MM),
+        "h2": ParagraphStyle("h2", parent=body, fontName=BOLD, fontSize=11.5, leading=15,
+                             textColor=HexColor(ACCENT), spaceBefore=7 * _MM,
+                             spaceAfter=2.5 * _MM),
+        "small": ParagraphStyle("small", parent=body, fontSize=8, leading=10.5,
+                                textColor=HexColor(MUTED)),
+        "label": ParagraphStyle("label", parent=body, fontSize=7.5, leading=9.5,
+                                textColor=HexColor(MUTED)),
+        "cell": ParagraphStyle("cell", parent=body, fontSize=9, leading=11.5),
+        "mono": ParagraphStyle("mono", parent=body, fontName=MONO, fontSize=10.5, leading=13),
+        "bullet": ParagraphStyle("bullet", parent=body, leftIndent=5 * _MM, bulletIndent=0,
+                                 spaceAfter=1.2 * _MM),
+    }
+
+
+@dataclass(frozen=True, slots=True)
+class Running:
+    """What the header and footer of every page say."""
+
+    study_id: str
+    study_title: str
+    round_id: str
+    document: str
+    confidential: str = ""
+
+
+def write_atomic(path: Path, write: Callable[[Path], None]) -> Path:
+    """Call ``write`` with a temporary name beside ``path``, then rename it into place; return ``path``."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        write(temp)
+        os.replace(temp, path)
+    finally:
+        if temp.exists():
+            temp.unlink()
+    return path
+
+
+def _numbered_canvas(running: Running) -> type:
+    """Return a canvas class that holds pages back until the end, then stamps "page N of M"."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.pdfgen.canvas import Canvas
+
+    class _Numbered(Canvas):  # type: ignore[misc]
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            kwargs.setdefault("invariant", 1)
+            super().__init__(*args, **kwargs)
+            self._held: list[dict[str, Any]] = []
+
+        def showPage(self) -> None:  # noqa: N802 - reportlab's name
+            self._held.append(dict(self.__dict__))
+            self._startPage()
+
+        def save(self) -> None:
+            total = len(self._held)
+            for number, state in enumerate(self._held, start=1):
+                self.__dict__.update(state)
+                self._stamp(number, total)
+                Canvas.showPage(self)
+            Canvas.save(self)
+
+        def _stamp(self, number: int, total: int) -> None:
+            width, height = self._pagesize
+            top = height - 14 * _MM
+            self.saveState()
+            self.setFillColor(HexColor(INK))
+            self.setFont(BOLD, 8.5)
+            self.drawString(_MARGIN_SIDE, top, running.study_id)
+            gap = self.stringWidth(running.study_id + "  ", BOLD, 8.5)
+            self.setFont(FONT, 8.5)
+            self.setFillColor(HexColor(MUTED))
+            self.drawString(_MARGIN_SIDE + gap, top, f"round {running.round_id}")
+            self.drawRightString(width - _MARGIN_SIDE, top, running.document)
+            if running.confidential:
+                self.setFillColor(HexColor(ACCENT))
+                self.setFont(BOLD, 8)
+                self.drawString(_MARGIN_SIDE, top - 4.2 * _MM, running.confidential)
+            self.setStrokeColor(HexColor(ACCENT))
+            self.setLineWidth(0.6)
+            rule = top - (6.5 if running.confidential else 2.6) * _MM
+            self.line(_MARGIN_SIDE, rule, width - _MARGIN_SIDE, rule)
+            bottom = 11 * _MM
+            self.setStrokeColor(HexColor(RULE))
+            self.setLineWidth(0.4)
+            self.line(_MARGIN_SIDE, bottom + 4 * _MM, width - _MARGIN_SIDE, bottom + 4 * _MM)
+            self.setFillColor(HexColor(MUTED))
+            self.setFont(FONT, 7.5)
+            self.drawString(_MARGIN_SIDE, bottom, fit_text(
+                running.study_title, FONT, 7.5, width - 2 * _MARGIN_SIDE - 30 * _MM))
+            self.drawRightString(width - _MARGIN_SIDE, bottom, f"page {number} of {total}")
+            self.restoreState()
+
+    return _Numbered
+
+
+def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
+          title: str) -> Path:
+    """Lay out ``story`` on pages of ``paper`` with our header and footer; write ``path`` atomically."""
+    from reportlab.platypus import SimpleDocTemplate
+
+    def write(temp: Path) -> None:
+        doc = SimpleDocTemplate(
+            str(temp), pagesize=page_size(paper), leftMargin=_MARGIN_SIDE,
+            rightMargin=_MARGIN_SIDE, topMargin=_MARGIN_TOP + (4 * _MM if running.confidential
+                                                               else 0),
+            bottomMargin=_MARGIN_BOTTOM, title=title, author="ringplan",
+            subject=f"{running.study_id} round {running.round_id}", creator="ringplan")
+        doc.build(list(story), canvasmaker=_numbered_canvas(running))
+
+    return write_atomic(path, write)
+
+
+def fit_text(text: str, font: str, size: float, width: float) -> str:
+    """Return ``text`` cut at a word with an ellipsis so that it is at most ``width`` points wide."""
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    if stringWidth(text, font, size) <= width:
+        return text
+    words = text.split()
+    while words and stringWidth(" ".join(words) + " …", font, size) > width:
+        words.pop()
+    return " ".join(words) + " …"
+
+
+def wrap_words(text: str, font: str, size: float, width: float) -> list[str] | None:
+    """Return ``text`` broken at spaces (or after hyphens) into lines at most ``width`` wide,
+    or None if a single word is wider than that."""
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    words = text.replace("-", "- ").split() if "-" in text else text.split()
+    lines: list[str] = []
+    current = ""
+    for word in words:
+        trial = word if not current else (current + word if current.endswith("-")
+                                          else current + " " + word)
+        if stringWidth(trial, font, size) <= width:
+            current = trial
+            continue
+        if stringWidth(word, font, size) > width:
+            return None
+        lines.append(current)
+        current = word
+    if current:
+        lines.append(current)
+    return lines
+
+
+def rounded_box(canvas: Any, x: float, y: float, width: float, height: float,
+                radius: float) -> None:
+    """Stroke a rectangle with rounded corners (square when ``radius`` is 0)."""
+    if radius > 0:
+        canvas.roundRect(x, y, width, height, radius, stroke=1, fill=0)
+    else:
+        canvas.rect(x, y, width, height, stroke=1, fill=0)
+
+
+def check_box(side: float) -> Any:
+    """Return a flowable empty square, ``side`` points across, to tick by hand."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.platypus import Flowable
+
+    class _Box(Flowable):  # type: ignore[misc]
+        def wrap(self, avail_width: float, avail_height: float) -> tuple[float, float]:
+            return side, side
+
+        def draw(self) -> None:
+            self.canv.setStrokeColor(HexColor(INK))
+            self.canv.setLineWidth(0.7)
+            self.canv.rect(0, 0, side, side, stroke=1, fill=0)
+
+    return _Box()

@@ -1,0 +1,167 @@
+"""The decoding key: canonical JSON, its fingerprint, and sealing with a passphrase.
+
+The key is canonical JSON (sorted keys, no insignificant white space, UTF-8);
+its SHA-256 is the round's fingerprint, printed on every document before
+anything ships. ``key.sealed`` holds the key encrypted with AES-256-GCM under a
+key derived from the passphrase by scrypt (RFC 7914), both from the
+``cryptography`` package. The fingerprint is bound in as associated data, so a
+sealed file cannot be swapped for another round's. A separate verifier derived
+from the passphrase tells a wrong passphrase apart from a damaged file.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import hmac
+import json
+import os
+import secrets
+from pathlib import Path
+from typing import Any
+
+from planner.errors import SealError, Where
+
+__all__ = [
+    "canonical", "fingerprint", "seal_key", "unseal_key", "write_private",
+    "open_key", "read_key_json", "SEALED_NAME", "FINGERPRINT_NAME", "KEY_NAME",
+    "MIN_PASSPHRASE",
+]
+
+SEALED_NAME = "key.sealed"
+FINGERPRINT_NAME = "key.fingerprint"
+KEY_NAME = "key.json"
+MIN_PASSPHRASE = 10
+_FORMAT = "ringplan-sealed/1"
+# scrypt cost: 2**15 x 8 x 1 uses 32 MiB and about 0.1 s, the interactive setting RFC 7914 suggests.
+_SCRYPT = {"n": 2**15, "r": 8, "p": 1}
+
+
+def canonical(key: dict[str, Any]) -> bytes:
+    """Return the canonical JSON bytes of the key (sorted keys, compact, UTF-8)."""
+    return json.dumps(key, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode("utf-8")
+
+
+def fingerprint(key_json: bytes) -> str:
+    """Return the SHA-256 of the canonical key as 64 lower-case hex digits."""
+    return hashlib.sha256(key_json).hexdigest()
+
+
+def _derive(passphrase: str, salt: bytes, params: dict[str, int]) -> tuple[bytes, bytes]:
+    from cryptography.hazmat.primitives.kdf.scrypt import Scrypt
+
+    raw = Scrypt(salt=salt, length=64, n=params["n"], r=params["r"], p=params["p"]).derive(
+        passphrase.encode("utf-8"))
+    return raw[:32], hashlib.sha256(b"ringplan-verifier" + raw[32:]).digest()
+
+
+def seal_key(key_json: bytes, passphrase: str) -> bytes:
+    """Return the sealed file's bytes for ``key_json``; raise SealError for a short passphrase."""
+    from cryptography.hazmat.primitives.ciphers.aead import AESGCM
+
+    if len(passphrase) < MIN_PASSPHRASE:
+        raise SealError(f"the passphrase has {len(passphrase)} characters; use at least "
+                        f"{MIN_PASSPHRASE} (a few unrelated words work well)")
+    salt, nonce = secrets.token_bytes(16), secrets.token_bytes(12)
+    aes_key, verifier = _derive(passphrase, salt, _SCRYPT)
+    print_ = fingerprint(key_json)
+    data = AESGCM(aes_key).encrypt(nonce, key_json, print_.encode("ascii"))
+    doc = {
+        "format": _FORMAT,
+        "kdf": {"name": "scrypt", **_SCRYPT, "salt": salt.hex()},
+        "verifier": verifier.hex(),
+        "cipher": "AES-256-GCM",
+        "nonce": nonce.hex(),
+        "fingerprint": print_,
+        "data": base64.b64encode(data).decode("ascii"),
+    }
+    return (json.dumps(doc, indent=1) + "\n").encode("ascii")
+
+
+def unseal_key(sealed: bytes, passphrase: str, *, name: str = SEALED_NAME) -> bytes:
+    """Return the canonical key JSON inside ``sealed``; raise SealError if it cannot be opened."""
+    from cryptography.exceptions import InvalidTag
+    from cryptography.hazmat.primitives.ciphers.aead import AESGCM
+
+    where = Where(name)
+    try:
+        doc = json.loads(sealed)
+        if doc.get("format") != _FORMAT:
+            raise ValueError
+        kdf = doc["kdf"]
+        salt, nonce = bytes.fromhex(kdf["salt"]), bytes.fromhex(doc["nonce"])
+        data = base64.b64decode(doc["data"], validate=True)
+        params = {k: int(kdf[k]) for k in ("n", "r", "p")}
+        print_ = str(doc["fingerprint"])
+        verifier = bytes.fromhex(doc["verifier"])
+    except (ValueError, KeyError, TypeError, AttributeError):
+        raise SealError("this is not a sealed ringplan key or it is damaged; restore it from "
+                        "your backup", where) from None
+    aes_key, check = _derive(passphrase, salt, params)
+    if not hmac.compare_digest(check, verifier):
+        raise SealError("wrong passphrase for this key; use the passphrase given when the round "
+                        "was planned", where)
+    try:
+        return AESGCM(aes_key).decrypt(nonce, data, print_.encode("ascii"))
+    except InvalidTag:
+        raise SealError("the sealed key has been altered (its authentication tag does not "
+                        "match); restore it from your backup", where) from None
+
+
+def write_private(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` atomically with owner-only permissions (0600)."""
+    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    try:
+        with os.fdopen(fd, "wb") as out:
+            out.write(data)
+            out.flush()
+            os.fsync(out.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def _expected_fingerprint(round_dir: Path) -> str:
+    path = round_dir / FINGERPRINT_NAME
+    try:
+        return path.read_text(encoding="ascii").split()[0].strip().lower()
+    except (OSError, IndexError, UnicodeDecodeError):
+        raise SealError("the round's fingerprint file is missing or unreadable",
+                        Where(str(path))) from None
+
+
+def open_key(round_dir: Path, passphrase: str) -> dict[str, Any]:
+    """Return the decoded key of a round, decrypted in memory; the fingerprint is checked."""
+    path = round_dir / SEALED_NAME
+    try:
+        sealed = path.read_bytes()
+    except OSError:
+        raise SealError("the sealed key is missing", Where(str(path))) from None
+    key_json = unseal_key(sealed, passphrase, name=str(path))
+    expected = _expected_fingerprint(round_dir)
+    if fingerprint(key_json) != expected:
+        raise SealError(f"the key's SHA-256 {fingerprint(key_json)[:16]}... does not equal the "
+                        f"published fingerprint {expected[:16]}...", Where(str(path)))
+    return dict(json.loads(key_json))
+
+
+def read_key_json(round_dir: Path) -> dict[str, Any]:
+    """Return key.json of an unsealed round after checking its SHA-256 against key.fingerprint."""
+    path = round_dir / KEY_NAME
+    try:
+        key_json = path.read_bytes()
+    except OSError:
+        raise SealError("the key has not been unsealed yet; run 'ringplan unseal' first",
+                        Where(str(path))) from None
+    expected = _expected_fingerprint(round_dir)
+    actual = fingerprint(key_json)
+    if actual != expected:
+        raise SealError(f"SHA-256 of key.json is {actual[:16]}..., but the fingerprint "
+                        f"published before shipping is {expected[:16]}...; the key was changed",
+                        Where(str(path)))
+    try:
+        return dict(json.loads(key_json))
+    except ValueError:
+        raise SealError("key.json is not valid JSON", Where(str(path))) from None

@@ -1,0 +1,417 @@
+"""Read study.yaml, check it, and return a frozen Study.
+
+Every problem is reported with the file, the 1-based line and the field path
+(``study.yaml:14: labs[2].id: 'lab-b' is used twice; ids must be unique``), one
+line per problem, all problems at once. Line numbers come from the YAML node
+tree; values are checked by typed pydantic models, then by cross-field rules.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+from datetime import date
+from pathlib import Path
+from typing import Any, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from planner.errors import PlannerError, SpecError, Where
+
+__all__ = [
+    "Study", "StudyInfo", "Lab", "Contact", "Blackout", "Material", "Hazard",
+    "Design", "Schedule", "Transit", "Evaluation", "PastRound",
+    "load", "parse", "SPEC_NAME",
+]
+
+SPEC_NAME = "study.yaml"
+_ID = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,31}$"
+_WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, str_strip_whitespace=True)
+
+
+class StudyInfo(_Model):
+    id: str = Field(pattern=_ID)
+    title: str = Field(min_length=1)
+    measurand: str = Field(min_length=1)
+    unit: str = Field(min_length=1)
+    organiser: str = ""
+    paper: Literal["A4", "letter"] = "A4"
+    label_sheet: str = "a4-3x8-70x37"
+
+
+class Contact(_Model):
+    name: str = Field(min_length=1)
+    email: str = ""
+    phone: str = ""
+
+
+class Blackout(_Model):
+    start: date = Field(alias="from")
+    end: date = Field(alias="to")
+    reason: str = ""
+
+
+class Lab(_Model):
+    id: str = Field(pattern=_ID)
+    name: str = Field(min_length=1)
+    address: tuple[str, ...] = Field(min_length=1)
+    contact: Contact
+    country: str = Field(pattern=r"^[A-Z]{2}$")
+    can_host: bool = False
+    decimal: Literal["point", "comma"] = "point"
+    host_weight: float = Field(default=1.0, gt=0)
+    transit_days: int | None = Field(default=None, ge=0, le=30)
+    joined: date | None = None
+    blackouts: tuple[Blackout, ...] = ()
+
+
+class Hazard(_Model):
+    word: str = Field(min_length=1, max_length=24)
+    note: str = Field(min_length=1)
+
+
+class Material(_Model):
+    id: str = Field(pattern=_ID)
+    description: str = Field(min_length=1)
+    amount: float = Field(gt=0)
+    amount_unit: str = Field(min_length=1)
+    storage: str = Field(min_length=1)
+    stability_days: int = Field(gt=0)
+    hazard: Hazard | None = None
+
+
+class Design(_Model):
+    mode: Literal["split", "circulate"] = "split"
+    trials: int = Field(ge=2, le=20)
+    spares_per_lab: int = Field(default=1, ge=0, le=10)
+    retained_by_host: int = Field(default=0, ge=0)
+    homogeneity_units: int = Field(default=0, ge=0)
+    run_order: Literal["random", "balanced"] = "random"
+
+
+class Transit(_Model):
+    """Transit days between two laboratories (either direction unless the reverse has its own row)."""
+
+    origin: str = Field(alias="from")
+    destination: str = Field(alias="to")
+    days: int = Field(ge=0, le=30)
+
+
+class Schedule(_Model):
+    prepare_on: date | None = None
+    receive_by: date
+    test_window_days: int = Field(ge=1, le=120)
+    reporting_days: int = Field(ge=0, le=120)
+    ship_weekdays: tuple[Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"], ...] = (
+        "mon", "tue", "wed", "thu")
+    transit_days: int = Field(default=2, ge=0, le=30)
+    stability_margin_days: int = Field(default=0, ge=0)
+    round_interval_weeks: int = Field(default=13, ge=1, le=104)
+    transit: tuple[Transit, ...] = ()
+
+
+class Evaluation(_Model):
+    tolerance: float | None = Field(default=None, gt=0)
+    sigma_pt: float | None = Field(default=None, gt=0)
+    assigned_value: Literal["consensus", "reference"] = "consensus"
+    reference_lab: str | None = None
+    pool_alpha: float = Field(default=0.25, gt=0, lt=1)
+
+
+class PastRound(_Model):
+    round: str = Field(pattern=_ID)
+    host: str
+    date: date
+
+
+class Study(_Model):
+    """A validated study: the spec's sections as frozen models with tuples."""
+
+    study: StudyInfo
+    laboratories: tuple[Lab, ...] = Field(min_length=2)
+    materials: tuple[Material, ...] = Field(min_length=2)
+    design: Design
+    schedule: Schedule
+    evaluation: Evaluation = Evaluation()
+    history: tuple[PastRound, ...] = ()
+
+    @property
+    def id(self) -> str:
+        return self.study.id
+
+    def lab(self, lab_id: str) -> Lab:
+        """Return the laboratory with this id (KeyError if none)."""
+        for lab in self.laboratories:
+            if lab.id == lab_id:
+                return lab
+        raise KeyError(lab_id)
+
+    def material(self, material_id: str) -> Material:
+        for material in self.materials:
+            if material.id == material_id:
+                return material
+        raise KeyError(material_id)
+
+    @property
+    def hosts(self) -> tuple[Lab, ...]:
+        return tuple(lab for lab in self.laboratories if lab.can_host)
+
+
+# --- reading -----------------------------------------------------------------
+
+class _Loader(yaml.SafeLoader):
+    """Safe loader that leaves dates as text, so that pydantic checks them
+    (PyYAML would raise on 2027-02-30 before any message could name the line)."""
+
+
+_Loader.yaml_implicit_resolvers = {
+    first: [(tag, rx) for tag, rx in resolvers if tag != "tag:yaml.org,2002:timestamp"]
+    for first, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()
+}
+
+
+def _lines(node: yaml.Node, path: tuple[Any, ...], out: dict[tuple[Any, ...], int]) -> None:
+    """Record the 1-based line of every node, keyed by its path of keys and indexes."""
+    out.setdefault(path, node.start_mark.line + 1)
+    if isinstance(node, yaml.MappingNode):
+        for key, value in node.value:
+            name = key.value
+            out[path + (name,)] = key.start_mark.line + 1
+            out[(*path, name, "<key>")] = key.start_mark.line + 1
+            _lines(value, path + (name,), out)
+    elif isinstance(node, yaml.SequenceNode):
+        for i, item in enumerate(node.value):
+            _lines(item, path + (i,), out)
+
+
+def _field_path(loc: tuple[Any, ...]) -> str:
+    text = ""
+    for part in loc:
+        if isinstance(part, int):
+            text += f"[{part}]"
+        else:
+            text += ("." if text else "") + str(part)
+    return text
+
+
+def load(folder_or_file: Path) -> Study:
+    """Return the Study in a folder (its study.yaml) or file; raise SpecError listing every problem."""
+    path = Path(folder_or_file)
+    if path.is_dir():
+        path = path / SPEC_NAME
+    if not path.is_file():
+        raise SpecError(f"no study spec found; expected a file named {SPEC_NAME!r} "
+                        "(create one with 'ringplan new DIR')", Where(str(path)))
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise SpecError("the file is not UTF-8 text; save it as UTF-8", Where(str(path))) from None
+    return parse(text, name=str(path))
+
+
+def parse(text: str, *, name: str = SPEC_NAME) -> Study:
+    """Return the Study written in YAML ``text``; ``name`` is used in messages."""
+    try:
+        node = yaml.compose(text, Loader=_Loader)
+        raw = yaml.load(text, Loader=_Loader)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        line = mark.line + 1 if mark is not None else None
+        raise SpecError(f"this is not valid YAML: {problem}", Where(name, line)) from None
+    if node is None or not isinstance(raw, dict):
+        raise SpecError("the spec is empty or not a mapping of sections; start from "
+                        "'ringplan new DIR'", Where(name, 1))
+    lines: dict[tuple[Any, ...], int] = {}
+    _lines(node, (), lines)
+
+    def where(loc: tuple[Any, ...]) -> Where:
+        for cut in range(len(loc), -1, -1):
+            if loc[:cut] in lines:
+                return Where(name, lines[loc[:cut]], _field_path(loc) or None)
+        return Where(name, None, _field_path(loc) or None)
+
+    try:
+        study = Study.model_validate(raw)
+    except ValidationError as exc:
+        problems = [PlannerError(_message(err, raw), where(_yaml_loc(err["loc"])))
+                    for err in exc.errors()]
+        raise SpecError(problems[0].message, problems[0].where, problems) from None
+    problems = [PlannerError(msg, where(loc)) for loc, msg in _cross_checks(study)]
+    if problems:
+        raise SpecError(problems[0].message, problems[0].where, problems)
+    return study
+
+
+_ALIASES = {"start": "from", "end": "to", "origin": "from", "destination": "to"}
+
+
+def _yaml_loc(loc: tuple[Any, ...]) -> tuple[Any, ...]:
+    """Turn a pydantic location into the path the user wrote (drop union branch tags)."""
+    out: list[Any] = []
+    for part in loc:
+        if isinstance(part, str) and ("[" in part or part in ("Hazard", "function-after")):
+            continue
+        out.append(_ALIASES.get(part, part) if isinstance(part, str) else part)
+    return tuple(out)
+
+
+def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
+    model: Any = Study
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        field = model.model_fields.get(part)
+        if field is None:
+            return None
+        annotation = field.annotation
+        inner = [a for a in getattr(annotation, "__args__", (annotation,))
+                 if isinstance(a, type) and issubclass(a, BaseModel)]
+        if not inner:
+            args = getattr(annotation, "__args__", ())
+            inner = [a for arg in args for a in getattr(arg, "__args__", ())
+                     if isinstance(a, type) and issubclass(a, BaseModel)]
+        if not inner:
+            return None
+        model = inner[0]
+    return model if isinstance(model, type) else None
+
+
+def _message(err: Any, raw: Any) -> str:
+    kind = err["type"]
+    value = err.get("input")
+    loc = _yaml_loc(err["loc"])
+    ctx = err.get("ctx") or {}
+    if kind == "extra_forbidden":
+        model = _model_at(loc[:-1])
+        known = sorted({f.alias or n for n, f in model.model_fields.items()}) if model else []
+        guess = difflib.get_close_matches(str(loc[-1]), known, n=1)
+        hint = f"; did you mean {guess[0]!r}?" if guess else (
+            f"; known keys here: {', '.join(known)}" if known else "")
+        return f"unknown key {str(loc[-1])!r}{hint}"
+    if kind == "missing":
+        return "is required but missing"
+    if kind in ("int_parsing", "int_type", "int_from_float"):
+        return f"expected a whole number, got {value!r}"
+    if kind in ("float_parsing", "float_type"):
+        return f"expected a number, got {value!r}"
+    if kind in ("bool_parsing", "bool_type"):
+        return f"expected true or false, got {value!r}"
+    if kind.startswith("date") or kind.startswith("datetime"):
+        return f"{value!r} is not a valid date; write a real calendar date as YYYY-MM-DD"
+    if kind == "literal_error":
+        return f"{value!r} is not allowed; use one of {ctx.get('expected', '')}"
+    if kind == "string_pattern_mismatch":
+        if loc and loc[-1] == "country":
+            return f"{value!r} is not a country code; use the two capital letters of ISO 3166 (e.g. 'SE')"
+        return (f"{value!r} is not a usable id; use 1-32 letters, digits, '-', '_' or '.', "
+                "starting with a letter or digit")
+    if kind in ("too_short",):
+        field = str(loc[-1]) if loc else "list"
+        need = {"laboratories": "at least 2 laboratories", "materials": "at least 2 materials"}
+        return f"needs {need.get(field, 'at least ' + str(ctx.get('min_length', 1)) + ' entries')}"
+    if kind == "string_too_short":
+        return "must not be empty"
+    if kind in ("greater_than_equal", "greater_than", "less_than_equal", "less_than"):
+        bound = {"greater_than_equal": ">=", "greater_than": ">", "less_than_equal": "<=",
+                 "less_than": "<"}[kind]
+        limit = next(iter(ctx.values()), "")
+        return f"{value!r} is out of range; it must be {bound} {limit}"
+    if kind in ("model_type", "dict_type"):
+        return f"expected a mapping of keys, got {value!r}"
+    if kind in ("tuple_type", "list_type"):
+        return f"expected a list, got {value!r}"
+    if kind == "string_type":
+        return f"expected text, got {value!r}"
+    return str(err.get("msg", kind)).lower()
+
+
+def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
+    """Return (location, message) for rules that span fields."""
+    out: list[tuple[tuple[Any, ...], str]] = []
+
+    def unique(section: str, items: tuple[Any, ...]) -> None:
+        seen: dict[str, int] = {}
+        for i, item in enumerate(items):
+            key = item.id.lower()
+            if key in seen:
+                out.append(((section, i, "id"), f"{item.id!r} is used twice (first at "
+                            f"{section}[{seen[key]}]); ids must be unique"))
+            else:
+                seen[key] = i
+
+    unique("laboratories", study.laboratories)
+    unique("materials", study.materials)
+    lab_ids = {lab.id: lab for lab in study.laboratories}
+
+    def known(lab_id: str) -> str:
+        guess = difflib.get_close_matches(lab_id, list(lab_ids), n=1)
+        return f"; did you mean {guess[0]!r}?" if guess else (
+            f"; known laboratories: {', '.join(lab_ids)}")
+
+    if not study.hosts:
+        out.append((("laboratories",), "no laboratory can host; set 'can_host: true' on at least one"))
+    for i, lab in enumerate(study.laboratories):
+        for j, b in enumerate(lab.blackouts):
+            if b.end < b.start:
+                out.append((("laboratories", i, "blackouts", j, "to"),
+                            f"ends on {b.end} before it starts on {b.start}"))
+    ev = study.evaluation
+    if ev.reference_lab is not None and ev.reference_lab not in lab_ids:
+        out.append((("evaluation", "reference_lab"),
+                    f"{ev.reference_lab!r} is not a laboratory of this study{known(ev.reference_lab)}"))
+    if ev.assigned_value == "reference" and ev.reference_lab is None:
+        out.append((("evaluation", "reference_lab"),
+                    "is required when assigned_value is 'reference'; name the reference laboratory"))
+    seen_rounds: dict[str, int] = {}
+    for i, past in enumerate(study.history):
+        if past.host not in lab_ids:
+            out.append((("history", i, "host"),
+                        f"{past.host!r} is not a laboratory of this study{known(past.host)}"))
+        elif not lab_ids[past.host].can_host:
+            out.append((("history", i, "host"),
+                        f"{past.host!r} cannot host (can_host is false); correct the host or "
+                        "set can_host: true for that laboratory"))
+        if past.round in seen_rounds:
+            out.append((("history", i, "round"), f"round {past.round!r} is listed twice"))
+        seen_rounds[past.round] = i
+        if i and past.date < study.history[i - 1].date:
+            out.append((("history", i, "date"),
+                        f"{past.date} is earlier than the round before it; list past rounds oldest first"))
+    sched = study.schedule
+    if study.history and sched.receive_by <= study.history[-1].date:
+        out.append((("schedule", "receive_by"),
+                    f"{sched.receive_by} is not after the last past round "
+                    f"({study.history[-1].date}); give the coming round's date"))
+    if sched.prepare_on is not None and sched.prepare_on > sched.receive_by:
+        out.append((("schedule", "prepare_on"),
+                    f"{sched.prepare_on} is after receive_by {sched.receive_by}; "
+                    "material must be prepared before it can arrive"))
+    if len(set(sched.ship_weekdays)) != len(sched.ship_weekdays) or not sched.ship_weekdays:
+        out.append((("schedule", "ship_weekdays"), "list each shipping day once, at least one"))
+    pairs: dict[tuple[str, str], int] = {}
+    for i, row in enumerate(sched.transit):
+        for key, lab_id in (("from", row.origin), ("to", row.destination)):
+            if lab_id not in lab_ids:
+                out.append((("schedule", "transit", i, key),
+                            f"{lab_id!r} is not a laboratory of this study{known(lab_id)}"))
+        if (row.origin, row.destination) in pairs:
+            out.append((("schedule", "transit", i),
+                        f"{row.origin!r} to {row.destination!r} is listed twice (first at "
+                        f"schedule.transit[{pairs[row.origin, row.destination]}])"))
+        pairs.setdefault((row.origin, row.destination), i)
+    d = study.design
+    if d.mode == "split" and d.homogeneity_units == 1:
+        out.append((("design", "homogeneity_units"),
+                    "1 unit cannot show between-unit variation; use 0 or at least 2 (10 is common practice)"))
+    return out
+
+
+def slug_ok(text: str) -> bool:
+    """Return whether ``text`` is a usable id (letters, digits, '-', '_', '.')."""
+    return re.match(_ID, text) is not None

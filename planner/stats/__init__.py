@@ -1,0 +1,406 @@
+"""Statistics of an interlaboratory comparison from a plain long table.
+
+A table is a sequence of records (``Row`` or mappings) with ``material``, ``lab``,
+``trial``, ``value`` and an optional expanded (k = 2) ``uncertainty``. No Study is
+needed, so any CSV in that shape can be evaluated::
+
+    rows = read_long_csv(path)
+    result = evaluate_table(rows, sigma_pt=0.5)
+    text = summary_text(result)
+
+``evaluate_table`` runs every method that the data allow - one-way ANOVA, the gauge
+R&R ANOVA and average-and-range methods (materials as parts, laboratories as
+operators, trials as replicates), ISO 5725-2 precision and ISO 13528 scores - and
+returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}``.
+Importing this package loads no numpy or scipy; the method modules are imported when
+``evaluate_table`` runs.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, fields, is_dataclass
+from pathlib import Path
+from typing import Any
+
+from planner.errors import DataError, Where
+
+__all__ = ["Row", "read_long_csv", "evaluate_table", "summary_text"]
+
+_REQUIRED = ("material", "lab", "trial", "value")
+
+
+@dataclass(frozen=True, slots=True)
+class Row:
+    """One test result: material, laboratory, trial, value, optional U (k = 2), source line."""
+
+    material: str
+    lab: str
+    trial: str
+    value: float
+    uncertainty: float | None = None
+    line: int | None = None
+
+
+def read_long_csv(path: str | Path) -> list[Row]:
+    """Return the rows of a long-format CSV (material, lab, trial, value[, uncertainty]).
+
+    Extra columns are ignored; lines starting with ``#`` and blank lines are skipped.
+    Raises DataError (with file and line) for an unreadable or empty file, a missing
+    column, a short row, an empty or non-numeric value, or a repeated material/lab/trial.
+    """
+    name = str(path)
+    try:
+        text = Path(path).read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise DataError(f"cannot read the file ({exc.strerror or exc})", Where(name)) from None
+    except UnicodeDecodeError:
+        raise DataError("the file is not UTF-8 text; save it as UTF-8 CSV",
+                        Where(name)) from None
+    kept = [(i, ln) for i, ln in enumerate(text.splitlines(), start=1)
+            if ln.strip() and not ln.lstrip().startswith("#")]
+    if not kept:
+        raise DataError("the file is empty; expected a header line "
+                        "'material,lab,trial,value' and one line per result", Where(name, 1))
+    parsed = list(csv.reader([ln for _, ln in kept]))
+    header_line = kept[0][0]
+    header = [h.strip().lower() for h in parsed[0]]
+    for col in _REQUIRED:
+        if col not in header:
+            found = ", ".join(repr(h) for h in header) or "nothing"
+            raise DataError(f"missing column {col!r} (the header has {found}); expected "
+                            "material, lab, trial, value and optionally uncertainty",
+                            Where(name, header_line))
+    pos = {col: header.index(col) for col in _REQUIRED}
+    u_pos = header.index("uncertainty") if "uncertainty" in header else None
+    width = max(pos.values()) + 1
+    if len(kept) == 1:
+        raise DataError("the file has a header but no results", Where(name, header_line))
+    rows: list[Row] = []
+    seen: dict[tuple[str, str, str], int] = {}
+    for (line, _), fields_ in zip(kept[1:], parsed[1:]):
+        if len(fields_) < width:
+            raise DataError(f"expected at least {width} fields, found {len(fields_)}",
+                            Where(name, line))
+        material, lab, trial = (fields_[pos[c]].strip() for c in ("material", "lab", "trial"))
+        for col, val in (("material", material), ("lab", lab), ("trial", trial)):
+            if not val:
+                raise DataError(f"{col} is empty; every result needs a {col}",
+                                Where(name, line, col))
+        value = _number(fields_[pos["value"]], Where(name, line, "value"))
+        unc = None
+        if u_pos is not None and u_pos < len(fields_) and fields_[u_pos].strip():
+            unc = _number(fields_[u_pos], Where(name, line, "uncertainty"))
+            if unc < 0:
+                raise DataError(f"{fields_[u_pos].strip()!r} is negative; an expanded "
+                                "uncertainty is 0 or more", Where(name, line, "uncertainty"))
+        key = (material, lab, trial)
+        if key in seen:
+            raise DataError(f"material {material!r}, lab {lab!r}, trial {trial!r} appears "
+                            f"twice (first on line {seen[key]})", Where(name, line))
+        seen[key] = line
+        rows.append(Row(material, lab, trial, value, unc, line))
+    return rows
+
+
+def _number(text: str, where: Where) -> float:
+    s = text.strip()
+    if not s:
+        raise DataError("is empty; expected a number (remove the line if there is no result)",
+                        where)
+    try:
+        v = float(s)
+    except ValueError:
+        raise DataError(f"{s!r} is not a number; use digits with a decimal point, "
+                        "e.g. 12.5", where) from None
+    if not math.isfinite(v):
+        raise DataError(f"{s!r} is not a finite number", where)
+    return v
+
+
+def _get(row: Any, name: str) -> Any:
+    if type(row) is dict or isinstance(row, Mapping):
+        return row.get(name)
+    return getattr(row, name, None)
+
+
+def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
+                   tolerance: float | None = None,
+                   sigma_pt: float | Mapping[str, float] | None = None,
+                   assigned: str = "consensus", reference_lab: str | None = None,
+                   pool_alpha: float = 0.25,
+                   exclude_labs_for_consensus: Sequence[str] = ()) -> dict[str, Any]:
+    """Return every statistic the table allows as a JSON-ready dict (floats, None for NaN).
+
+    Keys: materials, labs, anova, grr_anova, grr_range, precision, scores (see the module
+    docstring). ``sigma_pt`` is one value for all materials or a mapping by material
+    (missing materials use the robust SD). Raises DataError for an empty table, a row
+    without a field or with a non-finite value, a repeated material/lab/trial, an unknown
+    ``assigned`` method or a ``reference_lab`` that reported nothing.
+    """
+    import numpy as np
+
+    from planner.stats import anova, gauge_rr, iso5725_2, iso13528
+    from planner.stats._common import Skipped
+
+    materials, labs, mat_codes, lab_codes, values, uncs = _columns(rows)
+    if assigned not in ("consensus", "reference"):
+        raise DataError(f"assigned value method {assigned!r} is unknown; "
+                        "use 'consensus' or 'reference'")
+    if assigned == "reference":
+        if reference_lab is None:
+            raise DataError("assigned value 'reference' needs a reference laboratory")
+        if str(reference_lab) not in labs:
+            import difflib
+            near = difflib.get_close_matches(str(reference_lab), labs, n=1)
+            hint = f"; did you mean {near[0]!r}?" if near else ""
+            raise DataError(f"reference laboratory {reference_lab!r} has no results{hint}")
+    mat_arr = np.asarray(mat_codes, dtype=np.intp)
+    lab_arr = np.asarray(lab_codes, dtype=np.intp)
+    x = np.asarray(values, dtype=np.float64)
+    u = np.asarray(uncs, dtype=np.float64)
+    lab_names = np.asarray(labs, dtype=object)
+    has_u = bool(np.isfinite(u).any())
+
+    out: dict[str, Any] = {"materials": materials, "labs": labs, "anova": {},
+                           "grr_anova": None, "grr_range": None, "precision": {},
+                           "scores": {}}
+    order = np.argsort(mat_arr, kind="stable")
+    bounds = np.searchsorted(mat_arr[order], np.arange(len(materials) + 1))
+    for m, material in enumerate(materials):
+        idx = order[bounds[m]:bounds[m + 1]]
+        xv, lv = x[idx], lab_arr[idx]
+        lab_of = lab_names[lv].tolist()
+        n_labs = len(set(lv.tolist()))
+        if n_labs < 2:
+            out["anova"][material] = {"skipped": f"one-way ANOVA needs 2 or more laboratories; "
+                                                 f"found {n_labs}"}
+        elif idx.size == n_labs:
+            out["anova"][material] = {"skipped": "one result per laboratory: no within-"
+                                                 "laboratory scatter to compare with"}
+        else:
+            out["anova"][material] = _plain(anova.evaluate(xv, lv))
+        out["precision"][material] = _plain(iso5725_2.evaluate(xv, lab_of))
+        sig = sigma_pt.get(material) if isinstance(sigma_pt, Mapping) else sigma_pt
+        sc = iso13528.evaluate(xv, lab_of, uncertainties=u[idx] if has_u else None,
+                               sigma_pt=sig, assigned=assigned, reference_lab=reference_lab,
+                               exclude_labs=exclude_labs_for_consensus)
+        out["scores"][material] = _plain_scores(sc)
+
+    cube = gauge_rr.arrange_cells(x, mat_codes, lab_codes)
+    if isinstance(cube, Skipped):
+        out["grr_anova"] = out["grr_range"] = {"skipped": cube.reason}
+    else:
+        y, p_lab, o_lab = cube
+        study = gauge_rr.evaluate(y, tolerance=tolerance, pool_alpha=pool_alpha,
+                                  parts=[materials[i] for i in p_lab],  # type: ignore[index]
+                                  operators=[labs[i] for i in o_lab])  # type: ignore[index]
+        out["grr_anova"] = _plain(study.anova)
+        out["grr_range"] = _plain(study.range)
+    return out
+
+
+def _columns(rows: Iterable[Any]) -> tuple[list[str], list[str], list[int], list[int],
+                                            list[float], list[float]]:
+    mat_index: dict[str, int] = {}
+    lab_index: dict[str, int] = {}
+    mat_codes: list[int] = []
+    lab_codes: list[int] = []
+    values: list[float] = []
+    uncs: list[float] = []
+    seen: set[tuple[int, int, str]] = set()
+    for i, row in enumerate(rows):
+        if type(row) is Row:
+            material, lab, trial, value, unc = (row.material, row.lab, str(row.trial),
+                                                row.value, row.uncertainty)
+            got = (material, lab, trial, value)
+        elif type(row) is dict:
+            get = row.get
+            got = (get("material"), get("lab"), get("trial"), get("value"))
+            unc = get("uncertainty")
+        else:
+            got = tuple(_get(row, f) for f in _REQUIRED)
+            unc = _get(row, "uncertainty")
+        if not (type(got[3]) is float and math.isfinite(got[3]) and all(got[:3])):
+            _check_row(row, i, got)
+        material, lab, trial = str(got[0]), str(got[1]), str(got[2])
+        value = float(got[3])
+        if unc is None or unc == "":
+            unc = math.nan
+        elif type(unc) is not float:
+            try:
+                unc = float(unc)
+            except (TypeError, ValueError):
+                raise DataError(f"uncertainty {unc!r} is not a number",
+                                Where(line=_get(row, "line"), field=f"rows[{i}]")) from None
+        m = mat_index.setdefault(material, len(mat_index))
+        lb = lab_index.setdefault(lab, len(lab_index))
+        key = (m, lb, trial)
+        if key in seen:
+            raise DataError(f"material {material!r}, lab {lab!r}, trial {trial!r} "
+                            "appears twice", Where(line=_get(row, "line"), field=f"rows[{i}]"))
+        seen.add(key)
+        mat_codes.append(m)
+        lab_codes.append(lb)
+        values.append(value)
+        uncs.append(unc)
+    if not values:
+        raise DataError("the table has no results")
+    return list(mat_index), list(lab_index), mat_codes, lab_codes, values, uncs
+
+
+def _check_row(row: Any, i: int, got: tuple[Any, ...]) -> None:
+    """Raise DataError when a record lacks a field or its value is not a finite number."""
+    where = Where(line=_get(row, "line"), field=f"rows[{i}]")
+    for f, v in zip(_REQUIRED, got):
+        if v is None or (isinstance(v, str) and not v.strip()):
+            raise DataError(f"the result has no {f!r}", where)
+    try:
+        value = float(got[3])
+    except (TypeError, ValueError):
+        raise DataError(f"value {got[3]!r} is not a number", where) from None
+    if not math.isfinite(value):
+        raise DataError(f"value {got[3]!r} is not a finite number", where)
+
+
+def _plain(obj: Any) -> Any:
+    """Return obj as JSON-ready data: dataclasses to dicts, NaN/inf to None, numpy to Python."""
+    from planner.stats._common import Skipped
+
+    t = type(obj)
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t is str or t is int or t is bool or obj is None:
+        return obj
+    if t is dict:
+        # Most dicts here are per-laboratory records of scalars: convert them inline.
+        return {(k if type(k) is str else str(k)):
+                (v if type(v) in _SCALARS else
+                 (v if math.isfinite(v) else None) if type(v) is float else _plain(v))
+                for k, v in obj.items()}
+    if isinstance(obj, Skipped):
+        return {"skipped": obj.reason}
+    if is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: _plain(getattr(obj, f.name)) for f in fields(obj)}
+    if isinstance(obj, Mapping):
+        return _plain(dict(obj))
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if hasattr(obj, "item"):  # numpy scalar
+        return _plain(obj.item())
+    if isinstance(obj, float):
+        return float(obj) if math.isfinite(obj) else None
+    return obj
+
+
+_SCALARS = frozenset({str, int, bool, type(None)})
+
+
+def _plain_scores(sc: Any) -> Any:
+    from planner.stats._common import Skipped
+
+    if isinstance(sc, Skipped):
+        return {"skipped": sc.reason}
+    d = {f.name: _plain(getattr(sc, f.name)) for f in fields(sc) if f.name != "robust"}
+    if sc.robust is not None:
+        # The iteration history is for checking the algorithm, not for the report.
+        d["robust"] = {"x": _plain(sc.robust.x), "s": _plain(sc.robust.s),
+                       "iterations": sc.robust.iterations, "converged": sc.robust.converged,
+                       "start": sc.robust.start}
+    else:
+        d["robust"] = None
+    return d
+
+
+def summary_text(result: Mapping[str, Any]) -> str:
+    """Return a compact plain-text summary of an ``evaluate_table`` result, columns aligned."""
+    out: list[str] = []
+    mats, labs = result["materials"], result["labs"]
+    out.append(f"{len(mats)} material(s), {len(labs)} laboratory(ies)")
+    out.append("")
+    head = ["material", "labs", "x_pt", "u(x_pt)", "sigma_pt", "s_r", "s_R", "r", "R",
+            "score", "sat", "quest", "unsat"]
+    table = [head]
+    skipped: list[str] = []
+    flags: list[list[str]] = []
+    for m in mats:
+        sc = result["scores"].get(m, {})
+        pr = result["precision"].get(m, {})
+        if "skipped" in sc:
+            skipped.append(f"scores {m}: {sc['skipped']}")
+        if "skipped" in pr:
+            skipped.append(f"precision {m}: {pr['skipped']}")
+        n_labs = len(sc.get("labs", {})) if "labs" in sc else pr.get("p", "")
+        bands = [s["band"] for s in sc.get("labs", {}).values()]
+        table.append([str(m), str(n_labs), _g(sc.get("assigned_value")),
+                      _g(sc.get("u_assigned_value")), _g(sc.get("sigma_pt")),
+                      _g(pr.get("s_r")), _g(pr.get("s_R")), _g(pr.get("r")), _g(pr.get("R")),
+                      ("z'" if sc.get("use_z_prime") else "z") if "labs" in sc else "-",
+                      str(bands.count("satisfactory")), str(bands.count("questionable")),
+                      str(bands.count("unsatisfactory"))])
+        for lab, s in sc.get("labs", {}).items():
+            score = s["z_prime"] if sc.get("use_z_prime") else s["z"]
+            name = "z'" if sc.get("use_z_prime") else "z"
+            if s["band"] not in (None, "satisfactory"):
+                flags.append([str(m), lab, f"{name} = {score:.2f}", s["band"]])
+            if s.get("en_band") == "unsatisfactory":
+                flags.append([str(m), lab, f"En = {s['En']:.2f}", "unsatisfactory"])
+        if "skipped" not in pr:
+            for end in ("high", "low"):
+                g = pr["grubbs"].get(end)
+                if g and g["result"] in ("straggler", "outlier"):
+                    flags.append([str(m), g["lab"], f"Grubbs {end} = {g['statistic']:.3f}",
+                                  g["result"]])
+            c = pr["cochran"]
+            if c.get("result") in ("straggler", "outlier"):
+                flags.append([str(m), c["lab"], f"Cochran C = {c['statistic']:.3f}", c["result"]])
+    out.extend(_align(table))
+    out.append("")
+    ga, gr = result["grr_anova"], result["grr_range"]
+    if "skipped" in ga:
+        skipped.append(f"gauge R&R (ANOVA): {ga['skipped']}")
+    else:
+        sv = ga["pct_study_variation"]
+        out.append(f"gauge R&R, ANOVA ({ga['model']} model): GRR sd {_g(ga['grr_sd'])}, "
+                   f"{_g(sv['grr'], 3)} % of study variation, ndc {ga['ndc']}")
+        out.append(f"  repeatability sd {_g(ga['repeatability_sd'])}, reproducibility sd "
+                   f"{_g(ga['reproducibility_sd'])}, part sd {_g(ga['part_sd'])}")
+        if ga.get("pct_tolerance"):
+            out.append(f"  GRR {_g(ga['pct_tolerance']['grr'], 3)} % of tolerance")
+    if "skipped" in gr:
+        skipped.append(f"gauge R&R (average and range): {gr['skipped']}")
+    else:
+        out.append(f"gauge R&R, average and range: EV {_g(gr['ev'])}, AV {_g(gr['av'])}, "
+                   f"GRR {_g(gr['grr'])} ({_g(gr['pct_grr'], 3)} % of TV), ndc {gr['ndc']}")
+        for cell in gr["range_check"]["flagged"]:
+            flags.append([str(cell["part"]), str(cell["operator"]),
+                          f"range = {_g(cell['range'])}", "above UCL_R"])
+    if flags:
+        out.append("")
+        out.append(f"flags ({len(flags)})")
+        out.extend("  " + ln for ln in _align(flags)[:_MAX_FLAGS])
+        if len(flags) > _MAX_FLAGS:
+            out.append(f"  ... and {len(flags) - _MAX_FLAGS} more (see the full result)")
+    if skipped:
+        out.append("")
+        out.append("not computed")
+        out.extend(f"  {s}" for s in skipped)
+    return "\n".join(out).rstrip() + "\n"
+
+
+_MAX_FLAGS = 30  # keep the screen summary short; the dict holds every score
+
+
+def _g(v: Any, digits: int = 4) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.{digits}g}"
+    return str(v)
+
+
+def _align(table: list[list[str]]) -> list[str]:
+    widths = [max(len(r[i]) for r in table) for i in range(len(table[0]))]
+    return ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in table]
