@@ -151,9 +151,9 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
                        lab["decimal"], lab["hosted"]] for lab in info["laboratories"]]))
     con.print(_table(
         "Units to prepare per material",
-        ["material", "description", "test", "spare", "retained", "homog.", "units",
+        ["material", "test", "spare", "retained", "homog.", "units",
          "amount / unit", "amount total", "stable (days)", "hazard"],
-        [[m["id"], m["description"], m["test"], m["spare"], m["retained"], m["homogeneity"],
+        [[m["id"], m["test"], m["spare"], m["retained"], m["homogeneity"],
           m["units"], f"{m['amount_per_unit']:g} {m['amount_unit']}",
           f"{m['total_amount']:g} {m['amount_unit']}", m["stability_days"], m["hazard"] or ""]
          for m in info["materials"]]))

@@ -11,11 +11,16 @@ The rules, applied round by round to the past rounds and then to each proposal:
   host prepares and ships before the date and keeps the retained units and
   answers questions while everybody tests.
 * Fair share: in every round each available laboratory of the pool is owed
-  ``weight / (sum of the available laboratories' weights)`` of a turn. What
-  a laboratory is owed minus the turns it took is its *credit*; the available
-  laboratory with the most credit hosts. This is weighted round robin by
-  largest credit (the same arithmetic as "smooth weighted round robin"), done
-  in exact fractions so that no order of summation can change a decision.
+  ``weight / (sum of the available laboratories' weights)`` of a turn. What a
+  laboratory is owed minus the turns it took is its *credit*. A laboratory is
+  *due* when its credit is above zero, and its next turn falls *due by* the
+  round where, at its present share, its credit would reach one. Of the
+  available laboratories, a due one with the nearest due-by round hosts. This
+  is earliest-deadline-first over "proportionate fair" subtasks (Baruah, Cohen,
+  Plaxton and Varvel, Algorithmica 15, 1996), which on one resource keeps every
+  laboratory's count within one turn of its exact share; plain "most credit
+  first" can drift past one turn with unequal weights. Everything is done in
+  exact fractions, so no order of summation can change a decision.
 * Late joiners and blacked-out laboratories are owed nothing for rounds they
   could not host: a laboratory that joins starts level, neither pushed to the
   front for every round it missed nor put in debt, and its waiting clock starts
@@ -71,6 +76,7 @@ class _State:
     weight: Fraction
     order: bytes
     owed: Fraction = Fraction(0)
+    share: Fraction = Fraction(0)
     hosted: int = 0
     last_round: str | None = None
     last_date: date | None = None
@@ -78,6 +84,10 @@ class _State:
     @property
     def credit(self) -> Fraction:
         return self.owed - self.hosted
+
+    def due_by(self) -> Fraction:
+        """Rounds from now until the credit reaches one turn at the present share."""
+        return (1 - self.credit) / self.share
 
     def waiting_since(self) -> date:
         if self.last_date is not None:
@@ -131,13 +141,14 @@ def _step(pool: dict[str, _State], span: tuple[date, date], previous: str | None
             out[lab_id] = why
     total = sum((s.weight for s in available), Fraction(0))
     for s in available:
-        s.owed += s.weight / total
+        s.share = s.weight / total
+        s.owed += s.share
     if previous is not None and len(available) > 1:
         keep = [s for s in available if s.lab.id != previous]
         if len(keep) < len(available):
             out[previous] = "hosted the previous round"
             available = keep
-    available.sort(key=lambda s: (-s.credit, s.waiting_since(), s.order))
+    available.sort(key=lambda s: (s.credit <= 0, s.due_by(), s.waiting_since(), s.order))
     return available, out
 
 
@@ -200,12 +211,12 @@ def _reason(chosen: _State, ranked: list[_State], out: dict[str, str]) -> str:
              f"fair share so far {float(chosen.owed):.1f}{weight}"]
     if len(ranked) > 1:
         runner = ranked[1]
-        if runner.credit == chosen.credit:
+        if runner.credit > 0 and runner.due_by() == chosen.due_by():
             tie = ("waited longer" if runner.waiting_since() != chosen.waiting_since()
                    else "tie broken by the study's fixed order")
-            parts.append(f"ahead of {runner.lab.id}: same credit, {tie}")
+            parts.append(f"ahead of {runner.lab.id}: turn due as soon, {tie}")
         else:
-            parts.append(f"ahead of {runner.lab.id}: more turns owed")
+            parts.append(f"ahead of {runner.lab.id}: turn due sooner")
     elif out:
         parts.append("the only laboratory available")
     parts.extend(f"{lab_id} skipped: {why}" for lab_id, why in sorted(out.items()))

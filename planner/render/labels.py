@@ -1,0 +1,515 @@
+"""Unit labels on a label sheet or roll, and the alignment page for a printer.
+
+A label carries the code large in a monospaced bold face (``K7QM-4X9PA``),
+a QR code of the same text, and as much of the following as fits, listed
+from the field kept longest to the field dropped first:
+
+1. the hazard word of the material (safety before everything but the code),
+2. the trial and run position, or "spare", "retained", "homogeneity",
+3. the destination laboratory (its name, else its id),
+4. the use-by date,
+5. the study and the round,
+6. the storage condition.
+
+The code and the QR always stay. A field that is too wide is first set in a
+smaller size (down to 5 pt), then wrapped; if the fields still do not fit the
+height of the label, the lowest of the list is dropped, then the next. Nothing
+is clipped and nothing is drawn past the label's padding.
+
+The material is never printed on a unit label. The use-by date is the same on
+every label of a round: the preparation date plus the *shortest* stability of
+the round's materials, because a date per material would tell the laboratory
+which units hold the less stable material. The storage condition and the
+hazard word stay per material: they decide how the unit is handled safely.
+
+Host labels are sorted material by material, each material led by a
+separator label (no QR) that names the material and how many labels follow;
+within a material by destination laboratory (in study order) and trial.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
+from datetime import date, timedelta
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes
+from planner.errors import PlannerError, Where
+from planner.render import _layout, _qr
+from planner.render._sheets import MM, Geometry
+
+if TYPE_CHECKING:
+    from planner.spec import Study
+
+__all__ = ["Label", "Separator", "host_labels", "lab_labels", "pick", "use_by", "render",
+           "render_calibration", "layout", "MIN_SIZE", "CHUNK"]
+
+MIN_SIZE = 5.0
+"""Smallest text size on a label in points (about 1.8 mm capitals; common practice)."""
+
+CHUNK = 240
+"""QR symbols per task handed to a worker process."""
+
+_LEADING = 1.16
+_SHRINK = 0.8  # smallest share of the nominal size before wrapping
+_CODE_MIN = 7.0  # below this a one-line code is set in two groups instead
+_QR_SHARE = 0.42  # of the label width, at most, for the symbol with its quiet zone
+
+
+@dataclass(frozen=True, slots=True)
+class Label:
+    """What one unit label says; every text is already in its printed form."""
+
+    code: str            # compact
+    hazard: str = ""
+    trial: str = ""
+    lab: tuple[str, ...] = ()      # alternatives, longest first
+    use_by: str = ""
+    study: str = ""
+    storage: str = ""
+
+
+@dataclass(frozen=True, slots=True)
+class Separator:
+    """The host's label that heads the labels of one material batch."""
+
+    material: str
+    description: str
+    count: int
+    study: str
+
+
+def use_by(study: Study, manifest: dict[str, Any]) -> date | None:
+    """Return the preparation date plus the shortest stability of the study's materials."""
+    prepared = manifest.get("dates", {}).get("prepare_on")
+    if not prepared:
+        return None
+    shortest = min(m.stability_days for m in study.materials)
+    return date.fromisoformat(prepared) + timedelta(days=shortest)
+
+
+def _kind_text(unit: dict[str, Any], host: str) -> str:
+    kind = unit["kind"]
+    if kind == "test":
+        return f"trial {unit['trial']} · run {unit['position']}"
+    return {"spare": "spare", "retained": "retained by host",
+            "homogeneity": "homogeneity check"}.get(kind, str(kind))
+
+
+def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
+           expiry: str) -> Label:
+    material = study.material(unit["material"])
+    lab = study.lab(unit["lab"])
+    host = manifest["host"]
+    suffix = " (host)" if lab.id == host and unit["kind"] in ("retained", "homogeneity") else ""
+    return Label(
+        code=unit["code"],
+        hazard=material.hazard.word if material.hazard else "",
+        trial=_kind_text(unit, host),
+        lab=(f"for {lab.name}{suffix}", f"for {lab.id}{suffix}"),
+        use_by=f"use by {expiry}" if expiry else "",
+        study=f"{study.id} · round {manifest['round']}",
+        storage=material.storage,
+    )
+
+
+def _lab_rank(study: Study) -> dict[str, int]:
+    return {lab.id: i for i, lab in enumerate(study.laboratories)}
+
+
+_KIND_RANK = {"test": 0, "spare": 1, "retained": 2, "homogeneity": 3}
+
+
+def _unit_order(study: Study) -> Any:
+    labs = _lab_rank(study)
+    return lambda u: (labs.get(u["lab"], len(labs)), _KIND_RANK.get(u["kind"], 9),
+                      u["trial"] or 0, u["position"] or 0, u["code"])
+
+
+def host_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any]
+                ) -> list[Label | Separator]:
+    """Return every label of the round for the host's sheet: per material a separator, then
+    its units by laboratory, kind and trial."""
+    expiry = use_by(study, manifest)
+    text = expiry.isoformat() if expiry else ""
+    by_material: dict[str, list[dict[str, Any]]] = {}
+    for unit in key["units"]:
+        by_material.setdefault(unit["material"], []).append(unit)
+    out: list[Label | Separator] = []
+    order = _unit_order(study)
+    for material in study.materials:
+        units = sorted(by_material.get(material.id, []), key=order)
+        if not units:
+            continue
+        out.append(Separator(material.id, material.description, len(units),
+                             f"{study.id} · round {manifest['round']}"))
+        out += [_label(study, manifest, u, text) for u in units]
+    return out
+
+
+def lab_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any],
+               lab_id: str) -> list[Label | Separator]:
+    """Return the labels of one laboratory's units (no separators): by trial and run position,
+    then spares."""
+    expiry = use_by(study, manifest)
+    text = expiry.isoformat() if expiry else ""
+    units = sorted((u for u in key["units"] if u["lab"] == lab_id), key=_unit_order(study))
+    return [_label(study, manifest, u, text) for u in units]
+
+
+def pick(items: Iterable[Label | Separator], chosen: Iterable[str], *,
+         round_id: str) -> list[Label | Separator]:
+    """Return the labels of the ``chosen`` codes in the order given, without separators; raise
+    CodeError for a malformed code and PlannerError for a code not in ``items``."""
+    found = {item.code: item for item in items if isinstance(item, Label)}
+    out: list[Label | Separator] = []
+    for text in chosen:
+        code = codes.validate(text, where=Where(field="--codes"))
+        if code not in found:
+            raise PlannerError(f"{codes.format(code)!r} is not a code of round {round_id!r} "
+                               "(or not one of the chosen laboratory's); check the label",
+                               Where(field="--codes"))
+        out.append(found[code])
+    return out
+
+
+# --- layout of one label --------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class _Line:
+    text: str
+    font: str
+    size: float
+    boxed: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class _Frame:
+    """Where the parts of a label go, in points relative to the cell's lower-left corner."""
+
+    qr_x: float
+    qr_y: float
+    qr_side: float
+    text_x: float
+    text_width: float
+    text_bottom: float
+    text_top: float
+
+
+def _frame(g: Geometry) -> _Frame:
+    w, h, pad = g.label_width * MM, g.label_height * MM, g.padding * MM
+    total = min(h, _QR_SHARE * w)
+    # The quiet zone may run into the padding (both are blank), but the symbol
+    # itself keeps the padding clear as a margin for feed errors.
+    side = min(total * 21 / (21 + 2 * _qr.QUIET), total - 2 * pad)
+    return _Frame(qr_x=(total - side) / 2, qr_y=(h - side) / 2, qr_side=side,
+                  text_x=total, text_width=w - total - pad,
+                  text_bottom=pad, text_top=h - pad)
+
+
+def _sizes(frame: _Frame) -> tuple[float, float]:
+    height = frame.text_top - frame.text_bottom
+    code = max(8.0, min(18.0, 0.3 * height))
+    body = max(MIN_SIZE, min(8.5, height / 8))
+    return code, body
+
+
+def _fit(text: str, font: str, size: float, width: float, *, boxed: bool = False
+         ) -> list[_Line] | None:
+    """Return the lines of one field: shrunk to fit, else wrapped; None if it cannot fit."""
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    extra = 2 * 0.35 * size if boxed else 0.0
+    natural = stringWidth(text, font, size) + extra
+    if natural <= width:
+        return [_Line(text, font, size, boxed)]
+    shrunk = size * (width - extra) / (natural - extra)
+    # Shrink only so far that the line still reads as one of its label; past
+    # that a second line is the kinder choice.
+    if shrunk >= max(MIN_SIZE, _SHRINK * size):
+        shrunk = int(shrunk * 10) / 10  # a tenth of a point below the exact fit
+        return [_Line(text, font, shrunk, boxed)]
+    for wrap_size in (max(MIN_SIZE, 0.9 * size), MIN_SIZE):
+        parts = _layout.wrap_words(text, font, wrap_size, width - extra)
+        if parts is not None:
+            return [_Line(p, font, wrap_size, boxed) for p in parts]
+    return None
+
+
+# Display order top to bottom; drop order is the reverse of _KEEP.
+_SHOWN = ("hazard", "trial", "lab", "use_by", "study", "storage")
+_KEEP = ("hazard", "trial", "lab", "use_by", "study", "storage")
+
+
+def _height(lines: Sequence[_Line]) -> float:
+    return sum(line.size * _LEADING + (0.5 * line.size if line.boxed else 0) for line in lines)
+
+
+def _code_lines(printed: str, size: float, width: float, height: float,
+                g: Geometry) -> list[_Line]:
+    """Return the code on one line, or in its two groups when one line would be too small."""
+    # Courier is 600/1000 em per character: the width of a code is exact arithmetic.
+    one = min(size, width / (0.6 * len(printed)))
+    if one >= _CODE_MIN:
+        return [_Line(printed, _layout.MONO, int(one * 10) / 10)]
+    first, second = printed.split("-")
+    two = min(size, width / (0.6 * len(second)), height / (2 * _LEADING))
+    if two < MIN_SIZE:
+        raise PlannerError(f"label sheet {g.name!r} is too small for a readable code; "
+                           "choose a sheet with larger labels", Where(field="--sheet"))
+    two = int(two * 10) / 10
+    return [_Line(first + "-", _layout.MONO, two), _Line(second, _layout.MONO, two)]
+
+
+def _options(texts: dict[str, tuple[str, ...]], body: float, width: float
+             ) -> tuple[dict[str, list[list[_Line]]], list[str]]:
+    """Return every alternative of every field fitted to ``width``, and the fields none of
+    whose alternatives fits (one word wider than the label)."""
+    options: dict[str, list[list[_Line]]] = {}
+    dropped: list[str] = []
+    for name in _KEEP:
+        font = _layout.BOLD if name in ("hazard", "trial") else _layout.FONT
+        fitted = [lines for text in texts[name] if text
+                  for lines in [_fit(text, font, body, width, boxed=name == "hazard")] if lines]
+        if fitted:
+            options[name] = fitted
+        elif any(texts[name]):
+            dropped.append(name)
+    return options, dropped
+
+
+def layout(label: Label, g: Geometry) -> tuple[list[_Line], tuple[str, ...]]:
+    """Return the text lines of ``label`` on geometry ``g`` and the fields that had to be dropped.
+
+    Raises PlannerError when the label is too small for the code at the
+    smallest size.
+    """
+    frame = _frame(g)
+    code_size, body = _sizes(frame)
+    width, height = frame.text_width, frame.text_top - frame.text_bottom
+    code_lines = _code_lines(codes.format(label.code), code_size, width, height, g)
+    texts: dict[str, tuple[str, ...]] = {
+        "hazard": (label.hazard,), "trial": (label.trial,), "lab": label.lab,
+        "use_by": (label.use_by,), "study": (label.study,), "storage": (label.storage,)}
+    options, dropped = _options(texts, body, width)
+    choice = {name: 0 for name in options}
+    kept = [name for name in _KEEP if name in options]
+    while True:
+        lines = code_lines + [ln for name in _SHOWN if name in kept
+                              for ln in options[name][choice[name]]]
+        gap = 0.25 * body if len(lines) > len(code_lines) else 0.0
+        if _height(lines) + gap <= height:
+            return lines, tuple(dropped)
+        if not kept:
+            raise PlannerError(f"label sheet {g.name!r} is too small for a readable code; "
+                               "choose a sheet with larger labels", Where(field="--sheet"))
+        last = kept[-1]
+        # A shorter alternative of the field about to go (the lab's id for its name) comes first.
+        if choice[last] + 1 < len(options[last]):
+            choice[last] += 1
+        else:
+            dropped.append(kept.pop())
+
+
+def _text_width(text: str, font: str, size: float) -> float:
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    return float(stringWidth(text, font, size))
+
+
+# --- drawing ------------------------------------------------------------------------
+
+
+def _draw_lines(canvas: Any, lines: Sequence[_Line], x: float, top: float, bottom: float,
+                code_count: int) -> None:
+    total = _height(lines) + (0.25 * lines[-1].size if len(lines) > code_count else 0.0)
+    # Centre the block in the text area, so short labels do not hang from the top.
+    y = top - ((top - bottom) - total) / 2
+    for i, line in enumerate(lines):
+        if i == code_count:
+            y -= 0.25 * line.size
+        if line.boxed:
+            y -= 0.25 * line.size
+        y -= line.size * _LEADING
+        baseline = y + 0.22 * line.size
+        canvas.setFont(line.font, line.size)
+        canvas.drawString(x + (0.35 * line.size if line.boxed else 0), baseline, line.text)
+        if line.boxed:
+            width = _text_width(line.text, line.font, line.size) + 0.7 * line.size
+            canvas.setLineWidth(0.6)
+            canvas.rect(x, baseline - 0.3 * line.size, width, line.size * 1.12, stroke=1, fill=0)
+            y -= 0.25 * line.size
+
+
+def _draw_separator(canvas: Any, sep: Separator, cell: tuple[float, float, float, float],
+                    g: Geometry) -> None:
+    from reportlab.lib.colors import HexColor
+
+    x, y, w, h = cell
+    pad = g.padding * MM
+    bar = max(1.2 * MM, 0.06 * w)
+    canvas.setFillColor(HexColor(_layout.ACCENT))
+    canvas.rect(x + pad, y + pad, bar, h - 2 * pad, stroke=0, fill=1)
+    canvas.setFillColor(HexColor(_layout.INK))
+    inner_x = x + pad + bar + pad
+    width = w - (inner_x - x) - pad
+    _, body = _sizes(_frame(g))
+    head = _fit(f"next: {sep.material}", _layout.BOLD, body * 1.4, width) or []
+    lines = head + (_fit(f"{sep.count} labels follow", _layout.BOLD, body, width) or [])
+    for extra in (sep.description, sep.study):
+        more = _fit(extra, _layout.FONT, body, width)
+        if more and _height(lines + more) <= h - 2 * pad:
+            lines += more
+    while lines and _height(lines) > h - 2 * pad:
+        lines.pop()
+    _draw_lines(canvas, lines, inner_x, y + h - pad, y + pad, len(lines))
+
+
+def _symbols(items: Sequence[Label | Separator], workers: int) -> Iterator[str]:
+    """Yield the QR operators of every Label in order, computed in worker processes if asked."""
+    texts = [codes.format(item.code) for item in items if isinstance(item, Label)]
+    if workers <= 1 or len(texts) < 2 * CHUNK:
+        for text in texts:
+            yield _qr.image_mask(_qr.matrix(text))
+        return
+    from concurrent.futures import ProcessPoolExecutor
+
+    chunks = [texts[i:i + CHUNK] for i in range(0, len(texts), CHUNK)]
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        for result in pool.map(_qr.image_masks, chunks):
+            yield from result
+
+
+def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *,
+           title: str, start_at: int = 1, offset_mm: tuple[float, float] = (0.0, 0.0),
+           workers: int = 1) -> Path:
+    """Draw ``items`` cell by cell on ``geometry``, beginning at cell ``start_at`` of the first
+    page, and write the PDF to ``path`` atomically; return ``path``.
+
+    ``workers`` > 1 computes the QR matrices in that many processes while this
+    one draws. Raises PlannerError for a ``start_at`` off the sheet.
+    """
+    if not 1 <= start_at <= geometry.per_page:
+        raise PlannerError(f"--start-at {start_at} is not a label of sheet {geometry.name!r}; "
+                           f"use 1 to {geometry.per_page}", Where(field="--start-at"))
+    from reportlab.lib.colors import HexColor
+    from reportlab.pdfgen.canvas import Canvas
+
+    frame = _frame(geometry)
+    page = (geometry.page_width * MM, geometry.page_height * MM)
+
+    def write(temp: Path) -> None:
+        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1)
+        canvas.setTitle(title)
+        canvas.setAuthor("ringplan")
+        canvas.setCreator("ringplan")
+        ink = HexColor(_layout.INK)
+        symbols = _symbols(items, workers)
+        cache: dict[tuple[Any, ...], tuple[list[_Line], int]] = {}
+        cell_index = start_at - 1
+        for item in items:
+            if cell_index and cell_index % geometry.per_page == 0:
+                canvas.showPage()
+            cell = geometry.cell_pt(cell_index, offset_mm)
+            cell_index += 1
+            if isinstance(item, Separator):
+                _draw_separator(canvas, item, cell, geometry)
+                continue
+            x, y, _, _ = cell
+            _qr.draw(canvas, next(symbols), x + frame.qr_x, y + frame.qr_y, frame.qr_side)
+            # Every code is 10 characters of a monospaced face, so the layout
+            # depends only on the other fields: reuse it for labels alike.
+            shape = (item.hazard, item.trial, item.lab, item.use_by, item.study, item.storage)
+            if shape not in cache:
+                lines, _dropped = layout(item, geometry)
+                cache[shape] = (lines, sum(1 for ln in lines if ln.font == _layout.MONO))
+            lines, code_count = cache[shape]
+            printed = codes.format(item.code)
+            if code_count == 2:
+                first, second = printed.split("-")
+                texts = [first + "-", second]
+            else:
+                texts = [printed]
+            actual = [_Line(texts[i], ln.font, ln.size, ln.boxed) if i < code_count else ln
+                      for i, ln in enumerate(lines)]
+            canvas.setFillColor(ink)
+            canvas.setStrokeColor(ink)
+            _draw_lines(canvas, actual, x + frame.text_x, y + frame.text_top,
+                        y + frame.text_bottom, code_count)
+        canvas.showPage()
+        canvas.save()
+
+    return _layout.write_atomic(path, write)
+
+
+def render_calibration(path: Path, geometry: Geometry, *,
+                       offset_mm: tuple[float, float] = (0.0, 0.0)) -> Path:
+    """Write an alignment page: every cell outlined and numbered, with a 100 mm scale; return ``path``.
+
+    Print it on plain paper at 100 % (no "fit to page"), lay it on a label
+    sheet against the light, and measure how far the outlines miss the labels.
+    """
+    from reportlab.lib.colors import HexColor
+    from reportlab.pdfgen.canvas import Canvas
+
+    page = (geometry.page_width * MM, geometry.page_height * MM)
+
+    def write(temp: Path) -> None:
+        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1)
+        canvas.setTitle(f"alignment page, sheet {geometry.name}")
+        canvas.setAuthor("ringplan")
+        small = max(MIN_SIZE, min(8.0, geometry.label_height * MM / 5))
+        for index in range(geometry.per_page):
+            x, y, w, h = geometry.cell_pt(index, offset_mm)
+            canvas.setStrokeColor(HexColor(_layout.ACCENT))
+            canvas.setLineWidth(0.5)
+            _layout.rounded_box(canvas, x, y, w, h, geometry.corner_radius * MM)
+            canvas.setStrokeColor(HexColor(_layout.RULE))
+            pad = geometry.padding * MM
+            canvas.setDash(1.5, 1.5)
+            canvas.rect(x + pad, y + pad, w - 2 * pad, h - 2 * pad, stroke=1, fill=0)
+            canvas.setDash()
+            cx, cy = x + w / 2, y + h / 2
+            canvas.setStrokeColor(HexColor(_layout.INK))
+            canvas.setLineWidth(0.3)
+            canvas.line(cx - 2 * MM, cy, cx + 2 * MM, cy)
+            canvas.line(cx, cy - 2 * MM, cx, cy + 2 * MM)
+            canvas.setFillColor(HexColor(_layout.INK))
+            canvas.setFont(_layout.FONT, small)
+            canvas.drawString(x + pad + 0.5 * MM, y + h - pad - small, str(index + 1))
+        lines = [f"alignment page · sheet {geometry.name} · {geometry.description}",
+                 f"offset x {offset_mm[0]:+.1f} mm, y {offset_mm[1]:+.1f} mm · print at 100 %, "
+                 "then measure against a label sheet"]
+        _draw_notes(canvas, geometry, lines)
+        canvas.showPage()
+        canvas.save()
+
+    return _layout.write_atomic(path, write)
+
+
+def _draw_notes(canvas: Any, g: Geometry, lines: Sequence[str]) -> None:
+    """Write the notes and a 100 mm scale in the middle of the page (or across a roll label)."""
+    from reportlab.lib.colors import HexColor
+
+    width = g.page_width * MM
+    size = max(MIN_SIZE, min(8.0, g.page_height * MM / 12))
+    canvas.setFillColor(HexColor(_layout.ACCENT))
+    y = g.page_height * MM / 2 + size
+    for line in lines:
+        text = _layout.fit_text(line, _layout.FONT, size, width - 4 * MM)
+        canvas.setFont(_layout.FONT, size)
+        canvas.drawCentredString(width / 2, y, text)
+        y -= size * 1.4
+    scale = min(100.0, (g.page_width - 10) // 10 * 10)
+    left = (width - scale * MM) / 2
+    canvas.setStrokeColor(HexColor(_layout.ACCENT))
+    canvas.setLineWidth(0.6)
+    canvas.line(left, y, left + scale * MM, y)
+    for tick in range(0, int(scale) + 1, 10):
+        canvas.line(left + tick * MM, y, left + tick * MM, y + (2.5 if tick % 50 == 0 else 1.2)
+                    * MM)
+    canvas.setFont(_layout.FONT, size)
+    canvas.drawCentredString(width / 2, y - size * 1.3, f"{scale:.0f} mm")
