@@ -150,15 +150,23 @@ def compare_units(expected: Iterable[Unit], found: Iterable[Unit]) -> list[str]:
 def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
     """Return the public manifest: per laboratory its codes by trial in run order, no materials."""
     dates = plan.dates.to_json()
+    trials = study.design.trials
+    runs: dict[str, list[list[Unit]]] = {lab.id: [[] for _ in range(trials)]
+                                         for lab in study.laboratories}
+    spares: dict[str, list[str]] = {lab.id: [] for lab in study.laboratories}
+    for u in plan.units:
+        if u.kind == "test" and u.trial is not None:
+            runs[u.lab][u.trial - 1].append(u)
+        elif u.kind == "spare":
+            spares[u.lab].append(u.code)
     labs: dict[str, Any] = {}
     for lab in study.laboratories:
-        trials = []
-        for trial in range(1, study.design.trials + 1):
-            run = sorted((u for u in plan.units if u.kind == "test" and u.lab == lab.id
-                          and u.trial == trial), key=lambda u: u.position or 0)
-            trials.append([u.code for u in run])
-        spares = sorted(u.code for u in plan.units if u.kind == "spare" and u.lab == lab.id)
-        labs[lab.id] = {"trials": trials, "spares": spares, **dates["labs"].get(lab.id, {})}
+        labs[lab.id] = {
+            "trials": [[u.code for u in sorted(run, key=lambda u: u.position or 0)]
+                       for run in runs[lab.id]],
+            "spares": sorted(spares[lab.id]),
+            **dates["labs"].get(lab.id, {}),
+        }
     return {
         "format": "ringplan-manifest/1",
         "study": study.id,

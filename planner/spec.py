@@ -164,7 +164,7 @@ class Study(_Model):
 
 # --- reading -----------------------------------------------------------------
 
-class _Loader(yaml.SafeLoader):
+class _Loader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):  # type: ignore[misc]
     """Safe loader that leaves dates as text, so that pydantic checks them
     (PyYAML would raise on 2027-02-30 before any message could name the line)."""
 
@@ -216,14 +216,17 @@ def load(folder_or_file: Path) -> Study:
 
 def parse(text: str, *, name: str = SPEC_NAME) -> Study:
     """Return the Study written in YAML ``text``; ``name`` is used in messages."""
+    loader = _Loader(text)
     try:
-        node = yaml.compose(text, Loader=_Loader)
-        raw = yaml.load(text, Loader=_Loader)
+        node = loader.get_single_node()
+        raw = loader.construct_document(node) if node is not None else None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
         line = mark.line + 1 if mark is not None else None
         raise SpecError(f"this is not valid YAML: {problem}", Where(name, line)) from None
+    finally:
+        loader.dispose()
     if node is None or not isinstance(raw, dict):
         raise SpecError("the spec is empty or not a mapping of sections; start from "
                         "'ringplan new DIR'", Where(name, 1))

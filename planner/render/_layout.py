@@ -22,7 +22,7 @@ from typing import Any
 __all__ = [
     "ACCENT", "INK", "MUTED", "RULE", "FONT", "BOLD", "MONO", "MONO_REGULAR",
     "page_size", "styles", "Running", "build", "write_atomic", "fit_text", "wrap_words",
-    "rounded_box", "check_box",
+    "rounded_box", "check_box", "table_style", "grouped_fingerprint", "escape",
 ]
 
 ACCENT = "#1d5c63"
@@ -234,3 +234,39 @@ def check_box(side: float) -> Any:
             self.canv.rect(0, 0, side, side, stroke=1, fill=0)
 
     return _Box()
+
+
+def table_style(*, header: bool = True, extra: Sequence[tuple[Any, ...]] = ()) -> Any:
+    """Return our table look: thin horizontal rules, a tinted bold header row, no verticals."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.platypus import TableStyle
+
+    commands: list[tuple[Any, ...]] = [
+        ("FONT", (0, 0), (-1, -1), FONT, 9),
+        ("TEXTCOLOR", (0, 0), (-1, -1), HexColor(INK)),
+        ("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
+        ("LINEBELOW", (0, 0), (-1, -1), 0.4, HexColor(RULE)),
+        ("TOPPADDING", (0, 0), (-1, -1), 3.5),
+        ("BOTTOMPADDING", (0, 0), (-1, -1), 3.5),
+        ("LEFTPADDING", (0, 0), (-1, -1), 4),
+        ("RIGHTPADDING", (0, 0), (-1, -1), 4),
+    ]
+    if header:
+        commands += [
+            ("FONT", (0, 0), (-1, 0), BOLD, 8),
+            ("TEXTCOLOR", (0, 0), (-1, 0), HexColor(ACCENT)),
+            ("LINEBELOW", (0, 0), (-1, 0), 0.8, HexColor(ACCENT)),
+            ("BACKGROUND", (0, 0), (-1, 0), HexColor("#eef3f3")),
+        ]
+    commands += list(extra)
+    return TableStyle(commands)
+
+
+def grouped_fingerprint(fingerprint: str) -> str:
+    """Return the 64 hex digits in groups of 8, easier to compare by eye."""
+    return " ".join(fingerprint[i:i + 8] for i in range(0, len(fingerprint), 8))
+
+
+def escape(text: str) -> str:
+    """Return ``text`` safe inside a reportlab Paragraph (its mark-up is XML-like)."""
+    return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")

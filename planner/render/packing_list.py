@@ -1,0 +1,151 @@
+"""The packing list of one laboratory's parcel.
+
+From host to laboratory with both addresses, the dates of the round for that
+laboratory, the round fingerprint, and a table of the parcel's codes sorted by
+code, so that the order in which the host prepared the materials cannot be
+read from it. Nothing on it names a material: the hazard column repeats only
+the hazard word already on the label, and storage conditions are listed
+without saying which unit needs which (the label says that).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes
+from planner.render import _layout
+
+if TYPE_CHECKING:
+    from planner.spec import Lab, Study
+
+__all__ = ["render", "SDS_NOTE"]
+
+SDS_NOTE = ("These notes do not replace the safety data sheet of the material or your local "
+            "rules; where they differ, the safety data sheet and local rules apply.")
+
+_MM = 72.0 / 25.4
+
+
+def _address(lab: Lab, heading: str, st: dict[str, Any]) -> list[Any]:
+    from reportlab.platypus import Paragraph
+
+    esc = _layout.escape
+    lines = [f"<b>{esc(lab.name)}</b>", *(esc(line) for line in lab.address)]
+    contact = ", ".join(esc(x) for x in (lab.contact.name, lab.contact.email, lab.contact.phone)
+                        if x)
+    return [Paragraph(heading, st["label"]), Paragraph("<br/>".join(lines), st["body"]),
+            Paragraph(contact, st["small"])]
+
+
+def _sign_lines(st: dict[str, Any], width: float) -> Any:
+    from reportlab.lib.colors import HexColor
+    from reportlab.platypus import Paragraph, Table
+
+    rows = [[Paragraph(label, st["label"]), "", "", ""] for label in
+            ("packed by (host)", "checked by (host)", "received by (laboratory)")]
+    table = Table([[Paragraph("", st["label"]), Paragraph("name", st["label"]),
+                    Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
+                  colWidths=[0.28 * width, 0.30 * width, 0.16 * width, 0.26 * width],
+                  rowHeights=[5 * _MM] + [11 * _MM] * 3)
+    table.setStyle(_layout.table_style(header=False, extra=[
+        ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(_layout.INK)),
+        ("LINEBELOW", (0, 0), (-1, 0), 0, HexColor("#ffffff")),
+        ("LINEBELOW", (0, 1), (0, -1), 0, HexColor("#ffffff")),
+        ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
+    ]))
+    return table
+
+
+def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, Any],
+           lab_id: str, *, paper: str) -> Path:
+    """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``."""
+    from reportlab.platypus import KeepTogether, Paragraph, Spacer, Table
+
+    st = _layout.styles()
+    esc = _layout.escape
+    lab = study.lab(lab_id)
+    host = study.lab(manifest["host"])
+    entry = manifest["labs"][lab_id]
+    dates = manifest["dates"]
+    materials = {m.id: m for m in study.materials}
+    units = sorted((u for u in key["units"] if u["lab"] == lab_id and u["kind"] in
+                    ("test", "spare")), key=lambda u: u["code"])
+    width = _layout.page_size(paper)[0] - 40 * _MM
+
+    story: list[Any] = [
+        Paragraph("Packing list", st["title"]),
+        Paragraph(f"Parcel for <b>{esc(lab.name)}</b> in round {esc(manifest['round'])} of "
+                  f"{esc(study.study.title)}. Check every unit against this list when you pack "
+                  "it and again when it arrives.", st["lead"]),
+    ]
+    addresses = Table([[_address(host, "from (host)", st), _address(lab, "to", st)]],
+                      colWidths=[width / 2, width / 2])
+    addresses.setStyle(_layout.table_style(header=False, extra=[
+        ("VALIGN", (0, 0), (-1, -1), "TOP"), ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff"),
+        ("LEFTPADDING", (0, 0), (-1, -1), 0)]))
+    story += [addresses, Spacer(1, 5 * _MM)]
+
+    date_rows = [
+        ["ship date", entry.get("ship", "")],
+        ["expected arrival", entry.get("arrive", "")],
+        ["test window", f"{dates.get('test_start', '')} to {dates.get('test_end', '')}"],
+        ["results due", dates.get("results_due", "")],
+    ]
+    date_table = Table(date_rows, colWidths=[40 * _MM, width - 40 * _MM])
+    date_table.setStyle(_layout.table_style(header=False, extra=[
+        ("FONT", (0, 0), (0, -1), _layout.BOLD, 8.5)]))
+    story += [Paragraph("Dates", st["h2"]), date_table,
+              Paragraph("Round fingerprint", st["h2"]),
+              Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"]),
+              Paragraph("The SHA-256 of the sealed decoding key, fixed before shipping. Keep "
+                        "this page: when the key is opened, its fingerprint must be the same.",
+                        st["small"])]
+
+    tests = sum(1 for u in units if u["kind"] == "test")
+    spares = len(units) - tests
+    story += [Paragraph("Contents", st["h2"]),
+              Paragraph(f"<b>{len(units)} units</b>: {tests} for testing "
+                        f"({manifest['trials']} trials) and {spares} spare.", st["body"]),
+              Spacer(1, 2.5 * _MM)]
+    box = 3.6 * _MM
+    rows: list[list[Any]] = [["code", "kind", "trial", "hazard", "packed", "received"]]
+    for unit in units:
+        hazard = materials[unit["material"]].hazard
+        rows.append([codes.format(unit["code"]), unit["kind"],
+                     unit["trial"] if unit["trial"] is not None else "",
+                     hazard.word if hazard else "", _layout.check_box(box),
+                     _layout.check_box(box)])
+    contents = Table(rows, colWidths=[0.25 * width, 0.15 * width, 0.1 * width, 0.2 * width,
+                                      0.15 * width, 0.15 * width], repeatRows=1)
+    contents.setStyle(_layout.table_style(extra=[
+        ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
+        ("ALIGN", (4, 0), (-1, -1), "CENTER"),
+        ("ALIGN", (2, 0), (2, -1), "CENTER")]))
+    story.append(contents)
+
+    storage = sorted({materials[u["material"]].storage for u in units})
+    story += [Paragraph("Storage and handling", st["h2"])]
+    story += [Paragraph(esc(text), st["bullet"], bulletText="•") for text in storage]
+    story.append(Paragraph("Each label gives the storage condition of its unit. Keep units "
+                           "closed until they are tested; do not open, mix or split them "
+                           "before the test. Report a damaged unit and use a spare.",
+                           st["body"]))
+    hazards = {}
+    for unit in units:
+        hazard = materials[unit["material"]].hazard
+        if hazard:
+            hazards[hazard.word] = hazard.note
+    story.append(Paragraph("Hazard cautions", st["h2"]))
+    if hazards:
+        story += [Paragraph(f"<b>{esc(word)}</b>: {esc(note)}", st["bullet"], bulletText="•")
+                  for word, note in sorted(hazards.items())]
+    else:
+        story.append(Paragraph("No unit in this parcel carries a hazard word.", st["body"]))
+    story.append(Paragraph(SDS_NOTE, st["small"]))
+    story.append(KeepTogether([Paragraph("Signatures", st["h2"]), _sign_lines(st, width)]))
+
+    running = _layout.Running(study.id, study.study.title, manifest["round"],
+                              f"packing list · {lab.id}")
+    return _layout.build(path, story, paper=paper, running=running,
+                         title=f"packing list {lab.id}, {study.id} round {manifest['round']}")
