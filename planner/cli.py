@@ -87,7 +87,8 @@ def _where(path: Path) -> Any:
 def _console() -> Any:
     from rich.console import Console
 
-    return Console(highlight=False)
+    # Piped output has no terminal width; 100 columns keep the tables whole.
+    return Console(highlight=False, width=None if sys.stdout.isatty() else 100)
 
 
 def _table(title: str, columns: list[str], rows: list[list[Any]]) -> Any:

@@ -20,7 +20,7 @@ from typing import Any
 
 from planner.errors import LedgerError, Where
 
-__all__ = ["Ledger", "RoundRow", "Event", "LEDGER_NAME", "SCHEMA_VERSION", "STATUS_ORDER"]
+__all__ = ["Ledger", "RoundRow", "Event", "Submission", "ResultRow", "LEDGER_NAME", "SCHEMA_VERSION", "STATUS_ORDER"]
 
 LEDGER_NAME = "ledger.sqlite"
 
@@ -68,6 +68,43 @@ _MIGRATIONS: tuple[str, ...] = (
     CREATE TRIGGER events_no_delete BEFORE DELETE ON events
         BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
     """,
+    # 2: returned result forms (planner.intake); a corrected form is a new version.
+    """
+    CREATE TABLE submissions (
+        id INTEGER PRIMARY KEY,
+        round TEXT NOT NULL,
+        lab TEXT NOT NULL,
+        version INTEGER NOT NULL,
+        sha256 TEXT NOT NULL,
+        file_name TEXT NOT NULL,
+        received_at TEXT NOT NULL,
+        late INTEGER NOT NULL,
+        after_unseal INTEGER NOT NULL,
+        reason TEXT,
+        UNIQUE (round, lab, version)
+    );
+    CREATE TABLE result_rows (
+        submission INTEGER NOT NULL REFERENCES submissions(id),
+        code TEXT NOT NULL,
+        trial INTEGER,
+        position INTEGER,
+        value REAL,
+        uncertainty REAL,
+        date TEXT,
+        analyst TEXT NOT NULL,
+        remarks TEXT NOT NULL,
+        flags TEXT NOT NULL,
+        PRIMARY KEY (submission, code)
+    );
+    CREATE TRIGGER submissions_append_only BEFORE UPDATE ON submissions
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
+    CREATE TRIGGER result_rows_append_only BEFORE UPDATE ON result_rows
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
+    CREATE TRIGGER submissions_no_delete BEFORE DELETE ON submissions
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
+    CREATE TRIGGER result_rows_no_delete BEFORE DELETE ON result_rows
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
+    """,
 )
 SCHEMA_VERSION = len(_MIGRATIONS)
 
@@ -84,6 +121,33 @@ class RoundRow:
     fingerprint: str
     dates: dict[str, Any]
     planned_at: str
+
+
+@dataclass(frozen=True, slots=True)
+class Submission:
+    row: int
+    round: str
+    lab: str
+    version: int
+    sha256: str
+    file_name: str
+    received_at: str
+    late: bool
+    after_unseal: bool
+    reason: str | None
+
+
+@dataclass(frozen=True, slots=True)
+class ResultRow:
+    code: str
+    trial: int | None
+    position: int | None
+    value: float | None
+    uncertainty: float | None
+    date: str | None
+    analyst: str
+    remarks: str
+    flags: tuple[str, ...]
 
 
 @dataclass(frozen=True, slots=True)
@@ -204,6 +268,48 @@ class Ledger:
         return list(self.db.execute(
             "SELECT code, lab, kind, trial, position FROM units WHERE round_row = ? ORDER BY code",
             (round_row,)))
+
+    # --- returned results ----------------------------------------------------
+
+    def add_submission(self, *, round_id: str, lab: str, sha256: str, file_name: str,
+                       late: bool, after_unseal: bool, reason: str | None,
+                       rows: Iterable[ResultRow]) -> int:
+        """Insert the next version of a laboratory's results with its rows; return the version.
+
+        Call inside ``transaction()``; the time received is the ledger clock's.
+        """
+        (last,) = self.db.execute("SELECT COALESCE(MAX(version), 0) FROM submissions "
+                                  "WHERE round = ? AND lab = ?", (round_id, lab)).fetchone()
+        cur = self.db.execute(
+            "INSERT INTO submissions (round, lab, version, sha256, file_name, received_at, late, "
+            "after_unseal, reason) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (round_id, lab, last + 1, sha256, file_name, self.now(), int(late),
+             int(after_unseal), reason))
+        self.db.executemany(
+            "INSERT INTO result_rows (submission, code, trial, position, value, uncertainty, "
+            "date, analyst, remarks, flags) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            ((cur.lastrowid, r.code, r.trial, r.position, r.value, r.uncertainty, r.date,
+              r.analyst, r.remarks, " ".join(r.flags)) for r in rows))
+        return int(last + 1)
+
+    def submissions(self, round_id: str, lab: str | None = None) -> list[Submission]:
+        """Return every version received for a round (optionally one laboratory), oldest first."""
+        query = ("SELECT id, round, lab, version, sha256, file_name, received_at, late, "
+                 "after_unseal, reason FROM submissions WHERE round = ?")
+        args: tuple[Any, ...] = (round_id,)
+        if lab is not None:
+            query += " AND lab = ?"
+            args += (lab,)
+        return [Submission(r[0], r[1], r[2], r[3], r[4], r[5], r[6], bool(r[7]), bool(r[8]), r[9])
+                for r in self.db.execute(query + " ORDER BY id", args)]
+
+    def result_rows(self, submission_row: int) -> list[ResultRow]:
+        """Return the result rows of one submission, in run order."""
+        return [ResultRow(c, t, p, v, u, d, a, rem, tuple(f.split()))
+                for c, t, p, v, u, d, a, rem, f in self.db.execute(
+                    "SELECT code, trial, position, value, uncertainty, date, analyst, remarks, "
+                    "flags FROM result_rows WHERE submission = ? ORDER BY trial, position, code",
+                    (submission_row,))]
 
     # --- events ------------------------------------------------------------
 

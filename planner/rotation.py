@@ -148,7 +148,7 @@ def _step(pool: dict[str, _State], span: tuple[date, date], previous: str | None
         if len(keep) < len(available):
             out[previous] = "hosted the previous round"
             available = keep
-    available.sort(key=lambda s: (-s.credit, s.waiting_since(), s.order))
+    available.sort(key=lambda s: (s.credit <= 0, s.due_by(), s.waiting_since(), s.order))
     return available, out
 
 

@@ -23,6 +23,7 @@ __all__ = [
     "ACCENT", "INK", "MUTED", "RULE", "FONT", "BOLD", "MONO", "MONO_REGULAR",
     "page_size", "styles", "Running", "build", "write_atomic", "fit_text", "wrap_words",
     "rounded_box", "check_box", "table_style", "grouped_fingerprint", "escape",
+    "content_width", "table",
 ]
 
 ACCENT = "#1d5c63"
@@ -270,3 +271,19 @@ def grouped_fingerprint(fingerprint: str) -> str:
 def escape(text: str) -> str:
     """Return ``text`` safe inside a reportlab Paragraph (its mark-up is XML-like)."""
     return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+
+
+def content_width(paper: str) -> float:
+    """Return the width in points that text and tables may fill between the margins."""
+    # SimpleDocTemplate's frame keeps 6 pt of padding on each side.
+    return page_size(paper)[0] - 2 * _MARGIN_SIDE - 12
+
+
+def table(rows: Sequence[Sequence[Any]], widths: Sequence[float], style: Any, **kwargs: Any
+          ) -> Any:
+    """Return a left-aligned platypus Table with our style."""
+    from reportlab.platypus import Table
+
+    made = Table([list(r) for r in rows], colWidths=list(widths), hAlign="LEFT", **kwargs)
+    made.setStyle(style)
+    return made

@@ -40,27 +40,27 @@ def _address(lab: Lab, heading: str, st: dict[str, Any]) -> list[Any]:
 
 def _sign_lines(st: dict[str, Any], width: float) -> Any:
     from reportlab.lib.colors import HexColor
-    from reportlab.platypus import Paragraph, Table
+    from reportlab.platypus import Paragraph
 
     rows = [[Paragraph(label, st["label"]), "", "", ""] for label in
             ("packed by (host)", "checked by (host)", "received by (laboratory)")]
-    table = Table([[Paragraph("", st["label"]), Paragraph("name", st["label"]),
-                    Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
-                  colWidths=[0.28 * width, 0.30 * width, 0.16 * width, 0.26 * width],
-                  rowHeights=[5 * _MM] + [11 * _MM] * 3)
-    table.setStyle(_layout.table_style(header=False, extra=[
+    return _layout.table(
+        [[Paragraph("", st["label"]), Paragraph("name", st["label"]),
+          Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
+        [0.28 * width, 0.30 * width, 0.16 * width, 0.26 * width],
+        _layout.table_style(header=False, extra=[
         ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(_layout.INK)),
         ("LINEBELOW", (0, 0), (-1, 0), 0, HexColor("#ffffff")),
         ("LINEBELOW", (0, 1), (0, -1), 0, HexColor("#ffffff")),
         ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
-    ]))
-    return table
+        ("LINEAFTER", (1, 1), (2, -1), 6, HexColor("#ffffff")),
+    ]), rowHeights=[5 * _MM] + [11 * _MM] * 3)
 
 
 def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, Any],
            lab_id: str, *, paper: str) -> Path:
     """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``."""
-    from reportlab.platypus import KeepTogether, Paragraph, Spacer, Table
+    from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
     st = _layout.styles()
     esc = _layout.escape
@@ -71,7 +71,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
     materials = {m.id: m for m in study.materials}
     units = sorted((u for u in key["units"] if u["lab"] == lab_id and u["kind"] in
                     ("test", "spare")), key=lambda u: u["code"])
-    width = _layout.page_size(paper)[0] - 40 * _MM
+    width = _layout.content_width(paper)
 
     story: list[Any] = [
         Paragraph("Packing list", st["title"]),
@@ -79,9 +79,9 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
                   f"{esc(study.study.title)}. Check every unit against this list when you pack "
                   "it and again when it arrives.", st["lead"]),
     ]
-    addresses = Table([[_address(host, "from (host)", st), _address(lab, "to", st)]],
-                      colWidths=[width / 2, width / 2])
-    addresses.setStyle(_layout.table_style(header=False, extra=[
+    addresses = _layout.table(
+        [[_address(host, "from (host)", st), _address(lab, "to", st)]], [width / 2, width / 2],
+        _layout.table_style(header=False, extra=[
         ("VALIGN", (0, 0), (-1, -1), "TOP"), ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff"),
         ("LEFTPADDING", (0, 0), (-1, -1), 0)]))
     story += [addresses, Spacer(1, 5 * _MM)]
@@ -92,9 +92,8 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
         ["test window", f"{dates.get('test_start', '')} to {dates.get('test_end', '')}"],
         ["results due", dates.get("results_due", "")],
     ]
-    date_table = Table(date_rows, colWidths=[40 * _MM, width - 40 * _MM])
-    date_table.setStyle(_layout.table_style(header=False, extra=[
-        ("FONT", (0, 0), (0, -1), _layout.BOLD, 8.5)]))
+    date_table = _layout.table(date_rows, [40 * _MM, width - 40 * _MM], _layout.table_style(
+        header=False, extra=[("FONT", (0, 0), (0, -1), _layout.BOLD, 8.5)]))
     story += [Paragraph("Dates", st["h2"]), date_table,
               Paragraph("Round fingerprint", st["h2"]),
               Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"]),
@@ -116,12 +115,11 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
                      unit["trial"] if unit["trial"] is not None else "",
                      hazard.word if hazard else "", _layout.check_box(box),
                      _layout.check_box(box)])
-    contents = Table(rows, colWidths=[0.25 * width, 0.15 * width, 0.1 * width, 0.2 * width,
-                                      0.15 * width, 0.15 * width], repeatRows=1)
-    contents.setStyle(_layout.table_style(extra=[
-        ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
-        ("ALIGN", (4, 0), (-1, -1), "CENTER"),
-        ("ALIGN", (2, 0), (2, -1), "CENTER")]))
+    contents = _layout.table(rows, [0.25 * width, 0.15 * width, 0.1 * width, 0.2 * width,
+                                    0.15 * width, 0.15 * width], _layout.table_style(extra=[
+                                        ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
+                                        ("ALIGN", (4, 0), (-1, -1), "CENTER"),
+                                        ("ALIGN", (2, 0), (2, -1), "CENTER")]), repeatRows=1)
     story.append(contents)
 
     storage = sorted({materials[u["material"]].storage for u in units})

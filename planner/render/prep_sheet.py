@@ -1,0 +1,123 @@
+"""The host's preparation sheet: what to prepare of each material, and its codes.
+
+Confidential: it links every code to its material, so it stays with the host
+and is kept with the sealed key, never sent to a participant. Per material the
+units by kind and the total amount to prepare, a checklist, and then per
+material the list of its codes with destination and kind, in the order the
+host's label sheet prints them.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes
+from planner.render import _layout
+
+if TYPE_CHECKING:
+    from planner.spec import Study
+
+__all__ = ["render", "CONFIDENTIAL", "CHECKLIST"]
+
+CONFIDENTIAL = ("CONFIDENTIAL · host only · links codes to materials · keep with the sealed "
+                "key, never send to a participant")
+
+CHECKLIST = (
+    "Print the labels and this sheet; check that the fingerprint below matches key.fingerprint.",
+    "Prepare each material as one homogeneous batch before it is split into units.",
+    "Split each material into the number of units in the table, each of the amount given.",
+    "Label the units of one material at a time, following the separator labels; never have "
+    "two materials open on the bench at once.",
+    "Set the homogeneity units aside at once and test them before the parcels leave.",
+    "Keep the retained units in their storage condition until the round is evaluated.",
+    "Pack each laboratory's parcel against its packing list; a second person checks it.",
+    "Store this sheet with the sealed key, away from the units and the parcels.",
+)
+
+_MM = 72.0 / 25.4
+_KINDS = ("test", "spare", "retained", "homogeneity")
+
+
+def _amount(value: float) -> str:
+    return f"{value:g}"
+
+
+def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, Any], *,
+           paper: str) -> Path:
+    """Write the preparation sheet of the round to ``path``; return ``path``."""
+    from reportlab.platypus import KeepTogether, Paragraph, Spacer
+
+    st = _layout.styles()
+    esc = _layout.escape
+    width = _layout.content_width(paper)
+    host = study.lab(manifest["host"])
+    lab_rank = {lab.id: i for i, lab in enumerate(study.laboratories)}
+    kind_rank = {k: i for i, k in enumerate(_KINDS)}
+    by_material: dict[str, list[dict[str, Any]]] = {}
+    for unit in key["units"]:
+        by_material.setdefault(unit["material"], []).append(unit)
+
+    story: list[Any] = [
+        Paragraph("Preparation sheet", st["title"]),
+        Paragraph(f"For the host, <b>{esc(host.name)}</b>: prepare on "
+                  f"{esc(manifest['dates'].get('prepare_on', ''))}. "
+                  f"{len(key['units'])} units of {len(by_material)} materials.", st["lead"]),
+    ]
+    rows: list[list[Any]] = [["material", "test", "spare", "retained", "homog.", "units",
+                              "per unit", "to prepare"]]
+    for material in study.materials:
+        units = by_material.get(material.id, [])
+        counts = [sum(1 for u in units if u["kind"] == k) for k in _KINDS]
+        total = len(units)
+        rows.append([Paragraph(f"<b>{esc(material.id)}</b><br/>{esc(material.description)}",
+                               st["cell"]), *counts, total,
+                     f"{_amount(material.amount)} {material.amount_unit}",
+                     f"{_amount(material.amount * total)} {material.amount_unit}"])
+    widths = [0.34, 0.07, 0.07, 0.09, 0.08, 0.08, 0.12, 0.15]
+    story.append(_layout.table(rows, [w * width for w in widths], _layout.table_style(extra=[
+        ("ALIGN", (1, 0), (-1, -1), "RIGHT"), ("FONT", (5, 1), (5, -1), _layout.BOLD, 9),
+        ("FONT", (7, 1), (7, -1), _layout.BOLD, 9)]), repeatRows=1))
+    story.append(Paragraph("The amount to prepare includes spares, retained and homogeneity "
+                           "units; add what your splitting method loses.", st["small"]))
+
+    story.append(Paragraph("Storage and hazards", st["h2"]))
+    for material in study.materials:
+        hazard = (f" <b>{esc(material.hazard.word)}</b>: {esc(material.hazard.note)}"
+                  if material.hazard else "")
+        story.append(Paragraph(f"<b>{esc(material.id)}</b>: {esc(material.storage)}; stable "
+                               f"{material.stability_days} days.{hazard}", st["bullet"],
+                               bulletText="•"))
+
+    story.append(Paragraph("Checklist", st["h2"]))
+    box = 3.6 * _MM
+    checks = [[_layout.check_box(box), Paragraph(esc(text), st["body"])] for text in CHECKLIST]
+    story.append(_layout.table(checks, [8 * _MM, width - 8 * _MM], _layout.table_style(
+        header=False, extra=[("VALIGN", (0, 0), (-1, -1), "TOP"),
+                             ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff")])))
+    story += [Paragraph("Round fingerprint", st["h2"]),
+              Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"])]
+
+    for material in study.materials:
+        units = sorted(by_material.get(material.id, []), key=lambda u: (
+            lab_rank.get(u["lab"], 99), kind_rank.get(u["kind"], 9), u["trial"] or 0,
+            u["position"] or 0, u["code"]))
+        if not units:
+            continue
+        rows = [["code", "for", "kind", "trial", "run"]]
+        rows += [[codes.format(u["code"]), u["lab"], u["kind"],
+                  u["trial"] if u["trial"] is not None else "",
+                  u["position"] if u["position"] is not None else ""] for u in units]
+        table = _layout.table(rows, [w * width for w in (0.28, 0.2, 0.22, 0.15, 0.15)],
+                              _layout.table_style(extra=[
+                                  ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
+                                  ("TOPPADDING", (0, 1), (-1, -1), 2),
+                                  ("BOTTOMPADDING", (0, 1), (-1, -1), 2)]), repeatRows=1)
+        story.append(KeepTogether([
+            Paragraph(f"{esc(material.id)} · {len(units)} units", st["h2"]),
+            Paragraph(esc(material.description), st["small"]), Spacer(1, 2 * _MM),
+            table]))
+    running = _layout.Running(study.id, study.study.title, manifest["round"],
+                              "preparation sheet · host", confidential=CONFIDENTIAL)
+    return _layout.build(path, story, paper=paper, running=running,
+                         title=f"preparation sheet, {study.id} round {manifest['round']}")
