@@ -112,4 +112,10 @@ def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger) -
     taken = ledger.codes(before_row=current.row) if current else set()
     rebuilt = plan.build_units(study, host=host, secret=secret, taken=taken)
     found = plan.units_from_key(key)
-    return Verdict(fingerprint_ok, len(found), tuple(plan.compare_units(rebuilt, found)))
+    differences = plan.compare_units(rebuilt, found)
+    published = plan.manifest_runs(manifest)
+    for slot, runs in plan.expected_runs(study, host=host, secret=secret, units=rebuilt).items():
+        if published.get(slot) != runs:
+            differences.append(f"manifest.json: the run orders of {slot!r} differ from the ones "
+                               "the secret gives")
+    return Verdict(fingerprint_ok, len(found), tuple(differences))

@@ -162,7 +162,31 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
     nxt = info["next_host"]
     con.print(f"proposed next host: [bold]{nxt['host']}[/bold] — {nxt['reason']}")
     _print_schedule(con, info["schedule"])
+    if info.get("route"):
+        _print_route(con, info["route"])
     con.print("study spec is valid")
+
+
+@app.command()
+@_command
+def rotate(
+    study_dir: StudyDir,
+    rounds: Annotated[int, typer.Option("--rounds", min=1, max=100,
+                                        help="How many coming rounds to propose.")] = 4,
+    as_json: JsonOpt = False,
+) -> None:
+    """Propose the hosts of the coming rounds from the study's history, each explained."""
+    from planner import overview, rotation
+
+    study = _load(study_dir)
+    proposals = rotation.propose(study, overview.past_rounds(study, study_dir), rounds=rounds)
+    if as_json:
+        _print_json([{"round_index": p.round_index, "host": p.host, "date": p.date.isoformat(),
+                      "reason": p.reason} for p in proposals])
+        return
+    _console().print(_table("Proposed hosts", ["#", "date", "host", "why"],
+                            [[p.round_index, p.date.isoformat(), p.host, p.reason]
+                             for p in proposals]))
 
 
 def _print_schedule(con: Any, dates: dict[str, Any]) -> None:
@@ -171,6 +195,14 @@ def _print_schedule(con: Any, dates: dict[str, Any]) -> None:
     con.print(_table("Shipping", ["laboratory", "ship", "arrive", "transit (working days)"],
                      [[lab, d["ship"], d["arrive"], d["transit_days"]]
                       for lab, d in dates["labs"].items()]))
+
+
+def _print_route(con: Any, stations: list[dict[str, Any]]) -> None:
+    con.print(_table("Route of the circulating set",
+                     ["#", "laboratory", "visit", "from", "arrives", "tests", "passes on", "to"],
+                     [[s["index"], s["lab"], s["visit"] or "", s["received_from"] or "",
+                       s["arrive"], f"{s['test_start']} to {s['test_end']}", s["pass_on"] or "",
+                       s["next_lab"] or ""] for s in stations]))
 
 
 @app.command()
@@ -187,7 +219,7 @@ def plan(
     passphrase_file: PassFile = None,
 ) -> None:
     """Draw codes and run orders for a round, seal the key, write the round folder."""
-    from planner import calendar, draw, overview, rotation, spec
+    from planner import draw, overview, rotation, spec
     from planner import plan as planning
     from planner.ledger import Ledger
 
@@ -204,19 +236,20 @@ def plan(
                            + ", ".join(lab.id for lab in study.laboratories))
     elif not study.lab(host).can_host:
         raise PlannerError(f"--host {host!r} cannot host (can_host is false in study.yaml)")
-    dates = calendar.schedule_round(study, host, receive_by=when)
-    calendar.check_stability(study, dates)
+    dates, route = planning.dates_for(study, host, receive_by=when)
     passphrase = _passphrase(passphrase_file, confirm=True)
     with Ledger.open(study_dir) as ledger:
         taken = ledger.codes()
         result = planning.plan_round(study, round_id=round_id, host=host, dates=dates,
-                                     secret=draw.new_secret(), taken=taken)
+                                     secret=draw.new_secret(), taken=taken, route=route)
         folder = planning.write_round(study, study_dir, result, ledger, passphrase=passphrase,
                                       replace=replace)
     con = _console()
     con.print(f"planned round {round_id} of {study.id}: host {host}, "
               f"{len(result.units)} units, {len(study.laboratories)} laboratories")
     _print_schedule(con, dates.to_json())
+    if route is not None:
+        _print_route(con, route.to_json())
     con.print(f"fingerprint {result.fingerprint}")
     con.print(f"wrote {folder}")
     con.print("keep the passphrase safe: without it the key cannot be opened")
@@ -272,6 +305,133 @@ def verify(study_dir: StudyDir, round_id: RoundOpt) -> None:
         raise typer.Exit(1)
     typer.echo(f"round {round_id}: fingerprint matches and all {verdict.units_checked} units "
                "rebuild from the secret exactly")
+
+
+def _test_pause() -> Callable[[str], None] | None:
+    """Return the test-only pause hook of ``receive`` (RINGPLAN_TEST_PAUSE_RECEIVE), or None.
+
+    Hidden and for tests only: set the variable to 'before-commit' or 'after-commit'
+    and receive announces 'paused STAGE' on stderr and sleeps there, so a test can
+    kill the process at that point.
+    """
+    stage = os.environ.get("RINGPLAN_TEST_PAUSE_RECEIVE")
+    if not stage:
+        return None
+
+    def pause(at: str) -> None:
+        if at == stage:
+            import time
+
+            sys.stderr.write(f"paused {at}\n")
+            sys.stderr.flush()
+            time.sleep(120)
+    return pause
+
+
+@app.command()
+@_command
+def receive(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    files: Annotated[list[Path], typer.Argument(help="Returned result forms (CSV or XLSX).")],
+    lab: Annotated[str | None, typer.Option(
+        help="The laboratory that sent the forms; the form must say the same.")] = None,
+    check_only: Annotated[bool, typer.Option("--check", help="Only check; record nothing.")] = False,
+    after_unseal: Annotated[bool, typer.Option(
+        "--after-unseal", help="Accept results that arrive after the key was opened "
+        "(flagged in every output; needs --reason).")] = False,
+    reason: Annotated[str | None, typer.Option(help="Why results after unsealing are "
+                                               "accepted (recorded in the ledger).")] = None,
+) -> None:
+    """Check returned result forms and record them in the ledger and results/."""
+    from planner import codes, intake
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    with Ledger.open(study_dir) as ledger:
+        receipts = intake.receive(study, study_dir, round_id, files, ledger, lab=lab,
+                                  check_only=check_only, after_unseal=after_unseal,
+                                  reason=reason, _pause=_test_pause())
+    for r in receipts:
+        counts = f"{r.values} values, {r.failed} without value"
+        if r.repeat_of is not None:
+            typer.echo(f"{r.lab}: {r.file} is identical to version {r.repeat_of} already "
+                       "recorded; nothing changed")
+        elif r.version is None:
+            typer.echo(f"{r.lab}: {r.file} passes every check ({counts}); nothing recorded "
+                       "(--check)")
+        else:
+            newer = f" (supersedes version {r.supersedes})" if r.supersedes else ""
+            typer.echo(f"{r.lab}: recorded version {r.version}{newer} from {r.file}: {counts}; "
+                       f"stored as {r.stored}")
+        if r.after_unseal:
+            typer.echo(f"  AFTER UNSEAL: received after the key was opened ({reason})")
+        if r.received_late:
+            typer.echo("  late: received after the results were due")
+        if r.late_rows:
+            typer.echo("  late: tested after the test window: "
+                       + ", ".join(codes.format(c) for c in r.late_rows))
+        if r.missing:
+            typer.echo(f"  missing: {len(r.missing)} codes have no row: "
+                       + ", ".join(codes.format(c) for c in r.missing))
+
+
+@app.command()
+@_command
+def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) -> None:
+    """Show per laboratory whether results are in, and whether the key may be opened."""
+    from dataclasses import asdict
+
+    from planner import intake
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    with Ledger.open(study_dir) as ledger:
+        info = intake.round_status_table(study, study_dir, round_id, ledger, today=date.today())
+    if as_json:
+        _print_json(asdict(info))
+        return
+    con = _console()
+    con.print(_table(
+        f"Round {round_id}: results due {info.results_due}",
+        ["laboratory", "received", "version", "values", "no value", "codes missing", "late",
+         "days left", "flags"],
+        [[r["lab"], "yes" if r["received"] else "no", r["version"], r["values"], r["failed"],
+          r["missing"], "late" if r["late"] else "", r["days_left"],
+          " ".join(f for f, on in (("AFTER-UNSEAL", r["after_unseal"]),
+                                   (f"{r['spares_issued']} spare(s)", r["spares_issued"])) if on)]
+         for r in info.rows]))
+    if info.unsealed:
+        con.print("the key has been opened")
+    elif info.may_open:
+        con.print("the key may be opened: every laboratory has reported; run 'ringplan unseal'")
+    else:
+        con.print("the key stays sealed: waiting for " + ", ".join(info.waiting_for))
+
+
+@app.command()
+@_command
+def spare(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    lab: Annotated[str, typer.Option(help="The laboratory with the damaged or failed unit.")],
+    damaged: Annotated[str, typer.Option(help="The code on the damaged or failed unit.")],
+    passphrase_file: PassFile = None,
+) -> None:
+    """Tell a laboratory which of its spare codes replaces a damaged or failed unit."""
+    from planner import codes, intake, seal
+    from planner import plan as planning
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    passphrase = _passphrase(passphrase_file, confirm=False)
+    key = seal.open_key(planning.round_dir(study_dir, round_id), passphrase)
+    with Ledger.open(study_dir) as ledger:
+        swap = intake.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
+                                  key=key)
+    typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
+               f"{codes.format(swap.damaged)} (trial {swap.trial}, position {swap.position}); "
+               "report its result under the spare's code")
 
 
 def main() -> None:

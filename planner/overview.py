@@ -37,7 +37,7 @@ def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, da
 
 def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
     """Return the study summary: laboratories, materials with unit counts and amounts, next host."""
-    from planner import calendar, rotation
+    from planner import plan, rotation
 
     d = study.design
     counts = design.unit_counts(labs=len(study.laboratories), trials=d.trials,
@@ -56,7 +56,7 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
     past = past_rounds(study, study_dir)
     proposals = rotation.propose(study, past, rounds=1)
     host = proposals[0].host
-    dates = calendar.schedule_round(study, host)
+    dates, route = plan.dates_for(study, host)
     return {
         "study": study.id,
         "title": study.study.title,
@@ -75,4 +75,5 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
         "past_rounds": [{"round": r, "host": h, "date": w.isoformat()} for r, h, w in past],
         "next_host": {"host": host, "reason": proposals[0].reason},
         "schedule": dates.to_json(),
+        "route": route.to_json() if route else None,
     }

@@ -17,25 +17,28 @@ import secrets
 import shutil
 from collections.abc import Iterable
 from dataclasses import dataclass
+from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, design, draw, seal
+from planner import circulate, codes, design, draw, seal
 from planner.errors import LedgerError, SealError, Where
 
 if TYPE_CHECKING:
     from planner.calendar import RoundDates
+    from planner.circulate import Route
     from planner.ledger import Ledger
     from planner.spec import Study
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
-    "write_round", "round_dir", "read_manifest", "units_from_key", "compare_units",
-    "FORM_COLUMNS", "MANIFEST_NAME", "KINDS",
+    "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
+    "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
+    "expected_runs", "manifest_runs",
 ]
 
 MANIFEST_NAME = "manifest.json"
-KINDS = ("test", "spare", "retained", "homogeneity")
+KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
 _KEY_FORMAT = "ringplan-key/1"
 
@@ -60,10 +63,23 @@ class RoundPlan:
     units: tuple[Unit, ...]
     dates: RoundDates
     fingerprint: str
+    route: Route | None = None
 
 
-def _slots(study: Study) -> list[tuple[str, int]]:
-    return [(lab.id, t) for lab in study.laboratories for t in range(1, study.design.trials + 1)]
+def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int], tuple[str, ...]]:
+    """Return the materials in run order for every (laboratory or stop, trial) of a round.
+
+    In circulating mode the slots are the route's stops (``host@start`` and so
+    on for the host's visits); otherwise the laboratories.
+    """
+    d = study.design
+    if d.mode == "circulate":
+        keys = [circulate.station_key(lab, visit) for lab, visit in circulate.stops(study, host)]
+    else:
+        keys = [lab.id for lab in study.laboratories]
+    slots = [(key, t) for key in keys for t in range(1, d.trials + 1)]
+    return design.run_orders([m.id for m in study.materials], slots, scheme=d.run_order,
+                             stream=draw.Stream(secret, "orders"))
 
 
 def build_units(study: Study, *, host: str, secret: bytes,
@@ -71,13 +87,17 @@ def build_units(study: Study, *, host: str, secret: bytes,
     """Return every unit of a round (tests, spares, retained, homogeneity) with codes and positions.
 
     Codes come from the secret's "codes" stream in a fixed unit order; run orders
-    from its "orders" stream through ``design.run_orders``.
+    from its "orders" stream. A circulating set has one unit per material, the
+    artefact, held by the host between stops.
     """
     d = study.design
     material_ids = [m.id for m in study.materials]
-    orders = design.run_orders(material_ids, _slots(study), scheme=d.run_order,
-                               stream=draw.Stream(secret, "orders"))
     skeleton: list[tuple[str, str, str, int | None, int | None]] = []
+    if d.mode == "circulate":
+        skeleton = [(material, "artefact", host, None, None) for material in material_ids]
+        drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken))
+        return tuple(Unit(code, *rest) for code, rest in zip(drawn, skeleton, strict=True))
+    orders = run_orders(study, host=host, secret=secret)
     for material in material_ids:
         for lab in study.laboratories:
             for trial in range(1, d.trials + 1):
@@ -92,13 +112,35 @@ def build_units(study: Study, *, host: str, secret: bytes,
 
 
 def plan_round(study: Study, *, round_id: str, host: str, dates: RoundDates, secret: bytes,
-               taken: Iterable[str] = ()) -> RoundPlan:
-    """Return the RoundPlan of ``round_id`` hosted by ``host``, drawn from ``secret``."""
+               taken: Iterable[str] = (), route: Route | None = None) -> RoundPlan:
+    """Return the RoundPlan of ``round_id`` hosted by ``host``, drawn from ``secret``.
+
+    A circulating study needs its ``route`` (from ``circulate.schedule_route``).
+    """
+    if (study.design.mode == "circulate") != (route is not None):
+        raise ValueError("a route is needed exactly when the study circulates one set")
     units = build_units(study, host=host, secret=secret, taken=taken)
     salt = draw.Stream(secret, "salt").token(16)
-    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "")
+    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "", route)
     return RoundPlan(study.id, round_id, host, secret, salt, units, dates,
-                     seal.fingerprint(seal.canonical(key_of(plan))))
+                     seal.fingerprint(seal.canonical(key_of(plan))), route)
+
+
+def dates_for(study: Study, host: str, *,
+              receive_by: date | None = None) -> tuple[RoundDates, Route | None]:
+    """Return a round's dates (and route, for a circulating set) after checking stability.
+
+    Raises SpecError naming each material that would not last to the end of testing.
+    """
+    from planner import calendar
+
+    if study.design.mode == "circulate":
+        route = circulate.schedule_route(study, host, start=receive_by)
+        circulate.check_stability(study, route)
+        return circulate.round_dates(study, route), route
+    dates = calendar.schedule_round(study, host, receive_by=receive_by)
+    calendar.check_stability(study, dates)
+    return dates, None
 
 
 def key_of(plan: RoundPlan) -> dict[str, Any]:
@@ -149,6 +191,8 @@ def compare_units(expected: Iterable[Unit], found: Iterable[Unit]) -> list[str]:
 
 def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
     """Return the public manifest: per laboratory its codes by trial in run order, no materials."""
+    if plan.route is not None:
+        return _circulating_manifest(study, plan)
     dates = plan.dates.to_json()
     trials = study.design.trials
     runs: dict[str, list[list[Unit]]] = {lab.id: [[] for _ in range(trials)]
@@ -168,25 +212,94 @@ def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
             **dates["labs"].get(lab.id, {}),
         }
     return {
-        "format": "ringplan-manifest/1",
-        "study": study.id,
-        "title": study.study.title,
-        "round": plan.round_id,
-        "host": plan.host,
-        "measurand": study.study.measurand,
-        "unit": study.study.unit,
-        "fingerprint": plan.fingerprint,
-        "run_order": study.design.run_order,
-        "trials": study.design.trials,
-        "dates": {k: v for k, v in dates.items() if k != "labs"},
+        **_manifest_head(study, plan),
         "labs": labs,
         "host_units": {kind: sorted(u.code for u in plan.units if u.kind == kind)
                        for kind in ("retained", "homogeneity")},
     }
 
 
-def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str) -> str:
-    """Return the text of a laboratory's blank result form.
+def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
+    dates = plan.dates.to_json()
+    return {
+        "format": "ringplan-manifest/1",
+        "study": study.id,
+        "title": study.study.title,
+        "round": plan.round_id,
+        "host": plan.host,
+        "mode": study.design.mode,
+        "measurand": study.study.measurand,
+        "unit": study.study.unit,
+        "fingerprint": plan.fingerprint,
+        "run_order": study.design.run_order,
+        "trials": study.design.trials,
+        "dates": {k: v for k, v in dates.items() if k != "labs"},
+    }
+
+
+def _circulating_manifest(study: Study, plan: RoundPlan) -> dict[str, Any]:
+    """Return the manifest of a circulating set: the route and every stop's run orders."""
+    assert plan.route is not None
+    code_of = {u.material: u.code for u in plan.units}
+    orders = run_orders(study, host=plan.host, secret=plan.secret)
+    dates = plan.dates.to_json()["labs"]
+
+    def trials(key: str) -> list[list[str]]:
+        return [[code_of[m] for m in orders[(key, t)]] for t in range(1, study.design.trials + 1)]
+
+    labs = {}
+    for lab in study.laboratories:
+        key = circulate.station_key(lab.id, "start" if lab.id == plan.host else None)
+        labs[lab.id] = {"trials": trials(key), "spares": [], **dates.get(lab.id, {})}
+    visits = {s.visit: trials(s.key) for s in plan.route.stations
+              if s.visit is not None and s.visit != "start"}
+    return {
+        **_manifest_head(study, plan),
+        "labs": labs,
+        "route": plan.route.to_json(),
+        "host_visits": visits,
+        "artefacts": sorted(code_of.values()),
+    }
+
+
+def expected_runs(study: Study, *, host: str, secret: bytes,
+                  units: Iterable[Unit]) -> dict[str, list[list[str]]]:
+    """Return the codes in run order per trial for every laboratory (or stop) of a round."""
+    d = study.design
+    if d.mode == "circulate":
+        code_of = {u.material: u.code for u in units}
+        orders = run_orders(study, host=host, secret=secret)
+        keys = [circulate.station_key(lab, visit) for lab, visit in circulate.stops(study, host)]
+        return {key: [[code_of[m] for m in orders[(key, t)]] for t in range(1, d.trials + 1)]
+                for key in keys}
+    runs: dict[str, list[list[Unit]]] = {lab.id: [[] for _ in range(d.trials)]
+                                         for lab in study.laboratories}
+    for u in units:
+        if u.kind == "test" and u.trial is not None and u.lab in runs:
+            runs[u.lab][u.trial - 1].append(u)
+    return {lab: [[u.code for u in sorted(run, key=lambda u: u.position or 0)] for run in trials]
+            for lab, trials in runs.items()}
+
+
+def manifest_runs(manifest: dict[str, Any]) -> dict[str, list[list[str]]]:
+    """Return the run orders a manifest published, keyed like ``expected_runs``."""
+    host = manifest["host"]
+    circulating = manifest.get("mode") == "circulate"
+    out = {circulate.station_key(lab, "start") if circulating and lab == host else lab:
+           entry["trials"] for lab, entry in manifest["labs"].items()}
+    out.update({circulate.station_key(host, visit): trials
+                for visit, trials in manifest.get("host_visits", {}).items()})
+    return out
+
+
+def host_visit_forms(manifest: dict[str, Any]) -> list[tuple[str, str]]:
+    """Return (visit, form file name) of the host's extra stops in a circulating round."""
+    return [(visit, f"result-form-{visit}.csv") for visit in manifest.get("host_visits", {})]
+
+
+def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
+                    visit: str | None = None) -> str:
+    """Return the text of a laboratory's blank result form (a host ``visit`` of a circulating set).
 
     Identity lines start with '#'; laboratories that write a decimal comma get
     ';' as the separator, as spreadsheets in those locales expect.
@@ -194,17 +307,21 @@ def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str) -> str:
     lab = study.lab(lab_id)
     sep = ";" if lab.decimal == "comma" else ","
     out = io.StringIO()
-    for key, value in (("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
-                       ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
-                       ("decimal", lab.decimal), ("measurand", study.study.measurand),
-                       ("results due", manifest["dates"].get("results_due", ""))):
+    identity = [("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
+                ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
+                ("decimal", lab.decimal), ("measurand", study.study.measurand),
+                ("results due", manifest["dates"].get("results_due", ""))]
+    if visit is not None:
+        identity.insert(3, ("visit", visit))
+    for key, value in identity:
         out.write(f"# {key}: {value}\n")
     out.write(f"# fill in value (decimal {lab.decimal}, no thousands separator), optional expanded "
               "uncertainty (k = 2), date (YYYY-MM-DD), analyst; leave value empty and say why "
               "in remarks if a test failed\n")
     writer = csv.writer(out, delimiter=sep, lineterminator="\n")
     writer.writerow(FORM_COLUMNS)
-    for trial, run in enumerate(manifest["labs"][lab_id]["trials"], start=1):
+    runs = manifest["host_visits"][visit] if visit else manifest["labs"][lab_id]["trials"]
+    for trial, run in enumerate(runs, start=1):
         for position, code in enumerate(run, start=1):
             writer.writerow([trial, position, codes.format(code), "", "", "", "", ""])
     return out.getvalue()
@@ -266,6 +383,9 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
         for lab in study.laboratories:
             _write(staging / "labs" / lab.id / "result-form.csv",
                    result_form_csv(study, manifest, lab.id))
+        for visit, name in host_visit_forms(manifest):
+            _write(staging / "labs" / plan.host / name,
+                   result_form_csv(study, manifest, plan.host, visit))
         with ledger.transaction():
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,

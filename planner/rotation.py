@@ -215,8 +215,10 @@ def _reason(chosen: _State, ranked: list[_State], out: dict[str, str]) -> str:
             tie = ("waited longer" if runner.waiting_since() != chosen.waiting_since()
                    else "tie broken by the study's fixed order")
             parts.append(f"ahead of {runner.lab.id}: turn due as soon, {tie}")
-        else:
+        elif runner.credit > 0:
             parts.append(f"ahead of {runner.lab.id}: turn due sooner")
+        else:
+            parts.append(f"{runner.lab.id} next in line, not yet due")
     elif out:
         parts.append("the only laboratory available")
     parts.extend(f"{lab_id} skipped: {why}" for lab_id, why in sorted(out.items()))

@@ -409,6 +409,12 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
                         f"schedule.transit[{pairs[row.origin, row.destination]}])"))
         pairs.setdefault((row.origin, row.destination), i)
     d = study.design
+    if d.mode == "circulate":
+        for name in ("spares_per_lab", "retained_by_host", "homogeneity_units"):
+            if getattr(d, name):
+                out.append((("design", name), f"is {getattr(d, name)}, but a circulating set has "
+                            "one artefact per material and no spare, retained or homogeneity "
+                            "units; set it to 0"))
     if d.mode == "split" and d.homogeneity_units == 1:
         out.append((("design", "homogeneity_units"),
                     "1 unit cannot show between-unit variation; use 0 or at least 2 (10 is common practice)"))

@@ -330,3 +330,35 @@ def test_example_study_next_four_hosts_follow_the_rules():
 def test_zero_rounds_is_refused():
     with pytest.raises(SpecError, match="propose at least 1"):
         rotation.propose(_study([_lab("a"), _lab("b")]), [], rounds=0)
+
+
+def test_rotate_command_prints_the_proposals_as_json(runner, example_dir):
+    import json
+
+    from conftest import run_cli
+
+    result = run_cli(runner, "rotate", example_dir, "--rounds", "3", "--json")
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.stdout)
+    assert [item["host"] for item in data] == ["lin", "hel", "kal"]
+    assert data[2]["reason"].startswith("kal: hosted once, last in 2026-1")
+
+
+def test_rotate_command_reports_no_available_host_in_one_line(runner, example_dir):
+    from conftest import run_cli
+
+    spec_file = example_dir / "study.yaml"
+    text = spec_file.read_text(encoding="utf-8")
+    # Only kal can host, and it is closed for the round; the history goes so the spec stays valid.
+    text = text.replace("    can_host: true\n", "    can_host: false\n")
+    text = text.replace("  - id: kal\n", "  - id: kal\n    blackouts: [{from: 2027-01-01, to: 2027-02-28, "
+                        "reason: move to new building}]\n", 1)
+    text = text.replace("history:\n  - {round: 2026-1, host: kal, date: 2026-03-10}\n"
+                        "  - {round: 2026-2, host: tor, date: 2026-06-09}\n"
+                        "  - {round: 2026-3, host: hel, date: 2026-09-15}", "history: []")
+    text = text.replace("    country: SE\n    can_host: false", "    country: SE\n    can_host: true")
+    spec_file.write_text(text, encoding="utf-8")
+    result = run_cli(runner, "rotate", example_dir)
+    assert result.exit_code == 2
+    assert result.stderr == ("error: laboratories: no laboratory can host the round of 2027-01-19: "
+                             "kal: unavailable 2027-01-01 to 2027-02-28 (move to new building)\n")

@@ -127,33 +127,35 @@ def _numbered_canvas(running: Running) -> type:
 
         def _stamp(self, number: int, total: int) -> None:
             width, height = self._pagesize
+            # Line up with the frame of the text, which keeps 6 pt of padding.
+            left, right = _MARGIN_SIDE + 6, width - _MARGIN_SIDE - 6
             top = height - 14 * _MM
             self.saveState()
             self.setFillColor(HexColor(INK))
             self.setFont(BOLD, 8.5)
-            self.drawString(_MARGIN_SIDE, top, running.study_id)
+            self.drawString(left, top, running.study_id)
             gap = self.stringWidth(running.study_id + "  ", BOLD, 8.5)
             self.setFont(FONT, 8.5)
             self.setFillColor(HexColor(MUTED))
-            self.drawString(_MARGIN_SIDE + gap, top, f"round {running.round_id}")
-            self.drawRightString(width - _MARGIN_SIDE, top, running.document)
+            self.drawString(left + gap, top, f"round {running.round_id}")
+            self.drawRightString(right, top, running.document)
             if running.confidential:
                 self.setFillColor(HexColor(ACCENT))
                 self.setFont(BOLD, 8)
-                self.drawString(_MARGIN_SIDE, top - 4.2 * _MM, running.confidential)
+                self.drawString(left, top - 4.2 * _MM, running.confidential)
             self.setStrokeColor(HexColor(ACCENT))
             self.setLineWidth(0.6)
             rule = top - (6.5 if running.confidential else 2.6) * _MM
-            self.line(_MARGIN_SIDE, rule, width - _MARGIN_SIDE, rule)
+            self.line(left, rule, right, rule)
             bottom = 11 * _MM
             self.setStrokeColor(HexColor(RULE))
             self.setLineWidth(0.4)
-            self.line(_MARGIN_SIDE, bottom + 4 * _MM, width - _MARGIN_SIDE, bottom + 4 * _MM)
+            self.line(left, bottom + 4 * _MM, right, bottom + 4 * _MM)
             self.setFillColor(HexColor(MUTED))
             self.setFont(FONT, 7.5)
-            self.drawString(_MARGIN_SIDE, bottom, fit_text(
-                running.study_title, FONT, 7.5, width - 2 * _MARGIN_SIDE - 30 * _MM))
-            self.drawRightString(width - _MARGIN_SIDE, bottom, f"page {number} of {total}")
+            self.drawString(left, bottom, fit_text(
+                running.study_title, FONT, 7.5, right - left - 30 * _MM))
+            self.drawRightString(right, bottom, f"page {number} of {total}")
             self.restoreState()
 
     return _Numbered

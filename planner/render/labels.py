@@ -323,25 +323,71 @@ def _text_width(text: str, font: str, size: float) -> float:
 # --- drawing ------------------------------------------------------------------------
 
 
-def _draw_lines(canvas: Any, lines: Sequence[_Line], x: float, top: float, bottom: float,
-                code_count: int) -> None:
-    total = _height(lines) + (0.25 * lines[-1].size if len(lines) > code_count else 0.0)
+def _placed(lines: Sequence[_Line], x: float, top: float, bottom: float, code_count: int
+            ) -> list[tuple[_Line, float, float, tuple[float, float, float, float] | None]]:
+    """Return each line with its x, its baseline and the box around it (if boxed)."""
+    gap = 0.25 * lines[code_count].size if len(lines) > code_count else 0.0
+    total = _height(lines) + gap
     # Centre the block in the text area, so short labels do not hang from the top.
     y = top - ((top - bottom) - total) / 2
+    out: list[tuple[_Line, float, float, tuple[float, float, float, float] | None]] = []
     for i, line in enumerate(lines):
         if i == code_count:
-            y -= 0.25 * line.size
+            y -= gap
         if line.boxed:
             y -= 0.25 * line.size
         y -= line.size * _LEADING
         baseline = y + 0.22 * line.size
-        canvas.setFont(line.font, line.size)
-        canvas.drawString(x + (0.35 * line.size if line.boxed else 0), baseline, line.text)
+        box = None
         if line.boxed:
             width = _text_width(line.text, line.font, line.size) + 0.7 * line.size
-            canvas.setLineWidth(0.6)
-            canvas.rect(x, baseline - 0.3 * line.size, width, line.size * 1.12, stroke=1, fill=0)
+            box = (x, baseline - 0.3 * line.size, width, line.size * 1.12)
             y -= 0.25 * line.size
+        out.append((line, x + (0.35 * line.size if line.boxed else 0.0), baseline, box))
+    return out
+
+
+def _draw_lines(canvas: Any, lines: Sequence[_Line], x: float, top: float, bottom: float,
+                code_count: int) -> None:
+    for line, text_x, baseline, box in _placed(lines, x, top, bottom, code_count):
+        canvas.setFont(line.font, line.size)
+        canvas.drawString(text_x, baseline, line.text)
+        if box is not None:
+            canvas.setLineWidth(0.6)
+            canvas.rect(*box, stroke=1, fill=0)
+
+
+def _pdf_string(text: str) -> str:
+    """Return ``text`` as a PDF literal string in the WinAnsi encoding of the standard fonts."""
+    out = []
+    for byte in text.encode("cp1252", errors="replace"):
+        if byte in (0x28, 0x29, 0x5C):
+            out.append("\\" + chr(byte))
+        elif 32 <= byte < 127:
+            out.append(chr(byte))
+        else:
+            out.append(f"\\{byte:03o}")
+    return "(" + "".join(out) + ")"
+
+
+_CODE_MARK = ("\x00", "\x01")
+
+
+def _text_ops(lines: Sequence[_Line], frame: _Frame, code_count: int,
+              fonts: dict[str, str], ink: str) -> str:
+    """Return the operators of a label's text relative to its cell, with the code's text
+    left as the marks ``_CODE_MARK`` (the same template serves every label alike)."""
+    parts = [f"{ink} rg {ink} RG BT"]
+    boxes = []
+    for i, (line, x, baseline, box) in enumerate(
+            _placed(lines, frame.text_x, frame.text_top, frame.text_bottom, code_count)):
+        text = f"({_CODE_MARK[i]})" if i < code_count else _pdf_string(line.text)
+        parts.append(f"{fonts[line.font]} {line.size:.2f} Tf 1 0 0 1 {x:.2f} {baseline:.2f} Tm "
+                     f"{text} Tj")
+        if box is not None:
+            boxes.append("0.6 w {:.2f} {:.2f} {:.2f} {:.2f} re S".format(*box))
+    parts.append("ET")
+    return " ".join(parts + boxes)
 
 
 def _draw_separator(canvas: Any, sep: Separator, cell: tuple[float, float, float, float],
@@ -406,9 +452,14 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
         canvas.setTitle(title)
         canvas.setAuthor("ringplan")
         canvas.setCreator("ringplan")
-        ink = HexColor(_layout.INK)
+        ink = "{:.3f} {:.3f} {:.3f}".format(*HexColor(_layout.INK).rgb())
+        # Registering the fonts with the document gives their resource names.
+        fonts = {f: canvas._doc.getInternalFontName(f)
+                 for f in (_layout.MONO, _layout.FONT, _layout.BOLD)}
+        qr_place = (f"q 0 g {frame.qr_side:.3f} 0 0 {frame.qr_side:.3f} {frame.qr_x:.3f} "
+                    f"{frame.qr_y:.3f} cm")
         symbols = _symbols(items, workers)
-        cache: dict[tuple[Any, ...], tuple[list[_Line], int]] = {}
+        cache: dict[tuple[Any, ...], tuple[str, int]] = {}
         cell_index = start_at - 1
         for item in items:
             if cell_index and cell_index % geometry.per_page == 0:
@@ -419,30 +470,36 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
                 _draw_separator(canvas, item, cell, geometry)
                 continue
             x, y, _, _ = cell
-            _qr.draw(canvas, next(symbols), x + frame.qr_x, y + frame.qr_y, frame.qr_side)
             # Every code is 10 characters of a monospaced face, so the layout
-            # depends only on the other fields: reuse it for labels alike.
+            # depends only on the other fields: one operator template serves
+            # all labels alike, with the code filled in.
             shape = (item.hazard, item.trial, item.lab, item.use_by, item.study, item.storage)
-            if shape not in cache:
+            template = cache.get(shape)
+            if template is None:
                 lines, _dropped = layout(item, geometry)
-                cache[shape] = (lines, sum(1 for ln in lines if ln.font == _layout.MONO))
-            lines, code_count = cache[shape]
+                code_count = sum(1 for ln in lines if ln.font == _layout.MONO)
+                template = cache[shape] = (_text_ops(lines, frame, code_count, fonts, ink),
+                                           code_count)
+            ops, code_count = template
             printed = codes.format(item.code)
             if code_count == 2:
-                first, second = printed.split("-")
-                texts = [first + "-", second]
+                ops = ops.replace(_CODE_MARK[0], printed[:5]).replace(_CODE_MARK[1], printed[5:])
             else:
-                texts = [printed]
-            actual = [_Line(texts[i], ln.font, ln.size, ln.boxed) if i < code_count else ln
-                      for i, ln in enumerate(lines)]
-            canvas.setFillColor(ink)
-            canvas.setStrokeColor(ink)
-            _draw_lines(canvas, actual, x + frame.text_x, y + frame.text_top,
-                        y + frame.text_bottom, code_count)
+                ops = ops.replace(_CODE_MARK[0], printed)
+            canvas.addLiteral(f"q 1 0 0 1 {x:.2f} {y:.2f} cm {qr_place} {next(symbols)} Q "
+                              f"{ops} Q")
         canvas.showPage()
         canvas.save()
 
-    return _layout.write_atomic(path, write)
+    from reportlab import rl_config
+
+    # Page streams deflated but not ASCII85-wrapped: a quarter smaller and
+    # faster to write; every PDF reader takes binary streams.
+    was, rl_config.useA85 = rl_config.useA85, 0
+    try:
+        return _layout.write_atomic(path, write)
+    finally:
+        rl_config.useA85 = was
 
 
 def render_calibration(path: Path, geometry: Geometry, *,

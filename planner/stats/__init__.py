@@ -11,7 +11,23 @@ needed, so any CSV in that shape can be evaluated::
 ``evaluate_table`` runs every method that the data allow - one-way ANOVA, the gauge
 R&R ANOVA and average-and-range methods (materials as parts, laboratories as
 operators, trials as replicates), ISO 5725-2 precision and ISO 13528 scores - and
-returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}``.
+returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}``::
+
+    materials, labs      ids in order of first appearance
+    anova[material]      one-way ANOVA of labs: ss_/df_/ms_between|within, f, p
+    grr_anova            table{part, operator, interaction, repeatability, total: ss, df,
+                         ms, f, p}, pooled_table, model ("full"/"pooled"), *_sd,
+                         pct_contribution, pct_study_variation, pct_tolerance, ndc
+    grr_range            ev, av, grr, pv, tv, pct_ev/av/grr/pv, pct_tolerance, ndc,
+                         range_check{d4, ucl, flagged[{part, operator, range}]}
+    precision[material]  s_r, s_L, s_R, r, R, cells{lab: {n, mean, sd}}, mandel_h, mandel_k,
+                         indicators{h_5, h_1, k_5, k_1}, cochran{...}, grubbs{...}, notes
+    scores[material]     assigned_value, u_assigned_value, robust_sd, sigma_pt, method,
+                         use_z_prime, labs{lab: {mean, n, z, z_prime, En, band, en_band}}
+
+The gauge study treats every material as a part and every laboratory as an operator;
+it needs the same number (2 or more) of results in every material x laboratory cell and
+is skipped with the reason otherwise (see ``gauge_rr``).
 Importing this package loads no numpy or scipy; the method modules are imported when
 ``evaluate_table`` runs.
 """
@@ -332,7 +348,7 @@ def summary_text(result: Mapping[str, Any]) -> str:
             skipped.append(f"scores {m}: {sc['skipped']}")
         if "skipped" in pr:
             skipped.append(f"precision {m}: {pr['skipped']}")
-        n_labs = len(sc.get("labs", {})) if "labs" in sc else pr.get("p", "")
+        n_labs = len(sc["labs"]) if "labs" in sc else pr.get("p", "-")
         bands = [s["band"] for s in sc.get("labs", {}).values()]
         table.append([str(m), str(n_labs), _g(sc.get("assigned_value")),
                       _g(sc.get("u_assigned_value")), _g(sc.get("sigma_pt")),
@@ -357,8 +373,9 @@ def summary_text(result: Mapping[str, Any]) -> str:
             if c.get("result") in ("straggler", "outlier"):
                 flags.append([str(m), c["lab"], f"Cochran C = {c['statistic']:.3f}", c["result"]])
     out.extend(_align(table))
-    out.append("")
     ga, gr = result["grr_anova"], result["grr_range"]
+    if "skipped" not in ga or "skipped" not in gr:
+        out.append("")
     if "skipped" in ga:
         skipped.append(f"gauge R&R (ANOVA): {ga['skipped']}")
     else:

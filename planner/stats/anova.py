@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import TYPE_CHECKING
 
-from planner.stats._common import factorize
+from planner.stats._common import f_sf, factorize
 
 if TYPE_CHECKING:
     import numpy as np
@@ -50,7 +50,8 @@ def evaluate(values: ArrayLike, groups: Sequence[Hashable] | ArrayLike, *,
              exact: bool = False) -> AnovaTable:
     """Return the one-way ANOVA table of ``values`` grouped by ``groups``.
 
-    Raises ValueError when the lengths differ or fewer than two groups are given.
+    Raises ValueError when the lengths differ, a value is not finite or fewer than two
+    groups are given.
     """
     import numpy as np
 
@@ -58,6 +59,8 @@ def evaluate(values: ArrayLike, groups: Sequence[Hashable] | ArrayLike, *,
     codes, labels = factorize(np.asarray(groups).ravel().tolist())
     if x.size != codes.size:
         raise ValueError(f"{x.size} values but {codes.size} group labels")
+    if not np.isfinite(x).all():
+        raise ValueError("values must be finite numbers")
     k = len(labels)
     if k < 2:
         raise ValueError("one-way ANOVA needs at least two groups")
@@ -123,10 +126,8 @@ def _f_degenerate(ssb: float, df_w: int) -> float:
 
 
 def _p_value(f: float, df_b: int, df_w: int) -> float:
-    from scipy import stats
-
     if math.isnan(f):
         return math.nan
     if math.isinf(f):
         return 0.0
-    return float(stats.f.sf(f, df_b, df_w))
+    return f_sf(f, df_b, df_w)

@@ -25,7 +25,7 @@ from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from planner.stats._common import Skipped, factorize
+from planner.stats._common import Skipped, f_sf, factorize
 
 if TYPE_CHECKING:
     import numpy as np
@@ -47,7 +47,8 @@ K1: Mapping[int, float] = {2: 0.8862, 3: 0.5908}
 K2: Mapping[int, float] = {2: 0.7071, 3: 0.5231}
 K3: Mapping[int, float] = {2: 0.7071, 3: 0.5231, 4: 0.4467, 5: 0.4030, 6: 0.3742,
                            7: 0.3534, 8: 0.3375, 9: 0.3249, 10: 0.3146}
-# Range-chart factor D4 for subgroups of r trials (classical control-chart tables; MSA [M]).
+# Range-chart factor D4 for subgroups of r trials (classical control-chart tables; the
+# values as used in MSA are from memory).
 D4: Mapping[int, float] = {2: 3.267, 3: 2.574}
 
 _COMPONENTS = ("repeatability", "reproducibility", "operator", "interaction", "grr", "part")
@@ -184,9 +185,6 @@ def evaluate_anova(cube: ArrayLike, *, tolerance: float | None = None,
     ``pool_alpha=1.0`` never pools the interaction. Negative variance estimates are set
     to 0 (each component separately).
     """
-    import numpy as np
-    from scipy import stats
-
     y = _check_cube(cube)
     if isinstance(y, Skipped):
         return y
@@ -208,7 +206,7 @@ def evaluate_anova(cube: ArrayLike, *, tolerance: float | None = None,
         if denom is None:
             return {"ss": ss, "df": df, "ms": ms, "f": math.nan, "p": math.nan}
         f = ms / denom if denom > 0 else (math.inf if ms > 0 else math.nan)
-        pv = float(stats.f.sf(f, df, dfd)) if math.isfinite(f) else (0.0 if f > 0 else math.nan)
+        pv = f_sf(f, df, dfd) if math.isfinite(f) else (0.0 if f > 0 else math.nan)
         return {"ss": ss, "df": df, "ms": ms, "f": f, "p": pv}
 
     # Full model: parts and operators are tested against the interaction (random effects).
@@ -316,7 +314,7 @@ def _pct(part: float, whole: float | None) -> float:
 
 
 def _ndc(part_sd: float, grr_sd: float) -> int | None:
-    # ndc = 1.41 PV/GRR truncated, never below 1 (AIAG MSA; truncation and floor [M]).
+    # ndc = 1.41 PV/GRR truncated, never below 1 (AIAG MSA; truncation and floor from memory).
     if not grr_sd > 0:
         return None
     return max(1, math.trunc(1.41 * part_sd / grr_sd))

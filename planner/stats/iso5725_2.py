@@ -23,7 +23,8 @@ from dataclasses import dataclass
 from functools import lru_cache
 from typing import TYPE_CHECKING
 
-from planner.stats._common import Skipped, classify_large, classify_small, factorize, majority
+from planner.stats._common import (Skipped, classify_large, classify_small, f_isf, factorize,
+                                   majority, t_isf)
 
 if TYPE_CHECKING:
     import numpy as np
@@ -40,7 +41,7 @@ SOURCE = ("ISO 5725-2:1994 (with Cor 1:2002; 2nd ed. 2019), Accuracy (trueness a
           "of repeatability and reproducibility; §7.3 (Mandel h/k, Cochran, Grubbs), "
           "§7.4.4-7.4.5 (general formulas T1..T5); r = 2.8 s_r, R = 2.8 s_R")
 
-# Factor 2.8 ~ 1.96 * sqrt(2) for the 95 % limits (ISO 5725-6:1994 §4.1.4 [M]).
+# Factor 2.8 ~ 1.96 * sqrt(2) for the 95 % limits (ISO 5725-6:1994 §4.1.4, from memory).
 _LIMIT_FACTOR = 2.8
 
 
@@ -199,10 +200,12 @@ def _grubbs(dmeans: NDArray[np.float64], names: list[str],
     hi, lo = int(order[-1]), int(order[0])
     g_hi = (float(dmeans[hi]) - xbar) / s
     g_lo = (xbar - float(dmeans[lo])) / s
-    out["high"] = {"lab": names[hi], "statistic": g_hi, "result": classify_large(g_hi, g5, g1)}
-    out["low"] = {"lab": names[lo], "statistic": g_lo, "result": classify_large(g_lo, g5, g1)}
-    # ISO 5725-2 §7.3.4 [M]: the double test is read only when no single outlier is found.
-    out["double_applies"] = "outlier" not in (out["high"]["result"], out["low"]["result"])  # type: ignore[index]
+    c_hi, c_lo = classify_large(g_hi, g5, g1), classify_large(g_lo, g5, g1)
+    out["high"] = {"lab": names[hi], "statistic": g_hi, "result": c_hi}
+    out["low"] = {"lab": names[lo], "statistic": g_lo, "result": c_lo}
+    # ISO 5725-2 §7.3.4 [from memory]: the double test is read only when the single test
+    # finds no outlier at either end.
+    out["double_applies"] = "outlier" not in (c_hi, c_lo)
     if p < 4:
         return out
     d5, d1 = grubbs_double_critical(p, 0.05), grubbs_double_critical(p, 0.01)
@@ -230,9 +233,7 @@ def mandel_h_indicator(p: int, alpha: float) -> float:
 
     h_c = (p-1) t / sqrt(p (p-2+t^2)), t the upper alpha/2 quantile of t with p-2 df.
     """
-    from scipy import stats
-
-    t = float(stats.t.isf(alpha / 2, p - 2))
+    t = t_isf(alpha / 2, p - 2)
     return (p - 1) * t / math.sqrt(p * (p - 2 + t * t))
 
 
@@ -241,9 +242,7 @@ def mandel_k_indicator(p: int, n: int, alpha: float) -> float:
 
     k_c = sqrt(p / (1 + (p-1)/F)), F the upper alpha quantile of F(n-1, (p-1)(n-1)).
     """
-    from scipy import stats
-
-    f = float(stats.f.isf(alpha, n - 1, (p - 1) * (n - 1)))
+    f = f_isf(alpha, n - 1, (p - 1) * (n - 1))
     return math.sqrt(p / (1 + (p - 1) / f))
 
 
@@ -252,9 +251,7 @@ def cochran_critical(p: int, n: int, alpha: float) -> float:
 
     C_c = 1 / (1 + (p-1)/F), F the upper alpha/p quantile of F(n-1, (p-1)(n-1)).
     """
-    from scipy import stats
-
-    f = float(stats.f.isf(alpha / p, n - 1, (p - 1) * (n - 1)))
+    f = f_isf(alpha / p, n - 1, (p - 1) * (n - 1))
     return 1.0 / (1.0 + (p - 1) / f)
 
 
@@ -263,9 +260,7 @@ def grubbs_single_critical(p: int, alpha: float) -> float:
 
     G_c = ((p-1)/sqrt(p)) sqrt(t^2/(p-2+t^2)), t the upper alpha/(2p) quantile of t, p-2 df.
     """
-    from scipy import stats
-
-    t = float(stats.t.isf(alpha / (2 * p), p - 2))
+    t = t_isf(alpha / (2 * p), p - 2)
     return (p - 1) / math.sqrt(p) * math.sqrt(t * t / (p - 2 + t * t))
 
 

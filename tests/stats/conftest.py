@@ -28,5 +28,6 @@ def aiag_cube(read_table):
     rows = read_table("aiag_msa4_average_range_example.csv")
     cube = [[[0.0] * 3 for _ in range(3)] for _ in range(10)]
     for r in rows:
-        cube[int(r["part"]) - 1]["ABC".index(r["appraiser"])][int(r["trial"]) - 1] = float(r["value"])
+        part, who, trial = int(r["part"]) - 1, "ABC".index(r["appraiser"]), int(r["trial"]) - 1
+        cube[part][who][trial] = float(r["value"])
     return cube

@@ -105,7 +105,8 @@ def test_unbalanced_estimates_equal_the_one_way_random_effects_anova():
     smf = pytest.importorskip("statsmodels.formula.api")
     sm = pytest.importorskip("statsmodels.api")
     values, labs, sizes = _unbalanced()
-    table = sm.stats.anova_lm(smf.ols("y ~ C(lab)", pd.DataFrame({"y": values, "lab": labs})).fit())
+    frame = pd.DataFrame({"y": values, "lab": labs})
+    table = sm.stats.anova_lm(smf.ols("y ~ C(lab)", frame).fit())
     ms_w = table.loc["Residual", "mean_sq"]
     ms_b = table.loc["C(lab)", "mean_sq"]
     n_tot, p = sum(sizes), len(sizes)
@@ -132,7 +133,8 @@ def test_general_formulas_as_printed_in_t1_to_t5():
     ybar = np.array([np.mean(c) for c in cells.values()])
     s2 = np.array([np.var(c, ddof=1) if len(c) > 1 else 0.0 for c in cells.values()])
     p = len(cells)
-    t1, t2, t3, t4, t5 = (n * ybar).sum(), (n * ybar ** 2).sum(), n.sum(), (n ** 2).sum(), ((n - 1) * s2).sum()
+    t1, t2, t3 = (n * ybar).sum(), (n * ybar ** 2).sum(), n.sum()
+    t4, t5 = (n ** 2).sum(), ((n - 1) * s2).sum()
     s_r2 = t5 / (t3 - p)
     s_L2 = ((t2 * t3 - t1 ** 2) / (t3 * (p - 1)) - s_r2) * t3 * (p - 1) / (t3 ** 2 - t4)
     res = iso5725_2.evaluate(values, labs)

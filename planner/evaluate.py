@@ -1,0 +1,370 @@
+"""Evaluate a round: unblind the accepted results with the key, compute, write report/.
+
+``unblind`` joins each accepted result to its unit in the decoding key, so that
+a code becomes (material, laboratory, trial). ``evaluate_round`` does that for
+a round whose key has been unsealed, runs the statistics of ``planner.stats``
+twice (once with every laboratory, once with the host left out of the
+consensus, because the host prepared the material and may know more about
+it), and writes into ``rounds/<round>/report/``:
+
+- ``results.csv``      the unblinded results, one line per result (long format:
+                       material, lab, trial, code, value, uncertainty, flags);
+                       ``ringplan analyze`` reads it as it is
+- ``statistics.json``  everything computed, the same structure ``ringplan
+                       analyze --json`` prints plus the round's identity
+- ``report.pdf``       for the coordinator, with the laboratories' ids
+- ``letter-<lab>.pdf`` one per laboratory: its own results and scores, the
+                       others only under participant codes drawn anew each round
+
+Flags on a result: ``late`` (received after the results were due),
+``after-unseal`` (received after the key was opened), ``in-house`` (the host's
+own result: it prepared the material) and ``spare-used`` (a spare unit replaced
+the test unit).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes, draw, plan, seal
+from planner.errors import DataError, LedgerError, Where
+
+if TYPE_CHECKING:
+    from planner.ledger import Ledger
+    from planner.spec import Study
+
+__all__ = [
+    "Unblinded", "unblind", "participant_codes", "results_csv", "round_statistics",
+    "evaluate_round", "REPORT_DIR", "RESULTS_NAME", "STATISTICS_NAME", "REPORT_NAME",
+    "FLAGS", "letter_name",
+]
+
+REPORT_DIR = "report"
+RESULTS_NAME = "results.csv"
+STATISTICS_NAME = "statistics.json"
+REPORT_NAME = "report.pdf"
+FLAGS = ("late", "after-unseal", "in-house", "spare-used")
+_STATS_FORMAT = "ringplan-statistics/1"
+_PARALLEL_FROM = 24  # letters; below this a process pool costs more than it saves
+
+
+@dataclass(frozen=True, slots=True)
+class Unblinded:
+    """One unblinded result; ``value`` is None when the test failed and no value was given."""
+
+    material: str
+    lab: str
+    trial: int
+    code: str
+    value: float | None
+    uncertainty: float | None
+    flags: tuple[str, ...]
+
+
+def _field(record: Any, name: str, default: Any = None) -> Any:
+    if isinstance(record, Mapping):
+        return record.get(name, default)
+    return getattr(record, name, default)
+
+
+def _number(v: Any) -> float | None:
+    if v is None or v == "":
+        return None
+    out = float(v)
+    return out if math.isfinite(out) else None
+
+
+def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
+    """Return the results joined to the key's units: material, lab, trial, code, value, flags.
+
+    Each result (a mapping or an object) gives ``lab``, ``code``, ``value`` and
+    optionally ``uncertainty``, ``trial`` (needed for a spare or a circulating
+    artefact) and ``flags`` ("late", "after-unseal", ...). Raises DataError for a code
+    that is not in the key, belongs to another laboratory or to a unit nobody tests,
+    a spare without a trial, or a unit (or material and trial) reported twice. Rows
+    come sorted by material, laboratory and trial.
+    """
+    units = {u.code: u for u in plan.units_from_key(dict(key))}
+    host = str(key.get("host", ""))
+    rows: list[Unblinded] = []
+    seen: set[tuple[str, str]] = set()
+    taken_slots: dict[tuple[str, str, int], str] = {}
+    for record in results:
+        lab = str(_field(record, "lab"))
+        raw = str(_field(record, "code", ""))
+        code = codes.compact(raw)
+        shown = codes.format(code) if codes.is_valid(code) else repr(raw)
+        unit = units.get(code)
+        if unit is None:
+            raise DataError(f"laboratory {lab!r} reported code {shown}, which is not a unit of "
+                            "this round; check the result form against the packing list")
+        shared = unit.kind == "artefact"  # a circulating artefact is tested by everyone
+        if unit.lab != lab and not shared:
+            raise DataError(f"laboratory {lab!r} reported code {shown}, but that unit was sent "
+                            f"to {unit.lab!r}; check the result form")
+        if unit.kind not in ("test", "spare", "artefact"):
+            raise DataError(f"code {shown} is a {unit.kind} unit kept by the host, not a "
+                            f"unit to test; laboratory {lab!r} should not report it")
+        if (lab, code) in seen and not shared:
+            raise DataError(f"unit {shown} is reported twice by {lab!r}; keep one result per unit")
+        seen.add((lab, code))
+        flags = [str(f) for f in (_field(record, "flags") or ())]
+        if unit.kind == "test":
+            assert unit.trial is not None
+            trial = int(unit.trial)
+        else:
+            trial_raw = _field(record, "trial")
+            if trial_raw in (None, ""):
+                raise DataError(f"{unit.kind} unit {shown} of {lab!r} has no trial; the result "
+                                "form line must say which trial it was tested in")
+            trial = int(trial_raw)
+            if unit.kind == "spare":
+                flags.append("spare-used")
+        slot = (unit.material, lab, trial)
+        if slot in taken_slots:
+            other = codes.format(taken_slots[slot])
+            raise DataError(f"{lab!r} reported two results for the same material in trial "
+                            f"{trial} (units {other} and {shown}); a spare replaces a test unit, "
+                            "it is not an extra result")
+        taken_slots[slot] = code
+        if lab == host:
+            flags.append("in-house")
+        ordered = tuple(f for f in FLAGS if f in flags) + tuple(
+            sorted({f for f in flags if f not in FLAGS}))
+        rows.append(Unblinded(unit.material, lab, trial, code, _number(_field(record, "value")),
+                              _number(_field(record, "uncertainty")), ordered))
+    rows.sort(key=lambda r: (r.material, r.lab, r.trial))
+    return rows
+
+
+def participant_codes(secret: bytes, labs: Sequence[str]) -> dict[str, str]:
+    """Return the anonymous participant code of each laboratory for one round ("P-07").
+
+    The codes are a random permutation drawn from the round secret's "participants"
+    stream, so they are the same whenever the round is evaluated and differ between
+    rounds; the width grows with the number of laboratories.
+    """
+    order = draw.Stream(secret, "participants").shuffle(list(labs))
+    width = max(2, len(str(len(labs))))
+    return {lab: f"P-{i:0{width}d}" for i, lab in enumerate(order, start=1)}
+
+
+def letter_name(lab: str) -> str:
+    """Return the file name of a laboratory's letter."""
+    return f"letter-{lab}.pdf"
+
+
+def results_csv(rows: Sequence[Unblinded]) -> str:
+    """Return the long-format CSV of unblinded results (decimal point, ',' separated).
+
+    Results without a value are left out (they are listed as missing in
+    statistics.json), so that ``ringplan analyze`` reads the file as it is.
+    """
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(["material", "lab", "trial", "code", "value", "uncertainty", "flags"])
+    for r in rows:
+        if r.value is None:
+            continue
+        writer.writerow([r.material, r.lab, r.trial, codes.format(r.code), repr(r.value),
+                         "" if r.uncertainty is None else repr(r.uncertainty), " ".join(r.flags)])
+    return out.getvalue()
+
+
+def _ordered(rows: Sequence[Unblinded], study: Study) -> list[Unblinded]:
+    mat_rank = {m.id: i for i, m in enumerate(study.materials)}
+    lab_rank = {lab.id: i for i, lab in enumerate(study.laboratories)}
+    return sorted(rows, key=lambda r: (mat_rank.get(r.material, len(mat_rank)), r.material,
+                                       lab_rank.get(r.lab, len(lab_rank)), r.lab, r.trial))
+
+
+def _without_host(full: Mapping[str, Any], alt: Mapping[str, Any], host: str,
+                  assigned: str, reference_lab: str | None) -> dict[str, Any]:
+    """Return, per material, the consensus without the host and its difference to the full one."""
+    out: dict[str, Any] = {}
+    for m, sc in full["scores"].items():
+        other = alt["scores"].get(m, {})
+        if assigned == "reference":
+            out[m] = {"skipped": f"the assigned value is the result of the reference laboratory "
+                                 f"{reference_lab!r}, not a consensus"}
+        elif host not in sc.get("labs", {}):
+            out[m] = {"skipped": f"the host {host!r} reported no result for this material"}
+        elif "skipped" in sc or "skipped" in other:
+            out[m] = {"skipped": other.get("skipped") or sc.get("skipped")}
+        else:
+            diff = sc["assigned_value"] - other["assigned_value"]
+            sig = sc.get("sigma_pt")
+            out[m] = {
+                "assigned_value": other["assigned_value"],
+                "u_assigned_value": other["u_assigned_value"],
+                "robust_sd": other["robust_sd"], "sigma_pt": other["sigma_pt"],
+                "p": other["p"], "method": other["method"],
+                "difference": diff,
+                "difference_in_sigma_pt": diff / sig if sig else None,
+                "host_z": other["labs"][host]["z"],
+            }
+    return out
+
+
+def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
+                     missing: Sequence[Mapping[str, Any]] = ()) -> dict[str, Any]:
+    """Return the statistics.json content of a round: the stats of every method and the identity.
+
+    The host is left out of a second consensus; ``scores.<material>.without_host`` holds
+    that consensus and its difference from the full one. Raises DataError when no result
+    has a value.
+    """
+    from planner import stats
+
+    host = str(key["host"])
+    ev = study.evaluation
+    table = [{"material": r.material, "lab": r.lab, "trial": str(r.trial), "value": r.value,
+              "uncertainty": r.uncertainty} for r in rows if r.value is not None]
+    if not table:
+        raise DataError("no accepted result of this round has a value; nothing to evaluate")
+    options = {"tolerance": ev.tolerance, "sigma_pt": ev.sigma_pt, "assigned": ev.assigned_value,
+               "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha}
+    full = stats.evaluate_table(table, **options)  # type: ignore[arg-type]
+    if ev.assigned_value == "consensus":
+        alt = stats.evaluate_table(table, **options,  # type: ignore[arg-type]
+                                   exclude_labs_for_consensus=(host,))
+    else:
+        alt = full
+    without = _without_host(full, alt, host, ev.assigned_value, ev.reference_lab)
+    for m, extra in without.items():
+        if isinstance(full["scores"].get(m), dict):
+            full["scores"][m]["without_host"] = extra
+        host_entry = full["scores"].get(m, {}).get("labs", {}).get(host)
+        if host_entry is not None:
+            host_entry["in_house"] = True
+    flagged: dict[str, dict[str, None]] = {}
+    counts: dict[str, int] = {}
+    for r in rows:
+        for f in r.flags:
+            flagged.setdefault(f, {})[r.lab] = None
+        if r.value is not None:
+            counts[r.lab] = counts.get(r.lab, 0) + 1
+    flags = {f: list(labs) for f, labs in flagged.items()}
+    per_lab = {lab.id: counts.get(lab.id, 0) for lab in study.laboratories}
+    secret = bytes.fromhex(str(key["secret"]))
+    head = {
+        "format": _STATS_FORMAT,
+        "study": study.id, "title": study.study.title, "round": str(key["round"]),
+        "host": host, "measurand": study.study.measurand, "unit": study.study.unit,
+        "organiser": study.study.organiser, "fingerprint": seal.fingerprint(seal.canonical(
+            dict(key))),
+        "trials": study.design.trials,
+        "settings": {"tolerance": ev.tolerance, "sigma_pt": ev.sigma_pt,
+                     "assigned_value": ev.assigned_value, "reference_lab": ev.reference_lab,
+                     "pool_alpha": ev.pool_alpha, "excluded_for_second_consensus": [host]},
+        "results": {"count": len(table), "per_lab": per_lab, "missing": list(missing),
+                    "flags": flags},
+        "participants": participant_codes(secret, [lab.id for lab in study.laboratories]),
+    }
+    return {**head, **full}
+
+
+def _missing(key: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[dict[str, Any]]:
+    """Return the test units with no value (neither their own nor a spare's), and why."""
+    have = {(r.material, r.lab, r.trial) for r in rows if r.value is not None}
+    failed = {(r.material, r.lab, r.trial) for r in rows if r.value is None}
+    out = []
+    for u in plan.units_from_key(dict(key)):
+        slot = (u.material, u.lab, u.trial)
+        if u.kind == "test" and slot not in have:
+            out.append({"material": u.material, "lab": u.lab, "trial": u.trial,
+                        "position": u.position, "code": codes.format(u.code),
+                        "why": "reported without a value" if slot in failed else "not reported"})
+    out.sort(key=lambda d: (d["lab"], d["trial"], d["position"] or 0))
+    return out
+
+
+def _write_text(path: Path, text: str) -> None:
+    from planner.render import _layout
+
+    def write(temp: Path) -> None:
+        temp.write_text(text, encoding="utf-8")
+
+    _layout.write_atomic(path, write)
+
+
+# Row flags written by intake that name the same thing as ours.
+_INTAKE_FLAGS = {"late-date": "late", "after-unseal": "after-unseal", "no-value": "",
+                 "spare": ""}
+
+
+def accepted_results(study: Study, ledger: Ledger, round_id: str) -> list[dict[str, Any]]:
+    """Return the results in force of a round: each laboratory's newest accepted form.
+
+    Each is a dict (lab, code, trial, value, uncertainty, remarks, flags) as ``unblind``
+    takes it; "late" when the form came after the results were due or a test date
+    lies after the test window, "after-unseal" when it came after the key was opened.
+    """
+    out: list[dict[str, Any]] = []
+    for lab in study.laboratories:
+        history = ledger.submissions(round_id, lab.id)
+        if not history:
+            continue
+        last = history[-1]
+        for r in ledger.result_rows(last.row):
+            flags = {_INTAKE_FLAGS.get(f, f) for f in r.flags} - {""}
+            if last.late:
+                flags.add("late")
+            if last.after_unseal:
+                flags.add("after-unseal")
+            out.append({"lab": lab.id, "code": r.code, "trial": r.trial, "value": r.value,
+                        "uncertainty": r.uncertainty, "remarks": r.remarks,
+                        "flags": tuple(sorted(flags))})
+    return out
+
+
+def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
+                   workers: int = 2, results: Iterable[Any] | None = None) -> Path:
+    """Unblind and evaluate an unsealed round; write report/ and record 'evaluated'; return report/.
+
+    ``results`` are the accepted results (default: read from the intake records).
+    Raises LedgerError when the round was not planned here or its key is still sealed,
+    SealError when key.json does not match the published fingerprint, DataError when
+    the results cannot be joined to the key.
+    """
+    from planner.render import letter, report
+
+    folder = plan.round_dir(study_dir, round_id)
+    status = ledger.round_status(round_id)
+    if status is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder")
+    if status not in ("unsealed", "evaluated"):
+        raise LedgerError(f"round {round_id!r} is {status}, its key is still sealed; run "
+                          "'ringplan unseal' once every laboratory has reported")
+    key = seal.read_key_json(folder)
+    if key.get("round") != round_id or key.get("study") != study.id:
+        raise LedgerError(f"key.json belongs to study {key.get('study')!r} round "
+                          f"{key.get('round')!r}, not to this round", Where(str(folder)))
+    accepted = list(results) if results is not None else accepted_results(study, ledger,
+                                                                          round_id)
+    rows = _ordered(unblind(key, accepted), study)
+    statistics = round_statistics(study, key, rows, missing=_missing(key, rows))
+    out = folder / REPORT_DIR
+    out.mkdir(parents=True, exist_ok=True)
+    _write_text(out / RESULTS_NAME, results_csv(rows))
+    _write_text(out / STATISTICS_NAME,
+                json.dumps(statistics, indent=1, ensure_ascii=False, allow_nan=False) + "\n")
+    paper = study.study.paper
+    report.render(out / REPORT_NAME, statistics, rows, paper=paper)
+    addressees = [letter.Addressee(lab.id, lab.name, tuple(lab.address), lab.contact.name,
+                                   lab.decimal) for lab in study.laboratories]
+    letter.render_all(out, statistics, rows, addressees, paper=paper,
+                      workers=workers if len(addressees) >= _PARALLEL_FROM else 1)
+    with ledger.transaction():
+        ledger.record_event(round_id, "evaluated", {
+            "fingerprint": statistics["fingerprint"], "results": statistics["results"]["count"],
+            "missing": len(statistics["results"]["missing"]), "report": str(out.name)})
+    return out

@@ -1,0 +1,917 @@
+"""Returned result forms: read them, check them, record them, and say where a round stands.
+
+A result form is the CSV that ``plan`` wrote into ``labs/<lab>/result-form.csv``
+(identity lines ``# key: value``, then a header row with at least ``code`` and
+``value``), or the XLSX workbook of the same content. ``check_form`` reports
+every problem at once, each as ``file:line: what is wrong``; a form with any
+problem is not recorded.
+
+Recording is one decision, the ledger commit. The form's bytes are first
+written (temp name, fsync, rename) to the round's hidden staging folder
+``.intake/`` inside the ledger transaction, the commit follows, and only then
+is the file renamed into ``results/<sha256>.<ext>``. A process killed before
+the commit leaves the ledger and ``results/`` as they were (the staged copy is
+removed by the next ``receive``); one killed after the commit but before the
+rename is completed by the next ``receive``, which moves every staged file the
+ledger knows into ``results/``.
+
+Numbers follow the laboratory's ``decimal`` setting in the study (point or
+comma). A number with both marks, with a mark twice, or with spaces or
+apostrophes between digits is refused: thousands separators read differently
+from one country to the next, so they are ambiguous.
+"""
+
+from __future__ import annotations
+
+import csv
+import difflib
+import hashlib
+import io
+import math
+import os
+import re
+import secrets
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import date, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes, plan
+from planner.errors import CodeError, IntakeError, LedgerError, PlannerError, Where
+from planner.ledger import ResultRow
+
+if TYPE_CHECKING:
+    from planner.ledger import Ledger
+    from planner.spec import Study
+
+__all__ = [
+    "Form", "FormRow", "Receipt", "Swap", "RoundStatus",
+    "read_form", "check_form", "receive", "settle_results",
+    "spare_swaps", "expected_codes", "issue_spare", "round_status_table",
+    "IDENTITY_KEYS", "RESULTS_DIR", "STAGING_DIR",
+]
+
+IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
+"""Identity lines a returned form must carry."""
+
+RESULTS_DIR = "results"
+STAGING_DIR = ".intake"
+_KNOWN_COLUMNS = frozenset(plan.FORM_COLUMNS)
+_XLSX_MAGIC = b"PK\x03\x04"
+_OLD_XLS_MAGIC = b"\xd0\xcf\x11\xe0"
+_NUMBER = {
+    "point": re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"),
+    "comma": re.compile(r"[+-]?(?:\d+(?:,\d*)?|,\d+)(?:[eE][+-]?\d+)?"),
+}
+_MARK = {"point": ".", "comma": ","}
+_EXAMPLE = {"point": "12.5", "comma": "12,5"}
+# Digits with a space, no-break space, narrow no-break space or apostrophe between
+# them: the thousands separators of several locales.
+_GROUPED = re.compile(r"\d[\s'\u2019\u00a0\u202f]+\d")
+_ISO_DATE = re.compile(r"(\d{4}-\d{2}-\d{2})(?:[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)?")
+
+
+# --- reading ---------------------------------------------------------------------
+
+@dataclass(frozen=True, slots=True)
+class FormRow:
+    """One table row of a form: its line (CSV) or row (XLSX) and its cells by column."""
+
+    line: int
+    cells: tuple[tuple[str, Any], ...]
+    width: int
+
+    def get(self, column: str) -> Any:
+        """Return the raw cell of ``column`` ('' if the form has no such column)."""
+        for name, value in self.cells:
+            if name == column:
+                return value
+        return ""
+
+
+@dataclass(frozen=True, slots=True)
+class Form:
+    """A returned result form as read, before any check against the round."""
+
+    path: str
+    kind: str                                  # "csv" | "xlsx"
+    sha256: str
+    identity: tuple[tuple[str, str, int], ...]  # (key, value, line)
+    header_line: int
+    columns: tuple[str, ...]
+    header_width: int
+    separator: str | None
+    rows: tuple[FormRow, ...]
+    data: bytes = field(repr=False)
+
+    def where(self, line: int | None) -> Where:
+        """Return the place of a line (CSV) or row (XLSX) of this form."""
+        if line is None:
+            return Where(self.path)
+        if self.kind == "xlsx":
+            return Where(self.path, None, f"row {line}")
+        return Where(self.path, line)
+
+    def ident(self, key: str) -> tuple[str, int] | None:
+        """Return (value, line) of an identity line, or None if the form lacks it."""
+        for name, value, line in self.identity:
+            if name == key:
+                return value, line
+        return None
+
+
+def read_form(path: Path) -> Form:
+    """Return the form in a CSV or XLSX file; raise IntakeError if it cannot be read as one."""
+    name = str(path)
+    try:
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise IntakeError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
+                          Where(name)) from None
+    if not data.strip():
+        raise IntakeError("the file is empty; send the result form that 'ringplan plan' wrote "
+                          "for the laboratory, with the values filled in", Where(name, 1))
+    if data.startswith(_OLD_XLS_MAGIC):
+        raise IntakeError("this is an old-style .xls workbook; save it as .xlsx or as CSV",
+                          Where(name))
+    if data.startswith(_XLSX_MAGIC):
+        return _read_xlsx(name, data)
+    return _read_csv(name, data)
+
+
+def _decode(name: str, data: bytes) -> str:
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data[:exc.start].count(b"\n") + 1
+        raise IntakeError("the file is not UTF-8 text (nor an .xlsx workbook); save it as "
+                          "'CSV UTF-8'", Where(name, line)) from None
+
+
+def _identity_line(text: str) -> tuple[str, str] | None:
+    """Return (key, value) of '# key: value' (or 'key: value'), or None for other text."""
+    body = text.strip().lstrip("#").strip()
+    key, colon, value = body.partition(":")
+    key = key.strip().lower()
+    if not colon or key not in IDENTITY_KEYS + ("decimal", "measurand", "results due"):
+        return None
+    return key, value.strip()
+
+
+def _read_csv(name: str, data: bytes) -> Form:
+    text = _decode(name, data)
+    if "\x00" in text:
+        raise IntakeError("the file holds NUL bytes; it is not a CSV text file", Where(name))
+    lines = text.splitlines()
+    header_at = next((i for i, line in enumerate(lines)
+                      if line.strip() and not line.lstrip(' "').startswith("#")), None)
+    if header_at is None:
+        raise IntakeError("the file has no header row; the table must start with the row "
+                          "'trial, position, code, value, ...' of the blank form",
+                          Where(name, len(lines) or 1))
+    sep = _separator(lines[header_at])
+    if sep is None:
+        raise IntakeError(f"expected the header row with the columns 'code' and 'value', "
+                          f"found {lines[header_at].strip()[:60]!r}", Where(name, header_at + 1))
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
+    identity: list[tuple[str, str, int]] = []
+    rows: list[FormRow] = []
+    columns: tuple[str, ...] = ()
+    header_line = header_width = 0
+    last = 0
+    try:
+        for cells in reader:
+            start, last = last + 1, reader.line_num
+            if not any(c.strip() for c in cells):
+                continue
+            if not columns and cells[0].lstrip().startswith("#"):
+                found = _identity_line(sep.join(cells).rstrip(sep + " "))
+                if found:
+                    identity.append((*found, start))
+                continue
+            if not columns:
+                columns = tuple(c.strip().lower() for c in cells)
+                header_line, header_width = start, len(cells)
+                continue
+            if cells[0].lstrip().startswith("#"):
+                continue  # a comment below the table
+            rows.append(FormRow(start, tuple(zip(columns, (c.strip() for c in cells))),
+                                len(cells)))
+    except csv.Error as exc:
+        raise IntakeError(f"the CSV cannot be read ({exc})", Where(name, last + 1)) from None
+    return Form(name, "csv", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
+                columns, header_width, sep, tuple(rows), data)
+
+
+def _separator(header: str) -> str | None:
+    for sep in (";", ",", "\t"):
+        cells = {c.strip().strip('"').lower() for c in header.split(sep)}
+        if {"code", "value"} <= cells:
+            return sep
+    return None
+
+
+def _read_xlsx(name: str, data: bytes) -> Form:
+    from zipfile import BadZipFile
+
+    from openpyxl import load_workbook
+
+    try:
+        book = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+    except (BadZipFile, KeyError, ValueError, OSError):
+        raise IntakeError("this zip file is not an .xlsx workbook; save the form as .xlsx or "
+                          "CSV", Where(name)) from None
+    try:
+        sheet = book.worksheets[0]
+        grid = [tuple(row) for row in sheet.iter_rows(values_only=True)]
+    finally:
+        book.close()
+    identity: list[tuple[str, str, int]] = []
+    rows: list[FormRow] = []
+    columns: tuple[str, ...] = ()
+    header_line = 0
+    for number, raw in enumerate(grid, start=1):
+        cells = [_cell_text(c) if not isinstance(c, (int, float, date)) else c for c in raw]
+        filled = [c for c in cells if c not in (None, "")]
+        if not filled:
+            continue
+        if not columns:
+            lowered = tuple(str(c).strip().lower() if c is not None else "" for c in cells)
+            if {"code", "value"} <= set(lowered):
+                columns, header_line = lowered, number
+                continue
+            found = _identity_line(str(filled[0]))
+            if found is None and len(filled) >= 2:
+                key = str(filled[0]).strip().rstrip(":").strip().lower()
+                if key in IDENTITY_KEYS:
+                    found = (key, str(filled[1]).strip())
+            if found:
+                identity.append((*found, number))
+            continue
+        if isinstance(cells[0], str) and cells[0].lstrip().startswith("#"):
+            continue
+        rows.append(FormRow(number, tuple(zip(columns, ("" if c is None else c for c in cells))),
+                            len(cells)))
+    if not columns:
+        raise IntakeError("the first sheet has no header row with the columns 'code' and "
+                          "'value'; send the result form as it was printed", Where(name))
+    return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
+                columns, len(columns), None, tuple(rows), data)
+
+
+def _cell_text(value: Any) -> str:
+    return "" if value is None else str(value).strip()
+
+
+# --- checking -------------------------------------------------------------------
+
+@dataclass(frozen=True, slots=True)
+class _Checked:
+    problems: tuple[PlannerError, ...]
+    lab: str | None
+    rows: tuple[ResultRow, ...]
+    missing: tuple[str, ...]
+    late_rows: tuple[str, ...]
+
+
+def spare_swaps(ledger: Ledger, round_id: str) -> dict[str, str]:
+    """Return damaged code -> spare code for every spare issued in a round."""
+    return {str(e.detail["damaged"]): str(e.detail["spare"])
+            for e in ledger.events(round_id, "spare-swap")}
+
+
+def expected_codes(manifest: Mapping[str, Any], lab: str,
+                   swaps: Mapping[str, str]) -> dict[str, tuple[int, int]]:
+    """Return the codes a laboratory reports on, with (trial, position), spares in place."""
+    out: dict[str, tuple[int, int]] = {}
+    for trial, run in enumerate(manifest["labs"][lab]["trials"], start=1):
+        for position, code in enumerate(run, start=1):
+            seen = {code}
+            while code in swaps and swaps[code] not in seen:
+                code = swaps[code]
+                seen.add(code)
+            out[code] = (trial, position)
+    return out
+
+
+def _owners(manifest: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
+    """Return code -> (laboratory, kind) for every code in the manifest."""
+    out: dict[str, tuple[str, str]] = {}
+    for lab, info in manifest["labs"].items():
+        for run in info["trials"]:
+            out.update((c, (lab, "test")) for c in run)
+        out.update((c, (lab, "spare")) for c in info.get("spares", ()))
+    for kind, found in manifest.get("host_units", {}).items():
+        out.update((c, (str(manifest["host"]), kind)) for c in found)
+    return out
+
+
+def check_form(study: Study, manifest: Mapping[str, Any], form: Form, *,
+               swaps: Mapping[str, str] | None = None, unsealed: bool = False,
+               lab: str | None = None, today: date | None = None,
+               elsewhere: Mapping[str, str] | None = None) -> list[PlannerError]:
+    """Return every problem of a form against its round (empty if it may be recorded).
+
+    ``swaps`` are the spares issued (damaged -> spare), ``lab`` the laboratory the
+    coordinator says sent it, ``today`` the day it is received (dates after it
+    are refused), ``elsewhere`` code -> round for codes of the study's other rounds.
+    """
+    return list(_inspect(study, manifest, form, swaps=swaps or {}, unsealed=unsealed, lab=lab,
+                         today=today, elsewhere=elsewhere or {}).problems)
+
+
+def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
+             swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
+             elsewhere: Mapping[str, str]) -> _Checked:
+    problems = _check_identity(study, manifest, form, lab=lab)
+    if problems:
+        return _Checked(tuple(problems), None, (), (), ())
+    form_lab = form.ident("laboratory")[0]  # type: ignore[index]
+    expected = expected_codes(manifest, form_lab, swaps)
+    owners = _owners(manifest)
+    rows = form.rows
+    mine = sum(1 for r in rows if codes.is_valid(str(r.get("code")))
+               and codes.compact(str(r.get("code"))) in expected)
+    others = {owners[c][0] for r in rows if codes.is_valid(str(r.get("code")))
+              and (c := codes.compact(str(r.get("code")))) in owners and owners[c][1] == "test"}
+    if rows and not mine and len(others) == 1 and form_lab not in others:
+        line = form.ident("laboratory")[1]  # type: ignore[index]
+        return _Checked((IntakeError(
+            f"the form says laboratory {form_lab!r} but its codes are those of laboratory "
+            f"{others.pop()!r}; correct the laboratory line or send that laboratory's form",
+            form.where(line)),), None, (), (), ())
+    problems += _check_columns(form)
+    decimal = study.lab(form_lab).decimal
+    dates = manifest["dates"]
+    start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
+    replaced = {d: s for d, s in swaps.items() if d not in expected}
+    planned = _flatten(manifest["labs"][form_lab]["trials"])
+    first_seen: dict[str, int] = {}
+    kept: list[ResultRow] = []
+    late_rows: list[str] = []
+    for row in rows:
+        where = form.where(row.line)
+        found: list[PlannerError] = []
+        if form.separator is not None and row.width > form.header_width:
+            hint = (f"; a decimal comma splits a value in a file separated by ',', and this "
+                    f"laboratory writes a decimal point (e.g. {_EXAMPLE[decimal]!r})"
+                    if form.separator == "," else "; remove the extra separator")
+            problems.append(IntakeError(f"the row has {row.width} fields but the header has "
+                                        f"{form.header_width}{hint}", where))
+            continue
+        code = _check_code(row, where, found, expected=expected, replaced=replaced,
+                           owners=owners, lab=form_lab, round_id=str(manifest["round"]),
+                           elsewhere=elsewhere, first_seen=first_seen, form=form)
+        value = _quantity(row.get("value"), decimal, "value", where, found)
+        uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
+        remarks = _cell_text(row.get("remarks"))
+        if value is None and not found and _cell_text(row.get("value")) == "":
+            if not remarks:
+                found.append(IntakeError(
+                    "value is empty; enter the result, or say in remarks why there is none",
+                    where))
+            if uncertainty is not None:
+                found.append(IntakeError("an uncertainty is given without a value; give the "
+                                         "value too, or leave both empty", where))
+        if uncertainty is not None and uncertainty <= 0:
+            found.append(IntakeError(f"uncertainty {row.get('uncertainty')!r} is not above 0; "
+                                     "give the expanded uncertainty (k = 2), or leave it empty",
+                                     where))
+        tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
+        if code is not None and code in expected:
+            _check_slot(row, where, found, code=code, slot=expected[code])
+        problems += found
+        if found or code is None:
+            continue
+        flags = []
+        if value is None:
+            flags.append("no-value")
+        if tested is not None and tested > end:
+            flags.append("late-date")
+            late_rows.append(code)
+        if code not in planned:
+            flags.append("spare")
+        if unsealed:
+            flags.append("after-unseal")
+        trial, position = expected[code]
+        kept.append(ResultRow(code, trial, position, value, uncertainty,
+                              tested.isoformat() if tested else None,
+                              _cell_text(row.get("analyst")), remarks, tuple(flags)))
+    if not rows:
+        problems.append(IntakeError("the form has no result rows below the header; fill in "
+                                    "the rows of the blank form", form.where(form.header_line)))
+    missing = tuple(c for c in expected if c not in first_seen)
+    return _Checked(tuple(problems), form_lab, tuple(kept), missing, tuple(late_rows))
+
+
+def _check_identity(study: Study, manifest: Mapping[str, Any], form: Form, *,
+                    lab: str | None) -> list[PlannerError]:
+    """Return identity problems, the most telling first; later ones would only repeat it."""
+    absent = [k for k in IDENTITY_KEYS if form.ident(k) is None]
+    if absent:
+        return [IntakeError(f"the form has no '# {k}: ...' line; send the result form that "
+                            "'ringplan plan' wrote, with its first lines unchanged",
+                            form.where(1))
+                for k in absent]
+    (study_id, study_at), (round_id, round_at) = form.ident("study"), form.ident("round")  # type: ignore[misc]
+    (lab_id, lab_at), (print_, print_at) = form.ident("laboratory"), form.ident("fingerprint")  # type: ignore[misc]
+    unit, unit_at = form.ident("unit")  # type: ignore[misc]
+    if study_id != study.id:
+        return [IntakeError(f"the form is for study {study_id!r}, not {study.id!r}",
+                            form.where(study_at))]
+    if round_id != manifest["round"]:
+        return [IntakeError(f"the form is for round {round_id!r}, not {manifest['round']!r}; "
+                            "record it with that round's --round, or send this round's form",
+                            form.where(round_at))]
+    out: list[PlannerError] = []
+    known = [x.id for x in study.laboratories]
+    if lab_id not in known or lab_id not in manifest["labs"]:
+        guess = difflib.get_close_matches(lab_id, known, n=1)
+        out.append(IntakeError(f"laboratory {lab_id!r} is not in round {manifest['round']!r}"
+                               + (f"; did you mean {guess[0]!r}?" if guess else
+                                  f"; known: {', '.join(known)}"), form.where(lab_at)))
+    elif lab is not None and lab_id != lab:
+        out.append(IntakeError(f"the form is from laboratory {lab_id!r}, not {lab!r} as --lab "
+                               "says; check who sent it", form.where(lab_at)))
+    if print_.strip().lower() != manifest["fingerprint"]:
+        out.append(IntakeError(f"fingerprint {print_[:16]!r}... is not this round's "
+                               f"({manifest['fingerprint'][:16]}...); the form belongs to an "
+                               "earlier plan of the round; send the current form",
+                               form.where(print_at)))
+    if "".join(unit.split()) != "".join(study.study.unit.split()):
+        out.append(IntakeError(f"the form reports in {unit!r}, but the study's unit is "
+                               f"{study.study.unit!r}; report the results in "
+                               f"{study.study.unit!r}", form.where(unit_at)))
+    return out
+
+
+def _check_columns(form: Form) -> list[PlannerError]:
+    out: list[PlannerError] = []
+    seen: set[str] = set()
+    for name in form.columns:
+        if not name:
+            continue
+        if name in seen:
+            out.append(IntakeError(f"column {name!r} appears twice in the header; keep one",
+                                   form.where(form.header_line)))
+        elif name not in _KNOWN_COLUMNS:
+            guess = difflib.get_close_matches(name, sorted(_KNOWN_COLUMNS), n=1)
+            out.append(IntakeError(
+                f"unknown column {name!r}" + (f"; did you mean {guess[0]!r}?" if guess else
+                                              f"; the form's columns are {', '.join(plan.FORM_COLUMNS)}"),
+                form.where(form.header_line)))
+        seen.add(name)
+    return out
+
+
+def _check_code(row: FormRow, where: Where, found: list[PlannerError], *,
+                expected: Mapping[str, tuple[int, int]], replaced: Mapping[str, str],
+                owners: Mapping[str, tuple[str, str]], lab: str, round_id: str,
+                elsewhere: Mapping[str, str], first_seen: dict[str, int],
+                form: Form) -> str | None:
+    """Return the row's compact code if it is this laboratory's; else note why and return None."""
+    text = _cell_text(row.get("code"))
+    if not text:
+        found.append(IntakeError("the row has no code; every result needs the code from the "
+                                 "unit's label", where))
+        return None
+    try:
+        code = codes.validate(text, where=where)
+    except CodeError as exc:
+        found.append(exc)
+        return None
+    shown = codes.format(code)
+    if code in first_seen:
+        place = f"line {first_seen[code]}" if form.kind == "csv" else f"row {first_seen[code]}"
+        found.append(IntakeError(f"code {shown} appears twice (first on {place}); report each "
+                                 "unit once", where))
+        return None
+    first_seen[code] = row.line
+    if code in expected:
+        return code
+    owner = owners.get(code)
+    if code in replaced:
+        msg = (f"unit {shown} was replaced by spare {codes.format(replaced[code])}; report "
+               "the spare's result under its code")
+    elif owner == (lab, "spare"):
+        msg = (f"{shown} is a spare of this laboratory that was not issued; run 'ringplan spare' "
+               "for the damaged unit first, or correct the code")
+    elif owner is not None and owner[1] in ("test", "spare"):
+        msg = f"code {shown} belongs to laboratory {owner[0]!r}, not to {lab!r}"
+    elif owner is not None:
+        msg = f"code {shown} is a unit kept by the host, not a test unit of {lab!r}"
+    elif code in elsewhere:
+        msg = f"code {shown} belongs to round {elsewhere[code]!r}, not to {round_id!r}"
+    else:
+        msg = (f"code {shown} is not a code of laboratory {lab!r} in round {round_id!r}; check "
+               "it against the unit's label")
+    found.append(IntakeError(msg, where))
+    return None
+
+
+def _check_slot(row: FormRow, where: Where, found: list[PlannerError], *, code: str,
+                slot: tuple[int, int]) -> None:
+    """Note a row whose trial or position disagrees with the run order of its code."""
+    given = []
+    for column, want in zip(("trial", "position"), slot, strict=True):
+        raw = row.get(column)
+        if raw in ("", None):
+            continue
+        try:
+            number = int(float(str(raw).replace(",", "."))) if not isinstance(raw, int) else raw
+        except ValueError:
+            number = None
+        if number != want:
+            given.append(f"{column} {raw!r}")
+    if given:
+        found.append(IntakeError(
+            f"code {codes.format(code)} is trial {slot[0]}, position {slot[1]} of the run "
+            f"order, but the row says {' and '.join(given)}; the code decides, so check that "
+            "the value belongs to this code", where))
+
+
+def _quantity(raw: Any, decimal: str, what: str, where: Where,
+              found: list[PlannerError]) -> float | None:
+    """Return the number in a cell (None if empty); note a problem and return None if it is not one."""
+    if raw is None or (isinstance(raw, str) and not raw.strip()):
+        return None
+    try:
+        return _number(raw, decimal, what)
+    except IntakeError as exc:
+        found.append(IntakeError(exc.message, where))
+        return None
+
+
+def _number(raw: Any, decimal: str, what: str) -> float:
+    if isinstance(raw, bool) or isinstance(raw, (date, datetime)):
+        raise IntakeError(f"{what} {raw!r} is not a number")
+    if isinstance(raw, (int, float)):
+        value = float(raw)
+    else:
+        text = str(raw).strip()
+        mark = _MARK[decimal]
+        other = "point" if decimal == "comma" else "comma"
+        if (_GROUPED.search(text) or ("." in text and "," in text)
+                or text.count(".") > 1 or text.count(",") > 1):
+            raise IntakeError(
+                f"{what} {text!r} has thousands separators, which are ambiguous ('1.234' is "
+                f"1234 in some countries and 1.234 in others); write it without them, with a "
+                f"decimal {decimal}, e.g. {_EXAMPLE[decimal]!r}")
+        if _NUMBER[decimal].fullmatch(text):
+            value = float(text.replace(",", "."))
+        elif _NUMBER[other].fullmatch(text):
+            raise IntakeError(
+                f"{what} {text!r} has a decimal {other}, but this laboratory writes a decimal "
+                f"{decimal} (its 'decimal' in study.yaml); write "
+                f"{text.replace(_MARK[other], mark)!r}")
+        else:
+            raise IntakeError(f"{what} {text!r} is not a number; write it like "
+                              f"{_EXAMPLE[decimal]!r}" + (", or leave it empty and say why in "
+                                                          "remarks" if what == "value" else ""))
+    if not math.isfinite(value):
+        raise IntakeError(f"{what} {raw!r} is not a finite number")
+    return value
+
+
+def _check_date(raw: Any, where: Where, found: list[PlannerError], *, start: date, end: date,
+                today: date | None) -> date | None:
+    """Return the test date (None if empty); refuse dates before the window or after today."""
+    if raw is None or raw == "":
+        return None
+    if isinstance(raw, datetime):
+        day = raw.date()
+    elif isinstance(raw, date):
+        day = raw
+    else:
+        text = str(raw).strip()
+        match = _ISO_DATE.fullmatch(text)
+        try:
+            if match is None:
+                raise ValueError
+            day = date.fromisoformat(match.group(1))
+        except ValueError:
+            found.append(IntakeError(f"date {text!r} is not a calendar date written YYYY-MM-DD",
+                                     where))
+            return None
+    if day < start:
+        found.append(IntakeError(f"date {day} is before the test window ({start} to {end}); "
+                                 "check the date", where))
+        return None
+    if today is not None and day > today:
+        found.append(IntakeError(f"date {day} is after the day the form was received "
+                                 f"({today}); check the date", where))
+        return None
+    return day
+
+
+# --- recording ------------------------------------------------------------------
+
+@dataclass(frozen=True, slots=True)
+class Receipt:
+    """What became of one accepted form; ``version`` is None when only checked or a repeat."""
+
+    file: str
+    lab: str
+    sha256: str
+    version: int | None
+    supersedes: int | None
+    stored: str | None
+    values: int
+    failed: int
+    missing: tuple[str, ...]
+    late_rows: tuple[str, ...]
+    received_late: bool
+    after_unseal: bool
+    repeat_of: int | None
+
+    @property
+    def late(self) -> bool:
+        return self.received_late or bool(self.late_rows)
+
+
+def _results_name(sha256: str, kind: str) -> str:
+    return f"{sha256}.{kind}"
+
+
+def _write_staged(path: Path, data: bytes) -> None:
+    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
+    try:
+        with open(tmp, "xb") as out:
+            out.write(data)
+            out.flush()
+            os.fsync(out.fileno())
+        os.chmod(tmp, 0o444)  # a received form is never changed
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[str]:
+    """Finish or undo staged copies left by an interrupted receive; return the names moved in.
+
+    A staged file the ledger records is moved into ``results/``; any other is removed.
+    Call inside a ledger transaction, so no other receive is between stage and commit.
+    """
+    staging = round_folder / STAGING_DIR
+    if not staging.is_dir():
+        return []
+    known = {s.sha256 for s in ledger.submissions(round_id)}
+    moved = []
+    for item in sorted(staging.iterdir()):
+        sha = item.name.split(".")[0]
+        if item.name.endswith(".part") or sha not in known:
+            item.unlink(missing_ok=True)
+            continue
+        target = round_folder / RESULTS_DIR / item.name
+        if target.exists():
+            item.unlink(missing_ok=True)
+        else:
+            target.parent.mkdir(exist_ok=True)
+            os.replace(item, target)
+            moved.append(item.name)
+    return moved
+
+
+def _other_rounds(ledger: Ledger, round_id: str) -> dict[str, str]:
+    return {code: row.round for row in ledger.rounds() if row.round != round_id
+            for code, *_ in ledger.units(row.row)}
+
+
+def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path], ledger: Ledger,
+            *, lab: str | None = None, check_only: bool = False, after_unseal: bool = False,
+            reason: str | None = None,
+            _pause: Callable[[str], None] | None = None) -> list[Receipt]:
+    """Check returned forms and record them; return one Receipt per form.
+
+    Raises IntakeError listing every problem (one line each, ``file:line: ...``)
+    if any form has one; then nothing is recorded. ``check_only`` records
+    nothing either way. Results after the key was opened need ``after_unseal``
+    and a ``reason``. ``_pause`` is a test-only hook called with "before-commit"
+    and "after-commit" so a test can kill the process there.
+    """
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    current = ledger.current_round(round_id)
+    if current is None or current.fingerprint != manifest["fingerprint"]:
+        raise LedgerError(f"round {round_id!r} in the folder does not match the ledger; it was "
+                          "not planned in this study folder", Where(str(folder)))
+    unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
+    if unsealed and not after_unseal:
+        raise IntakeError(f"the key of round {round_id!r} has been opened; results that arrive "
+                          "after unsealing are refused unless you add --after-unseal --reason "
+                          "TEXT (they are then flagged in every output)")
+    if after_unseal and not unsealed:
+        raise IntakeError(f"the key of round {round_id!r} is still sealed; --after-unseal is "
+                          "only for results that arrive after the key was opened")
+    if after_unseal and not (reason and reason.strip()):
+        raise IntakeError("--after-unseal needs --reason TEXT saying why late results are "
+                          "taken; the reason is recorded in the ledger")
+    if not paths:
+        raise IntakeError("no result form given; name one or more returned forms")
+    today = date.fromisoformat(ledger.now()[:10])
+    swaps = spare_swaps(ledger, round_id)
+    elsewhere = _other_rounds(ledger, round_id)
+    problems: list[PlannerError] = []
+    accepted: list[tuple[Form, _Checked]] = []
+    for path in paths:
+        try:
+            form = read_form(path)
+        except IntakeError as exc:
+            problems.append(exc)
+            continue
+        checked = _inspect(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
+                           today=today, elsewhere=elsewhere)
+        problems += checked.problems
+        if not checked.problems:
+            accepted.append((form, checked))
+    by_lab: dict[str, str] = {}
+    for form, checked in accepted:
+        assert checked.lab is not None
+        if checked.lab in by_lab:
+            problems.append(IntakeError(f"a second form of laboratory {checked.lab!r} (the "
+                                        f"first is {by_lab[checked.lab]}); send one form per "
+                                        "laboratory at a time", Where(form.path)))
+        by_lab[checked.lab] = form.path
+    if problems:
+        raise IntakeError("\n".join(str(p) for p in problems))
+    due = date.fromisoformat(manifest["dates"]["results_due"])
+    plans = []
+    for form, checked in accepted:
+        lab_id = str(checked.lab)
+        history = ledger.submissions(round_id, lab_id)
+        last = history[-1] if history else None
+        plans.append((form, checked, last))
+    receipts: list[Receipt] = []
+    if check_only:
+        return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
+    staging, results = folder / STAGING_DIR, folder / RESULTS_DIR
+    staged: list[Path] = []
+    try:
+        with ledger.transaction():
+            settle_results(folder, ledger, round_id)
+            for form, checked, last in plans:
+                if last is not None and last.sha256 == form.sha256:
+                    receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
+                    continue
+                staging.mkdir(exist_ok=True)
+                target = staging / _results_name(form.sha256, form.kind)
+                if not target.exists():
+                    _write_staged(target, form.data)
+                    staged.append(target)
+                version = ledger.add_submission(
+                    round_id=round_id, lab=str(checked.lab), sha256=form.sha256,
+                    file_name=Path(form.path).name, late=today > due or bool(checked.late_rows),
+                    after_unseal=unsealed, reason=reason if unsealed else None,
+                    rows=checked.rows)
+                ledger.record_event(round_id, "received", {
+                    "lab": checked.lab, "version": version, "sha256": form.sha256})
+                stored = f"{RESULTS_DIR}/{_results_name(form.sha256, form.kind)}"
+                receipts.append(_receipt(form, checked, last, version, stored, today > due,
+                                         unsealed))
+            if _pause is not None:
+                _pause("before-commit")
+    except BaseException:
+        for path in staged:
+            path.unlink(missing_ok=True)
+        raise
+    if _pause is not None:
+        _pause("after-commit")
+    results.mkdir(exist_ok=True)
+    for path in staged:
+        try:
+            os.replace(path, results / path.name)
+        except FileNotFoundError:
+            pass  # another receive settled it into results/ already
+    return receipts
+
+
+def _receipt(form: Form, checked: _Checked, last: Any, version: int | None,
+             stored: str | None, received_late: bool, unsealed: bool) -> Receipt:
+    repeat = last.version if last is not None and last.sha256 == form.sha256 else None
+    return Receipt(
+        file=form.path, lab=str(checked.lab), sha256=form.sha256, version=version,
+        supersedes=last.version if last is not None and repeat is None else None,
+        stored=stored, values=sum(1 for r in checked.rows if r.value is not None),
+        failed=sum(1 for r in checked.rows if r.value is None), missing=checked.missing,
+        late_rows=checked.late_rows, received_late=received_late, after_unseal=unsealed,
+        repeat_of=repeat)
+
+
+# --- spares ---------------------------------------------------------------------
+
+@dataclass(frozen=True, slots=True)
+class Swap:
+    """A spare issued for a damaged or failed unit; the material is never part of it."""
+
+    lab: str
+    damaged: str
+    spare: str
+    trial: int
+    position: int
+
+
+def issue_spare(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *, lab: str,
+                damaged: str, key: Mapping[str, Any]) -> Swap:
+    """Return and record the spare that replaces a laboratory's damaged unit.
+
+    ``key`` is the decoded key (``seal.open_key``), needed for the material of
+    the damaged unit; the spare is the laboratory's lowest unused spare code of
+    that material. Raises CodeError for a malformed code and IntakeError when
+    the unit is not the laboratory's, was replaced already, or no spare is left.
+    """
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    if key.get("round") != round_id or key.get("study") != study.id:
+        raise IntakeError(f"the key belongs to study {key.get('study')!r} round "
+                          f"{key.get('round')!r}, not to this round", Where(str(folder)))
+    if lab not in manifest["labs"]:
+        known = ", ".join(manifest["labs"])
+        raise IntakeError(f"--lab {lab!r} is not a laboratory of round {round_id!r}; known: "
+                          f"{known}")
+    code = codes.validate(damaged, where=Where(field="--damaged"))
+    shown = codes.format(code)
+    swaps = spare_swaps(ledger, round_id)
+    expected = expected_codes(manifest, lab, swaps)
+    if code in swaps:
+        raise IntakeError(f"unit {shown} was already replaced by spare "
+                          f"{codes.format(swaps[code])}")
+    if code not in expected:
+        raise IntakeError(f"{shown} is not a unit that laboratory {lab!r} tests in round "
+                          f"{round_id!r}; give the code on the damaged unit's label")
+    units = plan.units_from_key(dict(key))
+    material = {u.code: u.material for u in units}.get(code)
+    used = set(swaps.values())
+    free = sorted(u.code for u in units if u.kind == "spare" and u.lab == lab
+                  and u.material == material and u.code not in used)
+    if not free:
+        raise IntakeError(f"laboratory {lab!r} has no unused spare left for unit {shown}; "
+                          "the host must send a replacement unit")
+    spare = free[0]
+    trial, position = expected[code]
+    with ledger.transaction():
+        ledger.record_event(round_id, "spare-swap", {"lab": lab, "damaged": code, "spare": spare})
+    return Swap(lab, code, spare, trial, position)
+
+
+# --- where a round stands -------------------------------------------------------
+
+@dataclass(frozen=True, slots=True)
+class RoundStatus:
+    """One row per laboratory (dicts, spec order) and whether the key may be opened."""
+
+    round: str
+    results_due: date
+    unsealed: bool
+    may_open: bool
+    waiting_for: tuple[str, ...]
+    rows: tuple[dict[str, Any], ...]
+
+
+def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
+                       today: date) -> RoundStatus:
+    """Return per laboratory: received, version, values, codes missing, late, days left."""
+    from planner import audit
+
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    if ledger.current_round(round_id) is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder")
+    due = date.fromisoformat(manifest["dates"]["results_due"])
+    swaps = spare_swaps(ledger, round_id)
+    unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
+    rows = []
+    for lab in study.laboratories:
+        if lab.id not in manifest["labs"]:
+            continue
+        expected = expected_codes(manifest, lab.id, swaps)
+        history = ledger.submissions(round_id, lab.id)
+        last = history[-1] if history else None
+        got = ledger.result_rows(last.row) if last else []
+        reported = {r.code for r in got}
+        missing = [codes.format(c) for c in expected if c not in reported]
+        rows.append({
+            "lab": lab.id,
+            "received": last is not None,
+            "version": last.version if last else None,
+            "received_at": last.received_at if last else None,
+            "values": sum(1 for r in got if r.value is not None),
+            "failed": sum(1 for r in got if r.value is None),
+            "expected": len(expected),
+            "missing": len(missing),
+            "missing_codes": missing,
+            "late": last.late if last else today > due,
+            "after_unseal": any(s.after_unseal for s in history),
+            "spares_issued": sum(1 for s in swaps.values()
+                                 if s in manifest["labs"][lab.id].get("spares", ())),
+            "days_left": None if last else (due - today).days,
+        })
+    waiting = tuple(audit.missing_labs(study, ledger, round_id))
+    return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
+                       tuple(rows))
+
+
+def _flatten(items: Iterable[Iterable[str]]) -> set[str]:
+    return {c for run in items for c in run}

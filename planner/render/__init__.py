@@ -1,0 +1,122 @@
+"""Printed documents of a round, one module per document, each with ``render(...) -> Path``.
+
+``print_round`` writes them all into the round folder::
+
+    host/labels.pdf             every unit label, material by material, with separators
+    host/prep-sheet.pdf         confidential: what to prepare, codes by material
+    labs/<lab>/packing-list.pdf
+    labs/<lab>/run-sheet.pdf
+    labs/<lab>/result-form.xlsx beside the planner's result-form.csv
+
+Only the host documents need the materials; they come from the decoded key,
+which the caller decrypts in memory. Nothing a laboratory receives names a
+material.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from planner.spec import Study
+
+__all__ = ["KINDS", "print_round", "print_calibration"]
+
+KINDS = ("labels", "prep", "packing", "runsheets", "forms")
+"""The kinds of document ``print_round(only=...)`` accepts."""
+
+
+def _check_key(manifest: dict[str, Any], key: dict[str, Any]) -> None:
+    from planner import seal
+    from planner.errors import SealError
+
+    if key.get("round") != manifest.get("round") or key.get("study") != manifest.get("study"):
+        raise SealError(f"the key is for round {key.get('round')!r} of {key.get('study')!r}, "
+                        f"not round {manifest.get('round')!r} of {manifest.get('study')!r}")
+    found = seal.fingerprint(seal.canonical(key))
+    if found != manifest.get("fingerprint"):
+        raise SealError(f"the key's fingerprint {found[:16]}... does not match the round's "
+                        f"{str(manifest.get('fingerprint'))[:16]}...; the key or the manifest "
+                        "was changed")
+
+
+def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, Any],
+                only: str | None = None, lab: str | None = None,
+                codes: Sequence[str] | None = None, start_at: int = 1,
+                sheet: str | None = None, offset_mm: tuple[float, float] = (0.0, 0.0),
+                workers: int = 1) -> list[Path]:
+    """Write the documents of a round into its folder and return their paths.
+
+    ``only`` picks one kind of ``KINDS``; ``lab`` limits every document to one
+    laboratory (its labels then go to ``labs/<lab>/labels.pdf`` without
+    separators, and the prep sheet is left out); ``codes`` reprints the labels
+    of those codes only, to ``labels-reprint.pdf``. Raises LedgerError if the
+    round was not planned, SealError if the key is not the round's,
+    PlannerError for an unknown kind, laboratory or sheet.
+    """
+    from planner import plan
+    from planner.errors import PlannerError, Where
+    from planner.render import _sheets, labels, packing_list, prep_sheet, result_form, run_sheet
+
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    _check_key(manifest, key)
+    if only is not None and only not in KINDS:
+        raise PlannerError(f"{only!r} is not a kind of document; use one of {', '.join(KINDS)}",
+                           Where(field="--only"))
+    if lab is not None and lab not in manifest["labs"]:
+        raise PlannerError(f"{lab!r} is not a laboratory of round {round_id!r}; use one of "
+                           f"{', '.join(manifest['labs'])}", Where(field="--lab"))
+    if codes and only not in (None, "labels"):
+        raise PlannerError("--codes reprints labels; leave out --only or use --only labels",
+                           Where(field="--codes"))
+    wanted = {"labels"} if codes else ({only} if only else set(KINDS))
+    paper = study.study.paper
+    lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
+    title = f"{study.id} round {round_id}"
+    out: list[Path] = []
+
+    if "labels" in wanted:
+        geometry = _sheets.load(sheet or study.study.label_sheet, [Path(study_dir) / "sheets"])
+        if lab:
+            items = labels.lab_labels(study, manifest, key, lab)
+            target = folder / "labs" / lab
+        else:
+            items = labels.host_labels(study, manifest, key)
+            target = folder / "host"
+        name = "labels.pdf"
+        if codes:
+            items = labels.pick(items, codes, round_id=round_id)
+            name = "labels-reprint.pdf"
+        out.append(labels.render(target / name, items, geometry, title=f"labels, {title}",
+                                 start_at=start_at, offset_mm=offset_mm, workers=workers))
+    if "prep" in wanted and not lab:
+        out.append(prep_sheet.render(folder / "host" / "prep-sheet.pdf", study, manifest, key,
+                                     paper=paper))
+    for lab_id in lab_ids:
+        lab_dir = folder / "labs" / lab_id
+        if "packing" in wanted:
+            out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest, key,
+                                           lab_id, paper=paper))
+        if "runsheets" in wanted:
+            out.append(run_sheet.render(lab_dir / "run-sheet.pdf", study, manifest, lab_id,
+                                        paper=paper))
+        if "forms" in wanted:
+            csv_path = lab_dir / "result-form.csv"
+            if csv_path.is_file():
+                text = csv_path.read_text(encoding="utf-8")
+            else:
+                text = plan.result_form_csv(study, manifest, lab_id)
+            out.append(result_form.render(lab_dir / "result-form.xlsx", text))
+    return out
+
+
+def print_calibration(path: Path, sheet: Any, offset_mm: tuple[float, float] = (0.0, 0.0)
+                      ) -> Path:
+    """Write the alignment page of ``sheet`` (a Geometry, or a sheet name) to ``path``; return it."""
+    from planner.render import _sheets, labels
+
+    geometry = _sheets.load(sheet) if isinstance(sheet, str) else sheet
+    return labels.render_calibration(path, geometry, offset_mm=offset_mm)

@@ -1,0 +1,572 @@
+"""The round report for the coordinator: summary first, then tables and charts.
+
+Built from the statistics of ``planner.evaluate.round_statistics`` and the
+unblinded results; it computes nothing itself, it only arranges. Sections:
+
+1. summary: who took part, what stands out (scores outside the satisfactory
+   band, stragglers and outliers, the size of the measurement variation), a
+   table per material, and the consensus without the host
+2. scores: a laboratory x material matrix of z (or z') scores in their bands
+3. per material: laboratory means with the spread of their results and the
+   assigned value, z-score bars with the bands, and (for rounds of up to
+   ``DETAIL_LABS`` laboratories) every laboratory's figures
+4. precision (ISO 5725-2): the estimates, Cochran and Grubbs, Mandel h and k
+5. gauge R&R: the ANOVA table, the components of variation, the
+   average-and-range method
+6. the results as reported (up to ``DETAIL_LABS`` laboratories) and methods
+
+This report names the laboratories; what goes to a participant is its letter.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import codes
+from planner.render import _layout
+
+if TYPE_CHECKING:
+    from planner.evaluate import Unblinded
+
+__all__ = ["render", "DETAIL_LABS", "fmt", "score_of", "spread", "summary_lines"]
+
+DETAIL_LABS = 60
+"""Largest round whose per-laboratory tables are printed; bigger rounds show the matrix."""
+
+_MM = 72.0 / 25.4
+
+
+def fmt(v: Any, digits: int = 4) -> str:
+    """Return a number with ``digits`` significant figures, '-' for None."""
+    if v is None:
+        return "-"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        return f"{v:.{digits}g}"
+    return str(v)
+
+
+def score_of(sc: Mapping[str, Any], lab: str) -> tuple[float | None, str]:
+    """Return the score that decides a laboratory's band on a material, and its name (z or z')."""
+    entry = sc.get("labs", {}).get(lab)
+    if entry is None:
+        return None, "z"
+    if sc.get("use_z_prime"):
+        return entry.get("z_prime"), "z'"
+    return entry.get("z"), "z"
+
+
+def spread(rows: Sequence[Unblinded]) -> dict[tuple[str, str], tuple[float, float]]:
+    """Return, per (material, lab), the lowest and highest result (or mean -+ U for one result)."""
+    acc: dict[tuple[str, str], list[Unblinded]] = {}
+    for r in rows:
+        if r.value is not None:
+            acc.setdefault((r.material, r.lab), []).append(r)
+    out = {}
+    for k, rs in acc.items():
+        vals = [r.value for r in rs if r.value is not None]
+        if len(vals) == 1 and rs[0].uncertainty is not None:
+            out[k] = (vals[0] - rs[0].uncertainty, vals[0] + rs[0].uncertainty)
+        else:
+            out[k] = (min(vals), max(vals))
+    return out
+
+
+def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
+    """Return the sentences of the summary: scores outside the band, tests, gauge R&R."""
+    out: list[str] = []
+    host = statistics["host"]
+    bad: dict[str, list[str]] = {}
+    for m in statistics["materials"]:
+        sc = statistics["scores"].get(m, {})
+        for lab, s in sc.get("labs", {}).items():
+            if s.get("band") in ("questionable", "unsatisfactory"):
+                z, name = score_of(sc, lab)
+                bad.setdefault(lab, []).append(f"{m} ({name} = {fmt(z, 3)}, {s['band']})")
+            if s.get("en_band") == "unsatisfactory":
+                bad.setdefault(lab, []).append(f"{m} (En = {fmt(s['En'], 3)})")
+    if bad:
+        for lab, items in bad.items():
+            mark = " (host, in-house)" if lab == host else ""
+            out.append(f"{lab}{mark}: outside the satisfactory band on {len(items)} of "
+                       f"{len(statistics['materials'])} materials: " + "; ".join(items))
+    else:
+        out.append("every laboratory is in the satisfactory band on every material")
+    tests = []
+    for m in statistics["materials"]:
+        pr = statistics["precision"].get(m, {})
+        if "skipped" in pr:
+            continue
+        c = pr.get("cochran", {})
+        if c.get("result") in ("straggler", "outlier"):
+            tests.append(f"{m}: Cochran {c['result']} {c['lab']} (C = {fmt(c['statistic'], 3)})")
+        for end in ("high", "low"):
+            g = pr.get("grubbs", {}).get(end) or {}
+            if g.get("result") in ("straggler", "outlier"):
+                tests.append(f"{m}: Grubbs {g['result']} {g['lab']} ({end}, G = "
+                             f"{fmt(g['statistic'], 3)})")
+    if tests:
+        out.append("ISO 5725-2 tests: " + "; ".join(tests))
+    ga = statistics.get("grr_anova") or {}
+    if "skipped" not in ga and ga:
+        sv = ga["pct_study_variation"]
+        text = (f"gauge R&R (ANOVA): the measurement variation (GRR) is {fmt(sv['grr'], 3)} % of "
+                f"the total study variation")
+        if ga.get("pct_tolerance"):
+            text += (f" and {fmt(ga['pct_tolerance']['grr'], 3)} % of the tolerance "
+                     f"{fmt(ga['tolerance'])}")
+        text += f"; number of distinct categories {fmt(ga.get('ndc'))}"
+        out.append(text)
+    worst = None
+    for m in statistics["materials"]:
+        wh = statistics["scores"].get(m, {}).get("without_host") or {}
+        d = wh.get("difference_in_sigma_pt")
+        if d is not None and (worst is None or abs(d) > abs(worst[1])):
+            worst = (m, d)
+    if worst is not None:
+        out.append(f"leaving the host {host} out of the consensus moves the assigned value by at "
+                   f"most {fmt(abs(worst[1]), 2)} sigma_pt ({worst[0]})")
+    missing = statistics["results"]["missing"]
+    if missing:
+        labs = sorted({d["lab"] for d in missing})
+        out.append(f"{len(missing)} test result(s) missing, from {', '.join(labs)}")
+    return out
+
+
+class _Doc:
+    """Helpers bound to one document: styles, widths, table builder."""
+
+    def __init__(self, paper: str) -> None:
+        from reportlab.lib.colors import HexColor
+
+        self.st = _layout.styles()
+        self.width = _layout.content_width(paper)
+        self.hex = HexColor
+
+    def p(self, text: str, style: str = "body") -> Any:
+        from reportlab.platypus import Paragraph
+
+        return Paragraph(text, self.st[style])
+
+    def table(self, rows: Sequence[Sequence[Any]], widths: Sequence[float], *,
+              extra: Sequence[tuple[Any, ...]] = (), right_from: int = 1, size: float = 8.0,
+              repeat: int = 1) -> Any:
+        total = sum(widths)
+        scale = self.width / total if total > self.width else 1.0
+        style = _layout.table_style(extra=[
+            ("FONT", (0, 1), (-1, -1), _layout.FONT, size),
+            ("ALIGN", (right_from, 0), (-1, -1), "RIGHT"),
+            ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
+            *extra])
+        return _layout.table(rows, [w * scale for w in widths], style, repeatRows=repeat)
+
+
+def _band_cells(cells: Sequence[tuple[int, int, str | None]]) -> list[tuple[Any, ...]]:
+    from reportlab.lib.colors import HexColor
+
+    from planner.render import _charts
+
+    out: list[tuple[Any, ...]] = []
+    for col, row, band in cells:
+        colour = _charts.band_colour(band)
+        if colour and band != "satisfactory":
+            out.append(("BACKGROUND", (col, row), (col, row), HexColor(colour)))
+    return out
+
+
+def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    from reportlab.platypus import Spacer
+
+    esc = _layout.escape
+    host = s["host"]
+    n_labs, n_mat = len(s["labs"]), len(s["materials"])
+    res = s["results"]
+    story: list[Any] = [
+        d.p("Round report", "title"),
+        d.p(f"<b>{esc(s['title'])}</b>. Round {esc(s['round'])}, {n_labs} laboratories, "
+            f"{n_mat} materials, {s['trials']} trials each; {res['count']} results evaluated. "
+            f"Measurand: {esc(s['measurand'])}, in {esc(s['unit'])}. Host: <b>{esc(host)}</b>; "
+            "its results are marked <i>in-house</i> because it prepared the material.", "lead"),
+        d.p(f"Decoding key SHA-256 (equal to the fingerprint printed before shipping): "
+            f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
+            f"{_layout.grouped_fingerprint(s['fingerprint'])}</font>", "small"),
+        d.p("Summary", "h2"),
+    ]
+    story += [d.p(esc(line), "bullet") for line in summary_lines(s)]
+    for text in (_flag_line(s),):
+        if text:
+            story.append(d.p(esc(text), "bullet"))
+    story.append(Spacer(1, 3 * _MM))
+    head = ["material", "labs", "x_pt", "u(x_pt)", "sigma_pt", "score", "s_r", "s_R",
+            "satisf.", "quest.", "unsatisf."]
+    rows: list[list[Any]] = [head]
+    for m in s["materials"]:
+        sc = s["scores"].get(m, {})
+        pr = s["precision"].get(m, {})
+        bands = [v.get("band") for v in sc.get("labs", {}).values()]
+        rows.append([m, len(sc.get("labs", {})) or "-", fmt(sc.get("assigned_value")),
+                     fmt(sc.get("u_assigned_value"), 3), fmt(sc.get("sigma_pt"), 3),
+                     ("z'" if sc.get("use_z_prime") else "z") if "labs" in sc else "-",
+                     fmt(pr.get("s_r"), 3), fmt(pr.get("s_R"), 3),
+                     bands.count("satisfactory"), bands.count("questionable"),
+                     bands.count("unsatisfactory")])
+    story.append(d.table(rows, [62, 26, 46, 44, 46, 30, 42, 42, 36, 36, 44]))
+    story.append(d.p(_assigned_text(s), "small"))
+    story += _without_host_table(d, s)
+    return story
+
+
+def _flag_line(s: Mapping[str, Any]) -> str:
+    flags = s["results"].get("flags", {})
+    parts = [f"{name}: {', '.join(labs)}" for name, labs in flags.items()
+             if name != "in-house" and labs]
+    return ("flagged results - " + "; ".join(parts)) if parts else ""
+
+
+def _assigned_text(s: Mapping[str, Any]) -> str:
+    st = s["settings"]
+    if st["assigned_value"] == "reference":
+        text = (f"x_pt is the mean result of the reference laboratory {st['reference_lab']}; "
+                "u(x_pt) from its stated uncertainty or the scatter of its results.")
+    else:
+        text = ("x_pt is the robust mean of the laboratory means (Algorithm A, ISO 13528 "
+                "Annex C); u(x_pt) = 1.25 s*/sqrt(p).")
+    if st.get("sigma_pt") is not None:
+        text += f" sigma_pt = {fmt(st['sigma_pt'])} as set in the study."
+    else:
+        text += " sigma_pt is the robust standard deviation s* of the laboratory means."
+    text += (" z' replaces z where u(x_pt) > 0.3 sigma_pt. Bands: |score| <= 2 satisfactory, "
+             "2 < |score| < 3 questionable, |score| >= 3 unsatisfactory; |En| <= 1 "
+             "satisfactory.")
+    return _layout.escape(text)
+
+
+def _without_host_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    rows: list[list[Any]] = [["material", "x_pt (all)", "x_pt (without host)", "difference",
+                              "in sigma_pt", f"z of {s['host']} against it"]]
+    notes = []
+    for m in s["materials"]:
+        sc = s["scores"].get(m, {})
+        wh = sc.get("without_host")
+        if not wh:
+            continue
+        if "skipped" in wh:
+            notes.append(f"{m}: {wh['skipped']}")
+            continue
+        rows.append([m, fmt(sc.get("assigned_value")), fmt(wh["assigned_value"]),
+                     fmt(wh["difference"], 3), fmt(wh["difference_in_sigma_pt"], 2),
+                     fmt(wh["host_z"], 3)])
+    out: list[Any] = [d.p("Consensus without the host", "h2")]
+    if len(rows) > 1:
+        out.append(d.table(rows, [70, 70, 90, 64, 60, 110]))
+    if notes:
+        out += [d.p(_layout.escape(n), "small") for n in sorted(set(notes))[:5]]
+    return out if len(out) > 1 else []
+
+
+def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    """The laboratory x material table of deciding scores, coloured by band."""
+    mats = s["materials"]
+    host = s["host"]
+    out: list[Any] = [d.p("Scores by laboratory", "h2"),
+                      d.p("The score that decides the band of each material (z, or z' where "
+                          "marked in the heading); amber: questionable, red: unsatisfactory.",
+                          "small")]
+    chunk = 10  # materials per table, so that the columns stay readable
+    for start in range(0, len(mats), chunk):
+        part = mats[start:start + chunk]
+        head = ["laboratory"] + [m + ("'" if s["scores"].get(m, {}).get("use_z_prime") else "")
+                                 for m in part]
+        rows: list[list[Any]] = [head]
+        cells = []
+        for i, lab in enumerate(s["labs"], start=1):
+            row: list[Any] = [lab + (" (in-house)" if lab == host else "")]
+            for j, m in enumerate(part, start=1):
+                sc = s["scores"].get(m, {})
+                z, _ = score_of(sc, lab)
+                row.append(f"{z:.2f}" if z is not None else "-")
+                cells.append((j, i, sc.get("labs", {}).get(lab, {}).get("band")))
+            rows.append(row)
+        lab_w = 80.0
+        out.append(d.table(rows, [lab_w] + [min(46.0, (d.width - lab_w) / len(part))] * len(part),
+                           extra=_band_cells(cells), size=7.5))
+    return out
+
+
+def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
+                      spreads: Mapping[tuple[str, str], tuple[float, float]]) -> list[Any]:
+    from reportlab.platypus import CondPageBreak, KeepTogether
+
+    from planner.render import _charts
+
+    sc = s["scores"].get(m, {})
+    pr = s["precision"].get(m, {})
+    host = s["host"]
+    out: list[Any] = [CondPageBreak(90 * _MM), d.p(f"Material {_layout.escape(m)}", "h2")]
+    if "skipped" in sc:
+        out.append(d.p(f"Scores not computed: {_layout.escape(sc['skipped'])}", "small"))
+        return out
+    labs = list(sc["labs"])
+    means = [sc["labs"][lab]["mean"] for lab in labs]
+    lows = [spreads.get((m, lab), (None, None))[0] for lab in labs]
+    highs = [spreads.get((m, lab), (None, None))[1] for lab in labs]
+    x_pt, sig = sc.get("assigned_value"), sc.get("sigma_pt")
+    band = (x_pt - 2 * sig, x_pt + 2 * sig) if x_pt is not None and sig else None
+    hl = [lab == host for lab in labs]
+    facts = (f"x_pt = {fmt(x_pt)} {s['unit']}, u(x_pt) = {fmt(sc.get('u_assigned_value'), 3)}, "
+             f"sigma_pt = {fmt(sig, 3)} ({sc.get('sigma_pt_source', '')}); {sc.get('method', '')}; "
+             f"p = {sc.get('p')}.")
+    if "skipped" not in pr:
+        facts += (f" s_r = {fmt(pr['s_r'], 3)}, s_R = {fmt(pr['s_R'], 3)}, r = {fmt(pr['r'], 3)},"
+                  f" R = {fmt(pr['R'], 3)}.")
+    notes = list(sc.get("notes", ()))
+    out.append(d.p(_layout.escape(facts + (" " + "; ".join(notes) if notes else "")), "small"))
+    single = all(v is not None and spreads.get((m, lab), (0, 0))[0] == spreads.get((m, lab),
+                 (0, 0))[1] for lab, v in zip(labs, means))
+    whisker = "mean -+ U" if single else "lowest to highest result"
+    chart_w = d.width
+    out.append(KeepTogether([
+        _charts.MeansChart(labs, means, lows, highs, centre=x_pt, band=band, highlight=hl,
+                           width=chart_w, height=120,
+                           title=f"Laboratory means ({whisker}), x_pt and x_pt -+ 2 sigma_pt "
+                                 f"[{s['unit']}]"),
+        _z_chart(sc, labs, hl, chart_w, 105),
+    ]))
+    if len(labs) <= DETAIL_LABS:
+        out.append(_detail_table(d, sc, pr, labs, host))
+    return out
+
+
+def _z_chart(sc: Mapping[str, Any], labs: Sequence[str], hl: Sequence[bool], width: float,
+             height: float, names: Sequence[str] | None = None) -> Any:
+    from planner.render import _charts
+
+    values = [score_of(sc, lab)[0] for lab in labs]
+    name = "z'" if sc.get("use_z_prime") else "z"
+    lines = [_charts.Line(v, f"{v:+g}", "#b03a2e" if abs(v) == 3 else "#c98a12", True)
+             for v in (-3.0, -2.0, 2.0, 3.0)]
+    shade = [(-2.0, 2.0, _charts.SAT), (2.0, 3.0, _charts.QUEST), (-3.0, -2.0, _charts.QUEST),
+             (3.0, 99.0, _charts.UNSAT), (-99.0, -3.0, _charts.UNSAT)]
+    return _charts.BarsChart(list(names or labs), values, lines=lines, shade=shade,
+                             flag_at=(2.0, 3.0), highlight=hl, limit=6.0, width=width,
+                             height=height, title=f"{name} scores with the bands")
+
+
+def _detail_table(d: _Doc, sc: Mapping[str, Any], pr: Mapping[str, Any], labs: Sequence[str],
+                  host: str) -> Any:
+    has_en = any(sc["labs"][lab].get("En") is not None for lab in labs)
+    head = ["laboratory", "n", "mean", "sd", "h", "k", "z", "z'"] + (["En"] if has_en else []) + [
+        "band"]
+    rows: list[list[Any]] = [head]
+    cells = []
+    cellinfo = pr.get("cells", {}) if "skipped" not in pr else {}
+    for i, lab in enumerate(labs, start=1):
+        e = sc["labs"][lab]
+        row = [lab + (" (in-house)" if lab == host else ""), e.get("n"), fmt(e.get("mean")),
+               fmt(cellinfo.get(lab, {}).get("sd"), 3),
+               fmt(pr.get("mandel_h", {}).get(lab), 3) if cellinfo else "-",
+               fmt(pr.get("mandel_k", {}).get(lab), 3) if cellinfo else "-",
+               fmt(e.get("z"), 3), fmt(e.get("z_prime"), 3)]
+        if has_en:
+            row.append(fmt(e.get("En"), 3))
+        row.append(e.get("band") or "-")
+        rows.append(row)
+        cells.append((len(head) - 1, i, e.get("band")))
+        if has_en and e.get("en_band") == "unsatisfactory":
+            cells.append((len(head) - 2, i, "unsatisfactory"))
+    widths = [90, 22, 52, 44, 40, 40, 42, 42] + ([42] if has_en else []) + [72]
+    return d.table(rows, widths, extra=_band_cells(cells), size=7.5)
+
+
+def _precision(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    from reportlab.platypus import CondPageBreak
+
+    from planner.render import _charts
+
+    out: list[Any] = [CondPageBreak(80 * _MM), d.p("Precision (ISO 5725-2)", "h2")]
+    rows: list[list[Any]] = [["material", "p", "mean", "s_r", "s_L", "s_R", "r", "R",
+                              "Cochran C", "Grubbs high", "Grubbs low"]]
+    skipped = []
+    for m in s["materials"]:
+        pr = s["precision"].get(m, {})
+        if "skipped" in pr:
+            skipped.append(f"{m}: {pr['skipped']}")
+            continue
+        c = pr.get("cochran", {})
+        g = pr.get("grubbs", {})
+
+        def test(t: Mapping[str, Any] | None) -> str:
+            if not t or t.get("statistic") is None:
+                return "-"
+            mark = {"straggler": " *", "outlier": " **"}.get(t.get("result") or "", "")
+            return f"{t['lab']} {t['statistic']:.3f}{mark}"
+
+        rows.append([m, pr["p"], fmt(pr["mean"]), fmt(pr["s_r"], 3), fmt(pr["s_L"], 3),
+                     fmt(pr["s_R"], 3), fmt(pr["r"], 3), fmt(pr["R"], 3), test(c),
+                     test(g.get("high")), test(g.get("low"))])
+    if len(rows) > 1:
+        out.append(d.table(rows, [54, 20, 42, 36, 36, 36, 36, 36, 62, 62, 62], size=7.2))
+        out.append(d.p("r = 2.8 s_r and R = 2.8 s_R. * straggler (beyond the 5 % critical "
+                       "value), ** outlier (beyond the 1 %); nothing is removed automatically.",
+                       "small"))
+    out += [d.p(_layout.escape(t), "small") for t in skipped]
+    host = s["host"]
+    half = (d.width - 6) / 2
+    grid: list[list[Any]] = []
+    for m in s["materials"]:
+        pr = s["precision"].get(m, {})
+        if "skipped" in pr:
+            continue
+        labs = list(pr["mandel_h"])
+        ind = pr.get("indicators", {})
+        hl = [lab == host for lab in labs]
+        h_lines = [_charts.Line(sign * ind[k], f"{sign * ind[k]:+.2f} ({pct})", colour, True)
+                   for k, pct, colour in (("h_5", "5 %", "#c98a12"), ("h_1", "1 %", "#b03a2e"))
+                   if ind.get(k) for sign in (-1, 1)]
+        k_lines = [_charts.Line(ind[k], f"{ind[k]:.2f} ({pct})", colour, True)
+                   for k, pct, colour in (("k_5", "5 %", "#c98a12"), ("k_1", "1 %", "#b03a2e"))
+                   if ind.get(k)]
+        grid.append([
+            _charts.BarsChart(labs, [pr["mandel_h"][lab] for lab in labs], lines=h_lines,
+                              flag_at=(ind.get("h_5") or 9e9, ind.get("h_1") or 9e9),
+                              highlight=hl, width=half, height=100,
+                              title=f"{m}: Mandel h (between laboratories)"),
+            _charts.BarsChart(labs, [pr["mandel_k"][lab] for lab in labs], lines=k_lines,
+                              flag_at=(ind.get("k_5") or 9e9, ind.get("k_1") or 9e9),
+                              highlight=hl, symmetric=False, width=half, height=100,
+                              title=f"{m}: Mandel k (within laboratories)"),
+        ])
+    if grid:
+        from reportlab.platypus import Table
+
+        out.append(d.p("Mandel's h and k with the 5 % and 1 % indicator lines", "h2"))
+        t = Table(grid, colWidths=[half + 3, half + 3], hAlign="LEFT")
+        t.setStyle([("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
+                    ("TOPPADDING", (0, 0), (-1, -1), 2), ("BOTTOMPADDING", (0, 0), (-1, -1), 4),
+                    ("VALIGN", (0, 0), (-1, -1), "TOP")])
+        out.append(t)
+    return out
+
+
+def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    from reportlab.platypus import CondPageBreak, KeepTogether
+
+    from planner.render import _charts
+
+    out: list[Any] = [CondPageBreak(100 * _MM),
+                      d.p("Gauge R&R (materials as parts, laboratories as appraisers)", "h2")]
+    ga = s.get("grr_anova") or {"skipped": "not computed"}
+    if "skipped" in ga:
+        out.append(d.p(_layout.escape(f"ANOVA method not computed: {ga['skipped']}"), "body"))
+    else:
+        table = ga["pooled_table"] if ga.get("pooled_table") else ga["table"]
+        rows: list[list[Any]] = [["source", "df", "SS", "MS", "F", "p"]]
+        for name, r in table.items():
+            rows.append([name, fmt(r.get("df")), fmt(r.get("ss"), 5), fmt(r.get("ms"), 5),
+                         fmt(r.get("f"), 4), fmt(r.get("p"), 3)])
+        model = ("interaction pooled into repeatability (p > "
+                 f"{ga['pool_alpha']:g})" if ga["model"] != "full" else "with interaction")
+        comps = ["repeatability", "reproducibility", "operator", "interaction", "grr", "part"]
+        names = {"repeatability": "repeatability (EV)", "reproducibility": "reproducibility (AV)",
+                 "operator": "  laboratory", "interaction": "  material x lab",
+                 "grr": "gauge R&R", "part": "material (part)"}
+        shown = [c for c in comps if c in ga["pct_contribution"]]
+        var_rows: list[list[Any]] = [["component", "variance", "SD", "% contribution",
+                                      "% study var.", "% tolerance"]]
+        tol = ga.get("pct_tolerance") or {}
+        for c in shown:
+            sd = ga["variance"].get(c)
+            var_rows.append([names[c].strip(), fmt(ga["variance"].get(c), 4),
+                             fmt(sd ** 0.5 if sd is not None and sd >= 0 else None, 4),
+                             fmt(ga["pct_contribution"].get(c), 3),
+                             fmt(ga["pct_study_variation"].get(c), 3), fmt(tol.get(c), 3)])
+        series = [("% contribution", [ga["pct_contribution"].get(c) for c in shown]),
+                  ("% study variation", [ga["pct_study_variation"].get(c) for c in shown])]
+        if tol:
+            series.append(("% tolerance", [tol.get(c) for c in shown]))
+        out += [
+            d.p(f"Two-way crossed ANOVA, {ga['parts']} materials x {ga['operators']} "
+                f"laboratories x {ga['trials']} trials, {model}.", "small"),
+            d.table(rows, [110, 40, 70, 70, 60, 60]),
+            d.table(var_rows, [110, 60, 60, 70, 70, 70]),
+            d.p(f"Study variation = {fmt(ga['multiplier'])} SD; number of distinct categories "
+                f"ndc = {fmt(ga.get('ndc'))}. Common practice (AIAG MSA): GRR below 10 % "
+                "acceptable, 10 to 30 % may be acceptable, above 30 % not acceptable.", "small"),
+            KeepTogether([_charts.ComponentsChart([names[c].strip() for c in shown], series,
+                                                  width=d.width, height=40 + 26 * len(shown),
+                                                  title="Components of variation")]),
+        ]
+    gr = s.get("grr_range") or {"skipped": "not computed"}
+    if "skipped" in gr:
+        out.append(d.p(_layout.escape(f"Average-and-range method not computed: "
+                                      f"{gr['skipped']}"), "small"))
+    else:
+        rows = [["EV", "AV", "GRR", "PV", "TV", "% EV", "% AV", "% GRR", "ndc"],
+                [fmt(gr["ev"]), fmt(gr["av"]), fmt(gr["grr"]), fmt(gr["pv"]), fmt(gr["tv"]),
+                 fmt(gr["pct_ev"], 3), fmt(gr["pct_av"], 3), fmt(gr["pct_grr"], 3),
+                 fmt(gr.get("ndc"))]]
+        out += [d.p("Average-and-range method", "h2"),
+                d.table(rows, [50] * 9, right_from=0)]
+    return out
+
+
+def _results(d: _Doc, s: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[Any]:
+    from reportlab.platypus import CondPageBreak
+
+    trials = int(s["trials"])
+    out: list[Any] = [CondPageBreak(60 * _MM), d.p("Results as reported", "h2"),
+                      d.p("Values per trial with the unit's code; flags: late, after-unseal, "
+                          "in-house (the host), spare-used.", "small")]
+    by: dict[tuple[str, str], dict[int, Unblinded]] = {}
+    for r in rows:
+        by.setdefault((r.material, r.lab), {})[r.trial] = r
+    head = ["material", "laboratory"] + [f"trial {t}" for t in range(1, trials + 1)] + ["flags"]
+    table: list[list[Any]] = [head]
+    for (m, lab), cells in by.items():
+        flags = sorted({f for r in cells.values() for f in r.flags})
+        row: list[Any] = [m, lab]
+        for t in range(1, trials + 1):
+            r = cells.get(t)
+            row.append("-" if r is None else
+                       f"{fmt(r.value)}  {codes.format(r.code)}" if r.value is not None else
+                       f"no value  {codes.format(r.code)}")
+        row.append(", ".join(flags))
+        table.append(row)
+    tw = min(112.0, (d.width - 150) / max(trials, 1))
+    out.append(d.table(table, [60, 40] + [tw] * trials + [80], right_from=2, size=7))
+    return out
+
+
+def _methods(d: _Doc) -> list[Any]:
+    from planner.stats import gauge_rr, iso5725_2, iso13528
+
+    out: list[Any] = [d.p("Methods", "h2")]
+    for mod in (gauge_rr, iso5725_2, iso13528):
+        out.append(d.p(_layout.escape(str(getattr(mod, "SOURCE", ""))), "small"))
+    return out
+
+
+def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded], *,
+           paper: str) -> Path:
+    """Write the round report to ``path`` on ``paper`` ("A4" or "letter"); return ``path``."""
+    d = _Doc(paper)
+    s = statistics
+    spreads = spread(rows)
+    story = _summary(d, s)
+    story += _matrix(d, s)
+    for m in s["materials"]:
+        story += _material_section(d, s, m, spreads)
+    story += _precision(d, s)
+    story += _gauge(d, s)
+    if len(s["labs"]) <= DETAIL_LABS:
+        story += _results(d, s, rows)
+    story += _methods(d)
+    running = _layout.Running(s["study"], s["title"], s["round"], "round report",
+                              "for the coordinator: names every laboratory")
+    return _layout.build(path, story, paper=paper, running=running,
+                         title=f"{s['study']} round {s['round']}: report")

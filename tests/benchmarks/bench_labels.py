@@ -1,0 +1,89 @@
+"""Benchmark: labels for 30,000 units on the A4 3 x 8 sheet (a4-3x8-70x37).
+
+Prints labels per second, bytes per label, peak memory, and the ratio of the
+label time to the bare time of making the same 30,000 QR matrices in this run.
+Targets (issue 3): one process adds at most 20 % to the bare QR time; with
+two worker processes the whole labels.pdf takes at most 70 % of the bare
+one-process QR time; at most 400 bytes per label; peak memory at most 400 MB.
+
+Run: python tests/benchmarks/bench_labels.py [--units N]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+
+from planner import codes, draw  # noqa: E402
+from planner.render import _qr, _sheets, labels  # noqa: E402
+
+
+def make_items(n: int) -> list[labels.Label]:
+    """Return n labels with fresh codes and the fields of a realistic round."""
+    drawn = codes.new_codes(draw.Stream(bytes(range(32)), "bench"), n)
+    labs = [("Kalmsund Plant QC Laboratory", "kal"), ("Torvhaug Compounding Laboratory", "tor"),
+            ("Helmbrecht Film Plant Laboratory", "hel"), ("Crossway Polymer Testing Ltd", "crx")]
+    out = []
+    for i, code in enumerate(drawn):
+        name, lab_id = labs[i % len(labs)]
+        out.append(labels.Label(
+            code=code, hazard="IRRITANT" if i % 6 == 5 else "",
+            trial=f"trial {i % 3 + 1} · run {i % 6 + 1}", lab=(f"for {name}", f"for {lab_id}"),
+            use_by="use by 2027-05-11", study="nvp-mfr · round 2027-1",
+            storage="dry, 15-25 °C, sealed bag"))
+    return out
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--units", type=int, default=30_000)
+    parser.add_argument("--workers", type=int, default=2)
+    args = parser.parse_args()
+    items = make_items(args.units)
+    texts = [codes.format(item.code) for item in items]
+    geometry = _sheets.load("a4-3x8-70x37")
+
+    start = time.perf_counter()
+    for text in texts:
+        _qr.matrix(text)
+    bare = time.perf_counter() - start
+
+    with tempfile.TemporaryDirectory() as tmp:
+        one_path = Path(tmp) / "one.pdf"
+        start = time.perf_counter()
+        labels.render(one_path, items, geometry, title="bench", workers=1)
+        one = time.perf_counter() - start
+        size = one_path.stat().st_size
+
+        two_path = Path(tmp) / "two.pdf"
+        start = time.perf_counter()
+        labels.render(two_path, items, geometry, title="bench", workers=args.workers)
+        two = time.perf_counter() - start
+        same = two_path.read_bytes() == one_path.read_bytes()
+
+    peak_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak_child = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    n = args.units
+    print(f"units                          {n}")
+    print(f"cpu count                      {os.cpu_count()}")
+    print(f"bare QR matrices, 1 process    {bare:7.2f} s  ({n / bare:8.0f} /s)")
+    print(f"labels.pdf, 1 process          {one:7.2f} s  ({n / one:8.0f} labels/s)"
+          f"  ratio to bare {one / bare:.3f}  (target <= 1.20)")
+    print(f"labels.pdf, {args.workers} workers           {two:7.2f} s  ({n / two:8.0f} labels/s)"
+          f"  ratio to bare {two / bare:.3f}  (target <= 0.70)")
+    print(f"file size                      {size} bytes, {size / n:.1f} bytes/label"
+          "  (target <= 400)")
+    print(f"peak memory                    main {peak_self:.0f} MB, largest worker "
+          f"{peak_child:.0f} MB  (target <= 400)")
+    print(f"1-process and parallel PDFs identical: {same}")
+
+
+if __name__ == "__main__":
+    main()
