@@ -47,8 +47,14 @@ from planner.errors import PlannerError, SpecError, Where
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["LabDates", "RoundDates", "schedule_round", "check_stability", "transit_days",
-           "WorkingDays"]
+__all__ = [
+    "LabDates",
+    "RoundDates",
+    "WorkingDays",
+    "check_stability",
+    "schedule_round",
+    "transit_days",
+]
 
 _DAY = timedelta(days=1)
 _WEEKDAY_INDEX = {"mon": 0, "tue": 1, "wed": 2, "thu": 3, "fri": 4, "sat": 5, "sun": 6}
@@ -99,7 +105,7 @@ class RoundDates:
 class WorkingDays:
     """Public holidays by country, loaded once per country for a span of years."""
 
-    __slots__ = ("_years", "_by_country")
+    __slots__ = ("_by_country", "_years")
 
     def __init__(self, years: Iterable[int]) -> None:
         self._years = tuple(sorted(set(years)))

@@ -63,7 +63,7 @@ def _passphrase(path: Path | None, *, confirm: bool) -> str:
         try:
             lines = path.read_text(encoding="utf-8").splitlines()
         except OSError as exc:
-            raise SealError(f"cannot read the passphrase file ({exc.strerror.lower()})",
+            raise SealError(f"cannot read the passphrase file ({(exc.strerror or 'error').lower()})",
                             _where(path)) from None
         if not lines or not lines[0].strip():
             raise SealError("the passphrase file is empty; put the passphrase on its first line",

@@ -30,7 +30,7 @@ from typing import Any
 
 from planner.errors import DataError, Where
 
-__all__ = ["collect", "estimate_host_effect", "MIN_ROUNDS", "HISTORY_FORMAT"]
+__all__ = ["HISTORY_FORMAT", "MIN_ROUNDS", "collect", "estimate_host_effect"]
 
 MIN_ROUNDS = 2
 HISTORY_FORMAT = "ringplan-history/1"

@@ -217,14 +217,16 @@ def _read_xlsx(name: str, data: bytes) -> Form:
 
     from openpyxl import load_workbook
 
+    from planner.render.result_form import SHEET
+
     try:
         book = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
     except (BadZipFile, KeyError, ValueError, OSError):
         raise IntakeError("this zip file is not an .xlsx workbook; save the form as .xlsx or "
                           "CSV", Where(name)) from None
     try:
-        sheet = book.worksheets[0]
-        grid = [tuple(row) for row in sheet.iter_rows(values_only=True)]
+        sheet = book[SHEET] if SHEET in book.sheetnames else book.worksheets[0]
+        grid = [tuple(row) for row in sheet.iter_rows(min_row=1, values_only=True)]
     finally:
         book.close()
     identity: list[tuple[str, str, int]] = []
@@ -254,8 +256,9 @@ def _read_xlsx(name: str, data: bytes) -> Form:
         rows.append(FormRow(number, tuple(zip(columns, ("" if c is None else c for c in cells))),
                             len(cells)))
     if not columns:
-        raise IntakeError("the first sheet has no header row with the columns 'code' and "
-                          "'value'; send the result form as it was printed", Where(name))
+        raise IntakeError(f"the sheet {sheet.title!r} has no header row with the columns "
+                          "'code' and 'value'; send the result form as it was printed",
+                          Where(name))
     return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
                 columns, len(columns), None, tuple(rows), data)
 

@@ -30,7 +30,7 @@ def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, da
         for row in ledger.rounds():
             if row.round in known:
                 continue
-            when = row.dates.get("test_start") or row.dates.get("prepare_on")
+            when = str(row.dates.get("test_start") or row.dates["prepare_on"])
             out.append((row.round, row.host, date.fromisoformat(when)))
     return sorted(out, key=lambda r: r[2])
 

@@ -53,7 +53,7 @@ from planner.errors import SpecError, Where
 if TYPE_CHECKING:
     from planner.spec import Lab, Study
 
-__all__ = ["Proposal", "propose", "duty_span"]
+__all__ = ["Proposal", "duty_span", "propose"]
 
 # Preparation day plus a weekend between packing and arrival: our own rule when
 # the spec gives no prepare_on to measure the lead from.

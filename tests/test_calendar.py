@@ -9,6 +9,7 @@ Weekdays of 2027 dates were checked against Python's ``date.weekday``.
 from __future__ import annotations
 
 from datetime import date, timedelta
+from pathlib import Path
 
 import holidays
 import pytest
@@ -16,7 +17,8 @@ import pytest
 from planner import calendar, spec
 from planner.errors import SpecError
 
-from conftest import EXAMPLE
+# The example study of the repository (not via conftest: several conftest modules exist).
+EXAMPLE = Path(__file__).resolve().parent.parent / "examples" / "norrvik-mfr"
 
 
 def _lab(lab_id: str, country: str, *, transit: int | None = None, can_host: bool = True) -> dict:

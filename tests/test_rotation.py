@@ -11,6 +11,7 @@ from __future__ import annotations
 import random
 from datetime import date, timedelta
 from fractions import Fraction
+from pathlib import Path
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -19,7 +20,8 @@ from hypothesis import strategies as st
 from planner import rotation, spec
 from planner.errors import SpecError
 
-from conftest import EXAMPLE
+# The example study of the repository (not via conftest: several conftest modules exist).
+EXAMPLE = Path(__file__).resolve().parent.parent / "examples" / "norrvik-mfr"
 
 RECEIVE_BY = date(2027, 1, 19)
 PREPARE_ON = date(2027, 1, 11)   # lead of 8 days before receive_by
@@ -332,12 +334,16 @@ def test_zero_rounds_is_refused():
         rotation.propose(_study([_lab("a"), _lab("b")]), [], rounds=0)
 
 
+def _run(runner, *args):
+    from planner.cli import app
+
+    return runner.invoke(app, [str(a) for a in args])
+
+
 def test_rotate_command_prints_the_proposals_as_json(runner, example_dir):
     import json
 
-    from conftest import run_cli
-
-    result = run_cli(runner, "rotate", example_dir, "--rounds", "3", "--json")
+    result = _run(runner, "rotate", example_dir, "--rounds", "3", "--json")
     assert result.exit_code == 0, result.output
     data = json.loads(result.stdout)
     assert [item["host"] for item in data] == ["lin", "hel", "kal"]
@@ -345,8 +351,6 @@ def test_rotate_command_prints_the_proposals_as_json(runner, example_dir):
 
 
 def test_rotate_command_reports_no_available_host_in_one_line(runner, example_dir):
-    from conftest import run_cli
-
     spec_file = example_dir / "study.yaml"
     text = spec_file.read_text(encoding="utf-8")
     # Only kal can host, and it is closed for the round; the history goes so the spec stays valid.
@@ -358,7 +362,7 @@ def test_rotate_command_reports_no_available_host_in_one_line(runner, example_di
                         "  - {round: 2026-3, host: hel, date: 2026-09-15}", "history: []")
     text = text.replace("    country: SE\n    can_host: false", "    country: SE\n    can_host: true")
     spec_file.write_text(text, encoding="utf-8")
-    result = run_cli(runner, "rotate", example_dir)
+    result = _run(runner, "rotate", example_dir)
     assert result.exit_code == 2
     assert result.stderr == ("error: laboratories: no laboratory can host the round of 2027-01-19: "
                              "kal: unavailable 2027-01-01 to 2027-02-28 (move to new building)\n")

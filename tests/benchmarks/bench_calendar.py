@@ -17,7 +17,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from planner import calendar, spec  # noqa: E402
+from planner import calendar, spec
 
 LABS = 500
 COUNTRIES = ["SE", "NO", "DE", "FI", "GB", "FR", "NL", "PL", "IT", "ES", "US", "JP"]

@@ -21,8 +21,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from planner import codes, draw  # noqa: E402
-from planner.render import _qr, _sheets, labels  # noqa: E402
+from planner import codes, draw
+from planner.render import _qr, _sheets, labels
 
 
 def make_items(n: int) -> list[labels.Label]:

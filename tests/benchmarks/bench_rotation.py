@@ -15,7 +15,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from planner import rotation, spec  # noqa: E402
+from planner import rotation, spec
 
 LABS = 200
 ROUNDS = 24
