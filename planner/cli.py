@@ -189,6 +189,48 @@ def rotate(
                              for p in proposals]))
 
 
+@app.command("history")
+@_command
+def history_command(
+    study_dir: StudyDir,
+    as_json: JsonOpt = False,
+    pdf: Annotated[bool, typer.Option("--pdf/--no-pdf",
+                                      help="Also write history.pdf in the study folder.")] = True,
+) -> None:
+    """Show each laboratory's scores over the evaluated rounds and the host effect."""
+    from planner import history
+
+    study = _load(study_dir)
+    record = history.collect(study_dir, labs=[lab.id for lab in study.laboratories])
+    if pdf:
+        from planner.render import history as history_page
+
+        out = history_page.render(Path(study_dir) / "history.pdf", record, study_id=study.id,
+                                  title=study.study.title, paper=study.study.paper)
+    if as_json:
+        _print_json(record)
+        return
+    con = _console()
+    rounds = [r["round"] for r in record["rounds"]]
+    rows = []
+    for lab, data in record["labs"].items():
+        cells = []
+        for name in rounds:
+            entry = data["rounds"].get(name)
+            if entry is None or entry["mean_z"] is None:
+                cells.append("*" if entry and entry["hosted"] else "")
+            else:
+                cells.append(f"{entry['mean_z']:+.2f}{' *' if entry['hosted'] else ''}")
+        rows.append([lab, *cells])
+    con.print(_table("Mean z per round (* hosted)", ["laboratory", *rounds], rows))
+    effect = record["host_effect"]
+    for lab, item in effect["labs"].items():
+        con.print(item["statement"])
+    con.print(effect["pooled"]["statement"])
+    if pdf:
+        con.print(f"wrote {out}")
+
+
 def _print_schedule(con: Any, dates: dict[str, Any]) -> None:
     con.print(f"prepare on {dates['prepare_on']}; all laboratories test {dates['test_start']} "
               f"to {dates['test_end']}; results due {dates['results_due']}")
@@ -394,13 +436,14 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
     con = _console()
     con.print(_table(
         f"Round {round_id}: results due {info.results_due}",
-        ["laboratory", "received", "version", "values", "no value", "codes missing", "late",
-         "days left", "flags"],
+        ["lab", "received", "version", "values", "empty", "missing", "late", "days left",
+         "flags"],
         [[r["lab"], "yes" if r["received"] else "no", r["version"], r["values"], r["failed"],
           r["missing"], "late" if r["late"] else "", r["days_left"],
           " ".join(f for f, on in (("AFTER-UNSEAL", r["after_unseal"]),
-                                   (f"{r['spares_issued']} spare(s)", r["spares_issued"])) if on)]
+                                   (f"spares:{r['spares_issued']}", r["spares_issued"])) if on)]
          for r in info.rows]))
+    con.print("empty: rows without a value (remark given); missing: codes with no row yet")
     if info.unsealed:
         con.print("the key has been opened")
     elif info.may_open:
@@ -432,6 +475,137 @@ def spare(
     typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
                f"{codes.format(swap.damaged)} (trial {swap.trial}, position {swap.position}); "
                "report its result under the spare's code")
+
+
+@app.command()
+@_command
+def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) -> None:
+    """Unblind the accepted results and write the round's report, letters and statistics."""
+    from planner import evaluate as evaluation
+    from planner import stats
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    with Ledger.open(study_dir) as ledger:
+        folder = evaluation.evaluate_round(study, study_dir, round_id, ledger,
+                                           workers=min(2, os.cpu_count() or 1))
+    result = json.loads((folder / evaluation.STATISTICS_NAME).read_text(encoding="utf-8"))
+    if as_json:
+        _print_json(result)
+        return
+    typer.echo(stats.summary_text(result), nl=False)
+    typer.echo(f"\nwrote {folder}: {evaluation.REPORT_NAME}, {evaluation.STATISTICS_NAME}, "
+               f"{evaluation.RESULTS_NAME} and {len(study.laboratories)} letters")
+
+
+@app.command()
+@_command
+def analyze(
+    file: Annotated[Path, typer.Argument(help="A CSV with the columns material, lab, trial, "
+                                         "value (optional: uncertainty, k = 2).")],
+    tolerance: Annotated[float | None, typer.Option(
+        help="Tolerance width, for gauge R&R as % of tolerance.")] = None,
+    sigma_pt: Annotated[float | None, typer.Option(
+        "--sigma-pt", help="Standard deviation for proficiency assessment (default: the "
+        "robust SD of the results).")] = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Run the round statistics on any long-format CSV, without a study."""
+    from planner import stats
+
+    for name, v in (("--tolerance", tolerance), ("--sigma-pt", sigma_pt)):
+        if v is not None and not v > 0:
+            raise PlannerError(f"{name} {v!r} must be above 0")
+    rows = stats.read_long_csv(file)
+    result = stats.evaluate_table(rows, tolerance=tolerance, sigma_pt=sigma_pt)
+    if as_json:
+        _print_json(result)
+    else:
+        typer.echo(stats.summary_text(result), nl=False)
+
+
+@app.command()
+@_command
+def demo(out: Annotated[Path | None, typer.Argument(
+        help="A new or empty folder (default: ./ringplan-demo).")] = None) -> None:
+    """Build the example study end to end with simulated results, and say what to open."""
+    from planner import demo as demonstration
+
+    target = out if out is not None else Path("ringplan-demo")
+    demonstration.check_target(target)
+    typer.echo(f"building the example study in {target} (a minute at most) ...")
+    made = demonstration.build_demo(target, passphrase=demonstration.PASSPHRASE,
+                                    workers=min(2, os.cpu_count() or 1))
+    typer.echo(f"round {made['round']} of the invented Norrvik Polymers study: host "
+               f"{made['host']}, {len(made['letters'])} laboratories, results simulated with "
+               f"{made['biased_lab']} reading about {demonstration.BIAS:.0%} high; one spare "
+               "used, one form returned as a spreadsheet")
+    typer.echo(f"key passphrase (for this demo only): {made['passphrase']}")
+    typer.echo("open first:")
+    for label, path in (("the round report", made["report"]),
+                        (f"the letter to {made['biased_lab']}", made["letter"]),
+                        ("a laboratory's run sheet", made["run_sheet"]),
+                        ("every statistic", made["statistics"])):
+        typer.echo(f"  {label:26} {path}")
+
+
+@app.command("print")
+@_command
+def print_documents(
+    study_dir: StudyDir,
+    round_id: Annotated[str | None, typer.Option(
+        "--round", help="The round id, e.g. 2027-1 (not needed with --calibration).")] = None,
+    only: Annotated[str | None, typer.Option(
+        help="Print one kind: labels, prep, packing, runsheets or forms.")] = None,
+    lab: Annotated[str | None, typer.Option(help="Print for one laboratory only.")] = None,
+    codes_: Annotated[str | None, typer.Option(
+        "--codes", help="Reprint the labels of these codes, comma-separated.")] = None,
+    start_at: Annotated[int, typer.Option(
+        "--start-at", help="Begin at label N of a partly used sheet (1 = top left).")] = 1,
+    sheet: Annotated[str | None, typer.Option(
+        help="Label sheet geometry (default: the study's label_sheet).")] = None,
+    offset_x: Annotated[float, typer.Option(
+        "--offset-x", help="Shift the labels right by this many mm (negative: left).")] = 0.0,
+    offset_y: Annotated[float, typer.Option(
+        "--offset-y", help="Shift the labels down by this many mm (negative: up).")] = 0.0,
+    calibration: Annotated[bool, typer.Option(
+        help="Print an alignment page with the cell outlines of the sheet instead.")] = False,
+    passphrase_file: PassFile = None,
+) -> None:
+    """Print the labels, prep sheet, packing lists, run sheets and result forms of a round."""
+    from planner import plan as planning
+    from planner import render, seal
+    from planner.ledger import Ledger
+
+    study = _load(study_dir)
+    offset = (offset_x, offset_y)
+    if calibration:
+        name = sheet or study.study.label_sheet
+        from planner.render import _sheets
+
+        geometry = _sheets.load(name, [study_dir / "sheets"])
+        path = render.print_calibration(study_dir / f"calibration-{name}.pdf", geometry, offset)
+        typer.echo(f"wrote {path}; print it at 100 % on plain paper and lay it on a sheet")
+        return
+    if round_id is None:
+        raise PlannerError("--round is required (or use --calibration)")
+    folder = planning.round_dir(study_dir, round_id)
+    planning.read_manifest(folder)  # a clear error for a round never planned
+    if (folder / seal.KEY_NAME).is_file():
+        key = seal.read_key_json(folder)
+    else:
+        key = seal.open_key(folder, _passphrase(passphrase_file, confirm=False))
+    chosen = [c for c in (codes_ or "").split(",") if c.strip()] or None
+    paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
+                               codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
+                               workers=min(2, os.cpu_count() or 1))
+    with Ledger.open(study_dir) as ledger, ledger.transaction():
+        ledger.record_event(round_id, "printed", {
+            "documents": [p.relative_to(folder).as_posix() for p in paths],
+            "only": only, "lab": lab, "codes": chosen, "start_at": start_at,
+            "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset)})
+    for path in paths:
+        typer.echo(f"wrote {path}")
 
 
 def main() -> None:

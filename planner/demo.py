@@ -30,7 +30,7 @@ from typing import Any
 
 from planner.errors import PlannerError, Where
 
-__all__ = ["build_demo", "example_spec", "TRUE_VALUES", "BIASED", "BIAS", "PASSPHRASE",
+__all__ = ["build_demo", "check_target", "example_spec", "TRUE_VALUES", "BIASED", "BIAS", "PASSPHRASE",
            "ROUND"]
 
 PASSPHRASE = "demo-only-passphrase"
@@ -182,6 +182,13 @@ def _fill_xlsx(source: Path, target: Path, values: Mapping[str, tuple[float, flo
     book.save(target)
 
 
+def check_target(out: Path) -> None:
+    """Raise PlannerError if ``out`` exists and is not an empty folder."""
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise PlannerError("the folder exists and is not empty; give a new folder for the demo",
+                           Where(str(out)))
+
+
 def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
                workers: int = 1) -> dict[str, Any]:
     """Build the example study in ``out`` and run one round end to end; return what was made.
@@ -196,9 +203,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
     from planner.ledger import Ledger
 
     out = Path(out)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise PlannerError(f"{str(out)!r} exists and is not empty; give a new folder for the demo",
-                           Where(str(out)))
+    check_target(out)
     out.mkdir(parents=True, exist_ok=True)
     shutil.copyfile(example_spec(), out / spec.SPEC_NAME)
     study = spec.load(out)

@@ -81,6 +81,22 @@ def _number(v: Any) -> float | None:
     return out if math.isfinite(out) else None
 
 
+class _Shown:
+    """A code as printed, made only if a message needs it (formatting 30 000 codes costs)."""
+
+    __slots__ = ("code", "raw")
+
+    def __init__(self, code: str, raw: str) -> None:
+        self.code, self.raw = code, raw
+
+    def __format__(self, spec: str) -> str:
+        return codes.format(self.code) if codes.is_valid(self.code) else repr(self.raw)
+
+
+def _shown(code: str, raw: str) -> _Shown:
+    return _Shown(code, raw)
+
+
 def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
     """Return the results joined to the key's units: material, lab, trial, code, value, flags.
 
@@ -99,9 +115,10 @@ def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
     for record in results:
         lab = str(_field(record, "lab"))
         raw = str(_field(record, "code", ""))
-        code = codes.compact(raw)
-        shown = codes.format(code) if codes.is_valid(code) else repr(raw)
-        unit = units.get(code)
+        unit = units.get(raw)
+        code = raw if unit is not None else codes.compact(raw)
+        unit = unit or units.get(code)
+        shown = _shown(code, raw)
         if unit is None:
             raise DataError(f"laboratory {lab!r} reported code {shown}, which is not a unit of "
                             "this round; check the result form against the packing list")

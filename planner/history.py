@@ -137,14 +137,18 @@ def _side(rows: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
             "bias_rounds": len(bias)}
 
 
+def _count(n: int, unit: str) -> str:
+    return f"{n} {unit if n != 1 else unit.removesuffix('s')}"
+
+
 def _compare(hosting: list[Mapping[str, Any]], other: list[Mapping[str, Any]], who: str,
              unit: str) -> dict[str, Any]:
     h, n = _side(hosting), _side(other)
     out: dict[str, Any] = {"hosting": h, "not_hosting": n, "difference": None}
     if h["rounds"] < MIN_ROUNDS or n["rounds"] < MIN_ROUNDS:
         out["statement"] = (
-            f"too few rounds to say anything about {who}: {h['rounds']} {unit} hosting and "
-            f"{n['rounds']} not hosting; at least {MIN_ROUNDS} of each are needed")
+            f"too few rounds to say anything about {who}: {_count(h['rounds'], unit)} hosting "
+            f"and {n['rounds']} not hosting; at least {MIN_ROUNDS} of each are needed")
         return out
     diff_z = h["mean_abs_z"] - n["mean_abs_z"]
     diff_b = (h["mean_bias_pct"] - n["mean_bias_pct"]

@@ -46,10 +46,22 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = [
-    "Form", "FormRow", "Receipt", "Swap", "RoundStatus",
-    "read_form", "check_form", "receive", "settle_results",
-    "spare_swaps", "expected_codes", "issue_spare", "round_status_table",
-    "IDENTITY_KEYS", "RESULTS_DIR", "STAGING_DIR",
+    "IDENTITY_KEYS",
+    "RESULTS_DIR",
+    "STAGING_DIR",
+    "Form",
+    "FormRow",
+    "Receipt",
+    "RoundStatus",
+    "Swap",
+    "check_form",
+    "expected_codes",
+    "issue_spare",
+    "read_form",
+    "receive",
+    "round_status_table",
+    "settle_results",
+    "spare_swaps",
 ]
 
 IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
@@ -547,7 +559,7 @@ def _quantity(raw: Any, decimal: str, what: str, where: Where,
 
 
 def _number(raw: Any, decimal: str, what: str) -> float:
-    if isinstance(raw, bool) or isinstance(raw, (date, datetime)):
+    if isinstance(raw, (bool, date)):   # datetime is a date
         raise IntakeError(f"{what} {raw!r} is not a number")
     if isinstance(raw, (int, float)):
         value = float(raw)

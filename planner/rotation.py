@@ -17,10 +17,12 @@ The rules, applied round by round to the past rounds and then to each proposal:
   round where, at its present share, its credit would reach one. Of the
   available laboratories, a due one with the nearest due-by round hosts. This
   is earliest-deadline-first over "proportionate fair" subtasks (Baruah, Cohen,
-  Plaxton and Varvel, Algorithmica 15, 1996), which on one resource keeps every
-  laboratory's count within one turn of its exact share; plain "most credit
-  first" can drift past one turn with unequal weights. Everything is done in
-  exact fractions, so no order of summation can change a decision.
+  Plaxton and Varvel, "Proportionate progress", Algorithmica 15, 1996; cited
+  from memory), which on one resource keeps every laboratory's count within one
+  turn of its exact share while no share exceeds one half (tests/test_rotation.py
+  checks this as a property); plain "most credit first" was seen to drift past
+  one turn with unequal weights. Everything is done in exact fractions, so no
+  order of summation can change a decision.
 * Late joiners and blacked-out laboratories are owed nothing for rounds they
   could not host: a laboratory that joins starts level, neither pushed to the
   front for every round it missed nor put in debt, and its waiting clock starts
@@ -207,8 +209,8 @@ def _reason(chosen: _State, ranked: list[_State], out: dict[str, str]) -> str:
     last = f", last in {chosen.last_round}" if chosen.last_round else (
         f", waiting since joining on {chosen.lab.joined}" if chosen.lab.joined else "")
     weight = f", weight {chosen.weight}" if chosen.weight != 1 else ""
-    parts = [f"{chosen.lab.id}: {_times(chosen.hosted)}{last}, "
-             f"fair share so far {float(chosen.owed):.1f}{weight}"]
+    parts = [(f"{chosen.lab.id}: {_times(chosen.hosted)}{last}, "
+              f"fair share so far {float(chosen.owed):.1f}{weight}")]
     if len(ranked) > 1:
         runner = ranked[1]
         if runner.credit > 0 and runner.due_by() == chosen.due_by():

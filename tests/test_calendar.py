@@ -224,3 +224,17 @@ def test_stability_exactly_enough_passes():
     short = spec.parse(text.replace("stability_days: 120", f"stability_days: {needed - 1}"))
     with pytest.raises(SpecError, match=": 1 day short;"):
         calendar.check_stability(short, calendar.schedule_round(short, "kal"))
+
+
+def test_transit_table_names_must_be_laboratories_and_rows_unique():
+    text = (EXAMPLE / "study.yaml").read_text(encoding="utf-8")
+    bad = text.replace("  round_interval_weeks: 13\n", "  round_interval_weeks: 13\n  transit:\n"
+                       "    - {from: kal, to: crx, days: 3}\n    - {from: kal, to: cxr, days: 1}\n"
+                       "    - {from: kal, to: crx, days: 4}\n")
+    with pytest.raises(SpecError) as caught:
+        spec.parse(bad)
+    lines = str(caught.value).splitlines()
+    assert lines[0].endswith("schedule.transit[1].to: 'cxr' is not a laboratory of this study; "
+                             "did you mean 'crx'?")
+    assert lines[1].endswith("schedule.transit[2]: 'kal' to 'crx' is listed twice (first at "
+                             "schedule.transit[0])")

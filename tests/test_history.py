@@ -15,7 +15,6 @@ import pytest
 
 from planner import history
 from planner.errors import DataError
-from planner.render import history as page
 
 
 def _score(assigned: float, labs: dict[str, tuple[float, float]], *, prime: bool = False) -> dict:
@@ -100,7 +99,7 @@ def test_too_few_rounds_are_said_plainly(tmp_path):
     effect = history.collect(tmp_path)["host_effect"]
     assert effect["labs"]["a"]["difference"] is None
     assert effect["labs"]["a"]["statement"] == (
-        "too few rounds to say anything about laboratory 'a': 1 rounds hosting and 1 not "
+        "too few rounds to say anything about laboratory 'a': 1 round hosting and 1 not "
         "hosting; at least 2 of each are needed")
     assert effect["pooled"]["statement"].startswith("all hosts together: mean |z|")
 
@@ -145,42 +144,40 @@ def test_reads_the_score_structure_planner_stats_writes(tmp_path):
 
 
 
-# --- the one-page PDF (planner.render.history) ---------------------------------------
-# Kept here, not in tests/render/, because a second module named test_history would clash.
 
-# ISO 216 A4 and US Letter in PDF points (1 pt = 25.4/72 mm).
-A4_PT = (210 / 25.4 * 72, 297 / 25.4 * 72)
-LETTER_PT = (8.5 * 72, 11 * 72)
+# --- through the command line ------------------------------------------------------
+
+EXAMPLE = Path(__file__).resolve().parent.parent / "examples" / "norrvik-mfr"
 
 
-def _write_page_round(study: Path, round_id: str, host: str, test_start: str, scores: dict) -> None:
-    folder = study / "rounds" / round_id
-    (folder / "report").mkdir(parents=True)
-    (folder / "report" / "statistics.json").write_text(json.dumps(
-        {"round": round_id, "host": host, "materials": list(scores), "scores": scores}))
-    (folder / "manifest.json").write_text(json.dumps(
-        {"round": round_id, "host": host, "dates": {"test_start": test_start}}))
+def _run(*args):
+    from typer.testing import CliRunner
+
+    from planner.cli import app
+
+    return CliRunner().invoke(app, [str(a) for a in args])
 
 
-@pytest.mark.parametrize(("labs", "paper", "size"), [(2, "A4", A4_PT), (120, "letter", LETTER_PT)],
-                         ids=["few-labs-A4", "many-labs-letter"])
-def test_history_page_is_one_page_of_the_paper_asked(tmp_path, labs, paper, size):
-    import pypdfium2
+def test_history_command_prints_json_and_writes_the_page(tmp_path):
+    (tmp_path / "study.yaml").write_text((EXAMPLE / "study.yaml").read_text(encoding="utf-8"),
+                                         encoding="utf-8")
+    _write_round(tmp_path, "2027-1", "kal", "2027-01-19",
+                 {"HD-BM5": _score(10.0, {"kal": (10.5, 1.0), "crx": (9.0, -2.0)})})
+    result = _run("history", tmp_path, "--json")
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.stdout)
+    assert list(data["labs"]) == ["kal", "tor", "hel", "lin", "crx"]   # the spec's order
+    assert data["labs"]["kal"]["hosted"] == ["2027-1"]
+    assert (tmp_path / "history.pdf").read_bytes().startswith(b"%PDF")
 
-    ids = [f"lab{i:03d}" for i in range(labs)]
-    for k in range(6):
-        labs_scores = {lab: {"mean": 10.0 + 0.01 * (i - k), "z": 0.3 * ((i + k) % 7 - 3),
-                             "z_prime": None} for i, lab in enumerate(ids)}
-        scores = {"M": {"assigned_value": 10.0, "use_z_prime": False, "labs": labs_scores}}
-        _write_page_round(tmp_path, f"r{k}", ids[k % labs], f"2026-0{k + 1}-10", scores)
-    record = history.collect(tmp_path, labs=ids)
-    out = page.render(tmp_path / "history.pdf", record, study_id="s1", title="t", paper=paper)
-    pdf = pypdfium2.PdfDocument(out)
-    try:
-        assert len(pdf) == 1
-        assert pdf[0].get_size() == pytest.approx(size, abs=0.01)
-        text = pdf[0].get_textpage().get_text_range().replace("\r\n", " ")
-    finally:
-        pdf.close()
-    assert "Laboratories over rounds" in text and "lab000" in text
-    assert record["host_effect"]["pooled"]["statement"][:30] in text
+
+def test_history_command_reports_a_broken_file_in_one_line(tmp_path):
+    (tmp_path / "study.yaml").write_text((EXAMPLE / "study.yaml").read_text(encoding="utf-8"),
+                                         encoding="utf-8")
+    folder = tmp_path / "rounds" / "2027-1" / "report"
+    folder.mkdir(parents=True)
+    (folder / "statistics.json").write_text("{not json")
+    result = _run("history", tmp_path, "--no-pdf")
+    assert result.exit_code == 2
+    assert result.stderr == (f"error: {folder / 'statistics.json'}: the file is not valid JSON; "
+                             "evaluate the round again\n")

@@ -133,9 +133,9 @@ class _Chart(Flowable):  # type: ignore[misc]
         from reportlab.lib.colors import HexColor
 
         x0, y0, w, h = self._area
-        for ln in lines:
-            if not (lo <= ln.value <= hi):
-                continue
+        shown = sorted((ln for ln in lines if lo <= ln.value <= hi), key=lambda ln: ln.value)
+        labels: list[tuple[float, Line]] = []
+        for ln in shown:
             y = y0 + (ln.value - lo) / (hi - lo) * h
             c.setStrokeColor(HexColor(ln.colour))
             c.setLineWidth(0.8)
@@ -143,9 +143,28 @@ class _Chart(Flowable):  # type: ignore[misc]
             c.line(x0, y, x0 + w, y)
             c.setDash()
             if ln.label:
-                c.setFillColor(HexColor(ln.colour))
-                c.setFont(_layout.FONT, 6.5)
-                c.drawString(x0 + w + 3, y - 2.2, ln.label)
+                labels.append((y, ln))
+        # Push labels of close lines apart (bottom-up for the lower half, top-down for the
+        # upper half) so that the 5 % and 1 % names do not print over each other.
+        gap = 7.0
+        mid = y0 + h / 2
+        placed: list[tuple[float, Line]] = []
+        lower = [item for item in labels if item[0] < mid]
+        upper = [item for item in labels if item[0] >= mid]
+        last = -1e9
+        for y, ln in reversed(lower):
+            ty = min(y, last - gap) if last > -1e9 else y
+            placed.append((ty, ln))
+            last = ty
+        last = -1e9
+        for y, ln in upper:
+            ty = max(y, last + gap)
+            placed.append((ty, ln))
+            last = ty
+        c.setFont(_layout.FONT, 6.5)
+        for ty, ln in placed:
+            c.setFillColor(HexColor(ln.colour))
+            c.drawString(x0 + w + 3, ty - 2.2, ln.label)
 
     def _x_labels(self, c: Any, labels: Sequence[str], named: Sequence[bool]) -> None:
         from reportlab.lib.colors import HexColor
@@ -331,7 +350,8 @@ class ComponentsChart(_Chart):
         self._draw_title(c)
         x0, y0, w, h = self._area
         vals = [v for _, vs in self.series for v in vs if v is not None and math.isfinite(v)]
-        top = max(vals + [100.0]) * 1.05
+        # Past 150 % the bars only say "far too much"; clip them and print the value.
+        top = min(max(vals + [100.0]), 150.0) * 1.05
         ticks = nice_ticks(0.0, top)
         c.setFont(_layout.FONT, 6.5)
         c.setLineWidth(0.4)
@@ -355,11 +375,17 @@ class ComponentsChart(_Chart):
                 if v is None or not math.isfinite(v):
                     continue
                 y = top_y - (s + 1) * bh
+                length = min(max(v, 0.0), top) / top * w
                 c.setFillColor(HexColor(self._COLOURS[s % len(self._COLOURS)]))
-                c.rect(x0, y, max(v, 0.0) / top * w, bh * 0.9, stroke=0, fill=1)
+                c.rect(x0, y, length, bh * 0.9, stroke=0, fill=1)
                 c.setFillColor(HexColor(_layout.INK))
                 c.setFont(_layout.FONT, 6)
-                c.drawString(x0 + max(v, 0.0) / top * w + 2, y + bh * 0.45 - 2, f"{v:.1f}")
+                text = f"{v:.1f}" + (" (clipped)" if v > top else "")
+                if v > top:
+                    c.setFillColor(HexColor("#ffffff"))
+                    c.drawRightString(x0 + length - 2, y + bh * 0.45 - 2, text)
+                else:
+                    c.drawString(x0 + length + 2, y + bh * 0.45 - 2, text)
         # legend under the axis
         lx = x0
         c.setFont(_layout.FONT, 7)
@@ -374,10 +400,13 @@ class ComponentsChart(_Chart):
 class StripChart(_Chart):
     """One row per material: everyone's score as a thin tick, the reader's own as a marker.
 
-    Rows are (label, scores of all participants, own score or None). The axis runs over
+    Rows are (label, scores of all participants, own score or None); the own score is
+    among the others too (its tick sits under the marker). The axis runs over
     -+``limit``; the satisfactory and questionable bands are shaded; scores past the
     limit are drawn at the edge. With more than ``MAX_LABELS`` participants the ticks
-    become a histogram in steps of 0.25, so the chart stays light.
+    become a histogram in steps of 0.25, so the chart stays light. Letters of one round
+    share everything but the marker: give them one ``cache`` dict and the shapes are
+    turned into PDF operators once.
     """
 
     _left = 62.0
@@ -387,45 +416,39 @@ class StripChart(_Chart):
 
     def __init__(self, rows: Sequence[tuple[str, Sequence[float | None], float | None]], *,
                  width: float, row_height: float = 14.0, limit: float = 4.0,
-                 title: str = "", score_name: str = "score") -> None:
+                 title: str = "", score_name: str = "score",
+                 cache: dict[str, list[str]] | None = None) -> None:
         super().__init__(width, len(rows) * row_height + self._top + self._bottom, title)
         self.rows, self.row_height, self.limit = rows, row_height, limit
         self.score_name = score_name
+        self.cache = cache
         if title:
             self._top = 16.0
             self.height += 8.0
 
-    def draw(self) -> None:
+    def _x_of(self, v: float) -> float:
+        x0, _, w, _ = self._area
+        lim = self.limit
+        return x0 + (min(max(v, -lim), lim) + lim) / (2 * lim) * w
+
+    def _shapes(self, c: Any) -> None:
+        """Draw what every letter shares and that holds no text: bands, rules, ticks."""
         from reportlab.lib.colors import HexColor
 
-        c = self.canv
-        self._draw_title(c)
         x0, y0, w, h = self._area
         lim = self.limit
-
-        def x_of(v: float) -> float:
-            return x0 + (min(max(v, -lim), lim) + lim) / (2 * lim) * w
-
+        x_of = self._x_of
         for a, b, colour in ((-3, -2, QUEST), (2, 3, QUEST), (-2, 2, SAT),
                              (-lim, -3, UNSAT), (3, lim, UNSAT)):
             c.setFillColor(HexColor(colour))
             c.rect(x_of(a), y0, x_of(b) - x_of(a), h, stroke=0, fill=1)
-        c.setFont(_layout.FONT, 6.5)
-        c.setFillColor(HexColor(_layout.MUTED))
-        for t in range(-int(lim), int(lim) + 1):
-            c.drawCentredString(x_of(t), y0 - 8, f"{t:+d}" if t else "0")
-        c.drawCentredString(x0 + w / 2, y0 - 15, self.score_name)
         rh = self.row_height
-        for r, (label, scores, own) in enumerate(self.rows):
+        for r, (_, scores, _) in enumerate(self.rows):
             top = y0 + h - r * rh
             mid = top - rh / 2
             c.setStrokeColor(HexColor(_layout.RULE))
             c.setLineWidth(0.3)
             c.line(x0, top - rh, x0 + w, top - rh)
-            c.setFillColor(HexColor(_layout.INK))
-            c.setFont(_layout.FONT, 7)
-            c.drawRightString(x0 - 4, mid - 2.4, _layout.fit_text(label, _layout.FONT, 7,
-                                                                  self._left - 6))
             vals = [v for v in scores if v is not None and math.isfinite(v)]
             c.setStrokeColor(HexColor(_layout.MUTED))
             if len(vals) <= MAX_LABELS:
@@ -445,19 +468,51 @@ class StripChart(_Chart):
                     bh = count / most * rh * 0.7
                     c.rect(xa, top - rh + rh * 0.12, x_of((b + 1) * 0.25) - xa - 0.3, bh,
                            stroke=0, fill=1)
-            if own is not None and math.isfinite(own):
-                x = x_of(own)
-                c.setFillColor(HexColor(_layout.ACCENT))
-                c.setStrokeColor(HexColor("#ffffff"))
-                c.setLineWidth(0.6)
-                p = c.beginPath()
-                s = rh * 0.32
-                p.moveTo(x, mid + s)
-                p.lineTo(x + s, mid)
-                p.lineTo(x, mid - s)
-                p.lineTo(x - s, mid)
-                p.close()
-                c.drawPath(p, stroke=1, fill=1)
         c.setStrokeColor(HexColor(_layout.MUTED))
         c.setLineWidth(0.5)
         c.line(x_of(0), y0, x_of(0), y0 + h)
+
+    def draw(self) -> None:
+        from reportlab.lib.colors import HexColor
+
+        c = self.canv
+        self._draw_title(c)
+        x0, y0, w, h = self._area
+        lim = self.limit
+        x_of = self._x_of
+        if self.cache is not None and "shapes" in self.cache:
+            # Operators only (colours, rects, lines): no font or other page resource.
+            c._code.extend(self.cache["shapes"])
+        else:
+            start = len(c._code)
+            self._shapes(c)
+            if self.cache is not None:
+                self.cache["shapes"] = list(c._code[start:])
+        c.setFont(_layout.FONT, 6.5)
+        c.setFillColor(HexColor(_layout.MUTED))
+        for t in range(-int(lim), int(lim) + 1):
+            c.drawCentredString(x_of(t), y0 - 8, f"{t:+d}" if t else "0")
+        c.drawCentredString(x0 + w / 2, y0 - 15, self.score_name)
+        rh = self.row_height
+        c.setFillColor(HexColor(_layout.INK))
+        c.setFont(_layout.FONT, 7)
+        for r, (label, _, _) in enumerate(self.rows):
+            mid = y0 + h - r * rh - rh / 2
+            c.drawRightString(x0 - 4, mid - 2.4, _layout.fit_text(label, _layout.FONT, 7,
+                                                                  self._left - 6))
+        c.setFillColor(HexColor(_layout.ACCENT))
+        c.setStrokeColor(HexColor("#ffffff"))
+        c.setLineWidth(0.6)
+        for r, (_, _, own) in enumerate(self.rows):
+            if own is None or not math.isfinite(own):
+                continue
+            mid = y0 + h - r * rh - rh / 2
+            x = x_of(own)
+            p = c.beginPath()
+            s = rh * 0.32
+            p.moveTo(x, mid + s)
+            p.lineTo(x + s, mid)
+            p.lineTo(x, mid - s)
+            p.lineTo(x - s, mid)
+            p.close()
+            c.drawPath(p, stroke=1, fill=1)

@@ -11,6 +11,7 @@ result alone; the rows shrink to keep everything on one page.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from itertools import pairwise
 from pathlib import Path
 from typing import Any
 
@@ -20,6 +21,7 @@ __all__ = ["render"]
 
 _MM = 72.0 / 25.4
 _Z_LIMIT = 4.0
+_ROW_MAX = 14 * _MM
 
 
 def _fmt(value: float | None) -> str:
@@ -41,7 +43,8 @@ def _rows_flowable(record: Mapping[str, Any], width: float, height: float) -> An
         def draw(self) -> None:
             c = self.canv
             left, right, top = 22 * _MM, 34 * _MM, 10.0
-            plot_w = width - left - right
+            # A gap between the last round and the right-hand column.
+            plot_w = width - left - right - 10 * _MM
             row_h = (height - top) / max(len(labs), 1)
             font = max(3.0, min(8.0, row_h * 0.6))
             step = plot_w / max(len(rounds) - 1, 1)
@@ -72,17 +75,17 @@ def _rows_flowable(record: Mapping[str, Any], width: float, height: float) -> An
                 for guide in (-2.0, 2.0):
                     c.line(left, mid + guide * scale, left + plot_w, mid + guide * scale)
                 c.setDash()
-                points = []
+                points: list[tuple[float, float, bool] | None] = []
                 for i, name in enumerate(rounds):
                     entry = data["rounds"].get(name)
                     if entry is None or entry["mean_z"] is None:
                         points.append(None)
                         continue
                     z = max(-_Z_LIMIT, min(_Z_LIMIT, entry["mean_z"]))
-                    points.append((x_of(i), mid + z * scale, entry["hosted"]))
+                    points.append((x_of(i), mid + z * scale, bool(entry["hosted"])))
                 c.setStrokeColor(HexColor(_layout.ACCENT))
                 c.setLineWidth(0.8)
-                for a, b in zip(points, points[1:]):
+                for a, b in pairwise(points):
                     if a is not None and b is not None:
                         c.line(a[0], a[1], b[0], b[1])
                 radius = max(0.8, min(2.2, row_h * 0.12))
@@ -119,12 +122,14 @@ def render(path: Path, record: Mapping[str, Any], *, study_id: str, title: str,
                   "laboratories. Each row: the laboratory's mean z per round (scale -4 to 4, "
                   "dotted at -2 and +2); a filled mark is a round it hosted.", st["lead"]),
         Spacer(1, 3 * _MM),
-        # The rows take what the page leaves after header, text and margins.
-        _rows_flowable(record, width, page_h * 0.58),
+        # The rows take at most what the page leaves after header, text and margins.
+        _rows_flowable(record, width, min(page_h * 0.58, 10.0 + _ROW_MAX * len(record["labs"]))),
         Spacer(1, 4 * _MM),
         Paragraph("Host effect", st["h2"]),
         Paragraph(esc(pooled["statement"]), st["body"]),
     ]
-    running = _layout.Running(study_id, title, "all rounds", "history")
+    names = [r["round"] for r in record["rounds"]]
+    span = f"{names[0]} to {names[-1]}" if len(names) > 1 else (names[0] if names else "none")
+    running = _layout.Running(study_id, title, span, "history")
     return _layout.build(path, story, paper=paper, running=running,
                          title=f"history of {study_id}")

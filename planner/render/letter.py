@@ -73,6 +73,8 @@ def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
             "bands": {codes_of[lab]: e.get("band") for lab, e in sc["labs"].items()
                       if lab in codes_of},
         }
+        out["materials"][m]["all"] = list(out["materials"][m]["scores"].values())
+    out["cache"] = {}
     return out
 
 
@@ -124,9 +126,9 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
             f"<b>{esc(s['title'])}</b>, round {esc(s['round'])}: {n_labs} participants, "
             f"{len(s['materials'])} materials, {s['trials']} trials each. Measurand: "
             f"{esc(s['measurand'])}, in {esc(s['unit'])}. Your laboratory is <b>{esc(to.lab)}</b>; "
-            f"in the charts and tables of this letter it is marked <i>you</i>, and the other "
-            f"participants appear only under codes drawn for this round (yours would be "
-            f"{esc(me)}). The codes change every round.", st["lead"]),
+            "in the charts and tables of this letter it is marked <i>you</i>. The other "
+            "participants appear only under codes drawn at random for this round (P-01, "
+            "P-02, ...), which change every round.", st["lead"]),
     ]
     if in_house:
         story.append(Paragraph(
@@ -175,7 +177,7 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     for r in rows:
         if r.lab == to.lab:
             own.setdefault(r.material, {})[r.trial] = r
-    data = [["material"] + [f"trial {t}" for t in range(1, trials + 1)]]
+    data = [["material"] + [h for t in range(1, trials + 1) for h in (f"trial {t}", "unit")]]
     notes: list[str] = []
     for m in s["materials"]:
         cells_m = own.get(m, {})
@@ -183,20 +185,22 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         for t in range(1, trials + 1):
             r = cells_m.get(t)
             if r is None:
-                row.append("-")
+                row += ["-", ""]
                 continue
             value = n(r.value) if r.value is not None else "no value"
             if r.uncertainty is not None:
-                value += f" -+ {n(r.uncertainty, 3)}"
-            row.append(Paragraph(f"{esc(value)}<br/><font face='{_layout.MONO_REGULAR}' "
-                                 f"size='6.5'>{codes.format(r.code)}</font>", st["cell"]))
+                value += f" ± {n(r.uncertainty, 3)}"
+            # Plain strings, not Paragraphs: a big round makes hundreds of these letters.
+            row += [value, codes.format(r.code)]
             extra = [f for f in r.flags if f != "in-house"]
             if extra:
                 notes.append(f"{m} trial {t}: {', '.join(extra)}")
         data.append(row)
-    tw = min(120.0, (width - 70) / max(trials, 1))
+    tw = min(62.0, (width - 70) / max(trials, 1) - 58)
+    mono = [("FONT", (c, 1), (c, -1), _layout.MONO_REGULAR, 7) for c in range(2, 2 * trials + 1, 2)]
+    align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
     story += [Paragraph("Your results", st["h2"]),
-              table(data, [70] + [tw] * trials, right_from=trials + 1)]
+              table(data, [70] + [tw, 58] * trials, mono + align)]
     if notes:
         story.append(Paragraph("Flags: " + esc("; ".join(notes)), st["small"]))
 
@@ -206,20 +210,19 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         mv = view["materials"].get(m)
         if not mv:
             continue
-        own_score = mv["scores"].get(me)
-        others = [v for c, v in mv["scores"].items() if c != me]
-        strip_rows.append((m, others, own_score))
+        strip_rows.append((m, mv["all"], mv["scores"].get(me)))
     if strip_rows:
         name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
         story.append(KeepTogether([
             Paragraph("Where you stand", st["h2"]),
-            Paragraph("Each tick is one participant's score on the material"
+            Paragraph("Each tick is one participant's score on the material, yours included"
                       + (" (bars: how many scores fall in each step of 0.25)"
                          if n_labs > _charts.MAX_LABELS else "")
                       + "; the diamond is yours. Green: satisfactory, amber: questionable, "
-                        "red: unsatisfactory; scores beyond -+4 are drawn at the edge.",
+                        "red: unsatisfactory; scores beyond ±4 are drawn at the edge.",
                       st["small"]),
-            _charts.StripChart(strip_rows, width=width, score_name=name),
+            _charts.StripChart(strip_rows, width=width, score_name=name,
+                               cache=view.get("cache")),
         ]))
     if n_labs <= TABLE_LABS and view["materials"]:
         mats = [m for m in s["materials"] if m in view["materials"]]
@@ -297,7 +300,14 @@ _SHARED: dict[str, Any] = {}
 
 
 def _init(statistics: Mapping[str, Any], rows_by_lab: Mapping[str, Sequence[Unblinded]],
-          paper: str) -> None:
+          paper: str, worker: bool = False) -> None:
+    if worker:
+        from reportlab import rl_config
+
+        # In a worker process only: plain Flate streams instead of Flate + ASCII85.
+        # The pure-Python ASCII85 encoder costs a sixth of a letter's time, and the
+        # files get smaller; every PDF reader takes either.
+        rl_config.useA85 = 0
     _SHARED.update(statistics=statistics, rows=rows_by_lab, paper=paper,
                    view=anonymous_view(statistics))
 
@@ -333,5 +343,5 @@ def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unbli
     ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
     chunk = max(1, len(jobs) // (workers * 4))
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init,
-                             initargs=(statistics, by_lab, paper)) as pool:
+                             initargs=(statistics, by_lab, paper, True)) as pool:
         return list(pool.map(_one, jobs, chunksize=chunk))

@@ -62,7 +62,7 @@ def score_of(sc: Mapping[str, Any], lab: str) -> tuple[float | None, str]:
 
 
 def spread(rows: Sequence[Unblinded]) -> dict[tuple[str, str], tuple[float, float]]:
-    """Return, per (material, lab), the lowest and highest result (or mean -+ U for one result)."""
+    """Return, per (material, lab), the lowest and highest result (or mean ± U for one result)."""
     acc: dict[tuple[str, str], list[Unblinded]] = {}
     for r in rows:
         if r.value is not None:
@@ -81,20 +81,24 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
     """Return the sentences of the summary: scores outside the band, tests, gauge R&R."""
     out: list[str] = []
     host = statistics["host"]
-    bad: dict[str, list[str]] = {}
+    bad: dict[str, dict[str, list[str]]] = {}
     for m in statistics["materials"]:
         sc = statistics["scores"].get(m, {})
-        for lab, s in sc.get("labs", {}).items():
-            if s.get("band") in ("questionable", "unsatisfactory"):
+        for lab, e in sc.get("labs", {}).items():
+            items = []
+            if e.get("band") in ("questionable", "unsatisfactory"):
                 z, name = score_of(sc, lab)
-                bad.setdefault(lab, []).append(f"{m} ({name} = {fmt(z, 3)}, {s['band']})")
-            if s.get("en_band") == "unsatisfactory":
-                bad.setdefault(lab, []).append(f"{m} (En = {fmt(s['En'], 3)})")
+                items.append(f"{name} = {fmt(z, 3)}, {e['band']}")
+            if e.get("en_band") == "unsatisfactory":
+                items.append(f"En = {fmt(e['En'], 3)}")
+            if items:
+                bad.setdefault(lab, {})[m] = items
     if bad:
-        for lab, items in bad.items():
+        for lab, by_m in bad.items():
             mark = " (host, in-house)" if lab == host else ""
-            out.append(f"{lab}{mark}: outside the satisfactory band on {len(items)} of "
-                       f"{len(statistics['materials'])} materials: " + "; ".join(items))
+            out.append(f"{lab}{mark}: outside the satisfactory band on {len(by_m)} of "
+                       f"{len(statistics['materials'])} materials: "
+                       + "; ".join(f"{m} ({', '.join(items)})" for m, items in by_m.items()))
     else:
         out.append("every laboratory is in the satisfactory band on every material")
     tests = []
@@ -273,7 +277,10 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     """The laboratory x material table of deciding scores, coloured by band."""
     mats = s["materials"]
     host = s["host"]
-    out: list[Any] = [d.p("Scores by laboratory", "h2"),
+    from reportlab.platypus import CondPageBreak
+
+    rows_high = min(len(s["labs"]), 12) * 5.2 * _MM
+    out: list[Any] = [CondPageBreak(30 * _MM + rows_high), d.p("Scores by laboratory", "h2"),
                       d.p("The score that decides the band of each material (z, or z' where "
                           "marked in the heading); amber: questionable, red: unsatisfactory.",
                           "small")]
@@ -328,13 +335,13 @@ def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
     out.append(d.p(_layout.escape(facts + (" " + "; ".join(notes) if notes else "")), "small"))
     single = all(v is not None and spreads.get((m, lab), (0, 0))[0] == spreads.get((m, lab),
                  (0, 0))[1] for lab, v in zip(labs, means))
-    whisker = "mean -+ U" if single else "lowest to highest result"
+    whisker = "mean ± U" if single else "lowest to highest result"
     chart_w = d.width
     out.append(KeepTogether([
         _charts.MeansChart(labs, means, lows, highs, centre=x_pt, band=band, highlight=hl,
                            width=chart_w, height=120,
-                           title=f"Laboratory means ({whisker}), x_pt and x_pt -+ 2 sigma_pt "
-                                 f"[{s['unit']}]"),
+                           title=f"Laboratory means ({whisker}), x_pt and x_pt ± 2 sigma_pt "
+                                 f"[{s['unit']}]; the host in-house in colour"),
         _z_chart(sc, labs, hl, chart_w, 105),
     ]))
     if len(labs) <= DETAIL_LABS:
@@ -459,7 +466,7 @@ def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     from planner.render import _charts
 
     out: list[Any] = [CondPageBreak(100 * _MM),
-                      d.p("Gauge R&R (materials as parts, laboratories as appraisers)", "h2")]
+                      d.p("Gauge R&amp;R (materials as parts, laboratories as appraisers)", "h2")]
     ga = s.get("grr_anova") or {"skipped": "not computed"}
     if "skipped" in ga:
         out.append(d.p(_layout.escape(f"ANOVA method not computed: {ga['skipped']}"), "body"))
@@ -488,7 +495,8 @@ def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
         series = [("% contribution", [ga["pct_contribution"].get(c) for c in shown]),
                   ("% study variation", [ga["pct_study_variation"].get(c) for c in shown])]
         if tol:
-            series.append(("% tolerance", [tol.get(c) for c in shown]))
+            # PV as a share of the tolerance says nothing about the gauge; leave it out.
+            series.append(("% tolerance", [tol.get(c) if c != "part" else None for c in shown]))
         out += [
             d.p(f"Two-way crossed ANOVA, {ga['parts']} materials x {ga['operators']} "
                 f"laboratories x {ga['trials']} trials, {model}.", "small"),
@@ -498,7 +506,7 @@ def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                 f"ndc = {fmt(ga.get('ndc'))}. Common practice (AIAG MSA): GRR below 10 % "
                 "acceptable, 10 to 30 % may be acceptable, above 30 % not acceptable.", "small"),
             KeepTogether([_charts.ComponentsChart([names[c].strip() for c in shown], series,
-                                                  width=d.width, height=40 + 26 * len(shown),
+                                                  width=d.width, height=44 + 11 * len(series) * len(shown),
                                                   title="Components of variation")]),
         ]
     gr = s.get("grr_range") or {"skipped": "not computed"}

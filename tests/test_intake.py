@@ -1,0 +1,740 @@
+"""Returned result forms: checks through the CLI, recording, versions, spares, status, kills.
+
+Every round here is planned from the example study with the fixed secret of
+conftest; forms are the CSV that ``plan`` wrote, filled in by editing lines.
+Expected values are the numbers the tests write into the forms themselves.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+from datetime import date
+
+import pytest
+from conftest import PASSPHRASE, ROOT, SECRET, run_cli
+
+from planner import calendar, codes, intake, plan, seal, spec
+from planner.errors import IntakeError
+from planner.ledger import Ledger
+
+ROUND = "2027-1"
+NOW = "2027-01-30T09:00:00+00:00"   # after the test window (2027-01-19..28), before 02-04
+HEADER_LINE = 10                    # 9 identity and note lines, then the header
+FIRST_ROW = 11
+
+
+# --- helpers ---------------------------------------------------------------------
+
+@pytest.fixture
+def clock(monkeypatch):
+    """Fix the ledger's clock (the time a form is received) at NOW; tests may move it."""
+    state = {"now": NOW}
+    monkeypatch.setattr(Ledger, "now", lambda self: state["now"])
+    return state
+
+
+def _plan(study_dir, round_id=ROUND, host="kal", receive_by=None):
+    study = spec.load(study_dir)
+    dates = calendar.schedule_round(study, host, receive_by=receive_by)
+    with Ledger.open(study_dir) as ledger:
+        result = plan.plan_round(study, round_id=round_id, host=host, dates=dates,
+                                 secret=SECRET, taken=ledger.codes())
+        plan.write_round(study, study_dir, result, ledger, passphrase=PASSPHRASE)
+    return result
+
+
+@pytest.fixture
+def planned(example_dir, clock):
+    _plan(example_dir)
+    return example_dir
+
+
+def _manifest(study_dir, round_id=ROUND):
+    return plan.read_manifest(plan.round_dir(study_dir, round_id))
+
+
+def _sep(lab):
+    return "," if lab == "crx" else ";"   # crx writes a decimal point, the others a comma
+
+
+def _number(x, lab):
+    text = f"{x:.2f}"
+    return text if lab == "crx" else text.replace(".", ",")
+
+
+def _value_of(n):
+    """The value the tests write on data row n (1-based); exact in binary floating point."""
+    return 10 + n / 4
+
+
+def filled(study_dir, lab, *, round_id=ROUND, day="2027-01-25"):
+    """Return the lines of a laboratory's blank form with every row filled in."""
+    path = plan.round_dir(study_dir, round_id) / "labs" / lab / "result-form.csv"
+    lines = path.read_text(encoding="utf-8").splitlines()
+    sep = _sep(lab)
+    for i in range(FIRST_ROW - 1, len(lines)):
+        cells = lines[i].split(sep)
+        cells[3] = _number(_value_of(i - FIRST_ROW + 2), lab)
+        cells[5] = day
+        cells[6] = "A. Analyst"
+        lines[i] = sep.join(cells)
+    return lines
+
+
+def set_cell(lines, line, column, text, lab):
+    sep = _sep(lab)
+    cells = lines[line - 1].split(sep)
+    cells[plan.FORM_COLUMNS.index(column)] = text
+    lines[line - 1] = sep.join(cells)
+
+
+def get_cell(lines, line, column, lab):
+    return lines[line - 1].split(_sep(lab))[plan.FORM_COLUMNS.index(column)]
+
+
+def write(tmp_path, name, lines):
+    path = tmp_path / name
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def one_error(result, path, line):
+    """Assert exit 2 and exactly one stderr line naming path:line; return the message."""
+    assert result.exit_code == 2, (result.stdout, result.stderr)
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, lines
+    prefix = f"error: {path}:{line}: "
+    assert lines[0].startswith(prefix), lines[0]
+    return lines[0][len(prefix):]
+
+
+def nothing_recorded(study_dir):
+    with Ledger.open(study_dir) as ledger:
+        assert ledger.submissions(ROUND) == []
+        assert ledger.events(ROUND, "received") == []
+    folder = plan.round_dir(study_dir, ROUND)
+    for sub in ("results", ".intake"):
+        assert not (folder / sub).exists() or not any((folder / sub).iterdir())
+    return True
+
+
+def receive(runner, study_dir, *files, extra=()):
+    return run_cli(runner, "receive", study_dir, "--round", ROUND, *files, *extra)
+
+
+# --- bad forms through the CLI: one line, exit 2, nothing recorded -----------------
+
+def _other_lab_code(m):
+    return codes.format(m["labs"]["tor"]["trials"][0][0])
+
+
+def _mistype(code_text):
+    """Change the check character to another symbol; Luhn mod N catches every such change."""
+    last = code_text[-1]
+    return code_text[:-1] + ("0" if last != "0" else "1")
+
+
+CASES = [
+    # id, lab, edit(lines, manifest), line, fragment, extra CLI args
+    ("wrong-lab-option", "kal", None, 3,
+     "the form is from laboratory 'kal', not 'tor' as --lab says", ("--lab", "tor")),
+    ("lab-line-of-another-lab", "kal",
+     lambda ls, m: ls.__setitem__(2, "# laboratory: tor"), 3,
+     "the form says laboratory 'tor' but its codes are those of laboratory 'kal'", ()),
+    ("unknown-lab", "kal", lambda ls, m: ls.__setitem__(2, "# laboratory: kall"), 3,
+     "laboratory 'kall' is not in round '2027-1'; did you mean 'kal'?", ()),
+    ("code-of-another-lab", "kal",
+     lambda ls, m: set_cell(ls, 11, "code", _other_lab_code(m), "kal"), 11,
+     "belongs to laboratory 'tor', not to 'kal'", ()),
+    ("mistyped-check-character", "kal",
+     lambda ls, m: set_cell(ls, 12, "code", _mistype(get_cell(ls, 12, "code", "kal")), "kal"),
+     12, "check character does not match", ()),
+    ("duplicate-code", "kal",
+     lambda ls, m: set_cell(ls, 13, "code", get_cell(ls, 11, "code", "kal"), "kal"), 13,
+     "appears twice (first on line 11)", ()),
+    ("text-in-value", "kal", lambda ls, m: set_cell(ls, 14, "value", "twelve", "kal"), 14,
+     "value 'twelve' is not a number", ()),
+    ("decimal-comma-in-point-lab", "crx",
+     lambda ls, m: set_cell(ls, 15, "value", '"12,5"', "crx"), 15,
+     "value '12,5' has a decimal comma, but this laboratory writes a decimal point", ()),
+    ("decimal-comma-unquoted", "crx", lambda ls, m: set_cell(ls, 15, "value", "12,5", "crx"),
+     15, "the row has 9 fields but the header has 8", ()),
+    ("decimal-point-in-comma-lab", "kal", lambda ls, m: set_cell(ls, 15, "value", "12.5", "kal"),
+     15, "has a decimal point, but this laboratory writes a decimal comma", ()),
+    ("thousands-in-comma-lab", "kal", lambda ls, m: set_cell(ls, 16, "value", "1.234,5", "kal"),
+     16, "thousands separators, which are ambiguous", ()),
+    ("thousands-in-point-lab", "crx",
+     lambda ls, m: set_cell(ls, 16, "value", '"1,234.5"', "crx"), 16,
+     "thousands separators, which are ambiguous", ()),
+    ("thousands-space", "kal", lambda ls, m: set_cell(ls, 16, "value", "1 234,5", "kal"), 16,
+     "thousands separators", ()),
+    ("empty-value-without-remark", "kal", lambda ls, m: set_cell(ls, 17, "value", "", "kal"),
+     17, "value is empty; enter the result, or say in remarks why there is none", ()),
+    ("uncertainty-not-positive", "kal",
+     lambda ls, m: set_cell(ls, 18, "uncertainty", "0", "kal"), 18, "is not above 0", ()),
+    ("date-before-window", "kal", lambda ls, m: set_cell(ls, 19, "date", "2027-01-05", "kal"),
+     19, "before the test window (2027-01-19 to 2027-01-28)", ()),
+    ("date-not-a-date", "kal", lambda ls, m: set_cell(ls, 19, "date", "2027-02-30", "kal"), 19,
+     "date '2027-02-30' is not a calendar date", ()),
+    ("date-after-receipt", "kal", lambda ls, m: set_cell(ls, 19, "date", "2027-01-31", "kal"),
+     19, "after the day the form was received (2027-01-30)", ()),
+    ("wrong-unit", "kal", lambda ls, m: ls.__setitem__(4, "# unit: g/min"), 5,
+     "the form reports in 'g/min', but the study's unit is 'g/10 min'", ()),
+    ("wrong-fingerprint", "kal", lambda ls, m: ls.__setitem__(3, "# fingerprint: " + "0" * 64),
+     4, "is not this round's", ()),
+    ("wrong-study", "kal", lambda ls, m: ls.__setitem__(0, "# study: nvp-other"), 1,
+     "the form is for study 'nvp-other', not 'nvp-mfr'", ()),
+    ("identity-line-removed", "kal", lambda ls, m: ls.pop(0), 1,
+     "the form has no '# study: ...' line", ()),
+    ("trial-of-another-slot", "kal", lambda ls, m: set_cell(ls, 11, "trial", "2", "kal"), 11,
+     "is trial 1, position 1 of the run order, but the row says trial '2'", ()),
+    ("row-without-code", "kal", lambda ls, m: set_cell(ls, 11, "code", "", "kal"), 11,
+     "the row has no code", ()),
+    ("unit-kept-by-host", "kal",
+     lambda ls, m: set_cell(ls, 11, "code", codes.format(m["host_units"]["retained"][0]), "kal"),
+     11, "is a unit kept by the host", ()),
+    ("spare-not-issued", "kal",
+     lambda ls, m: set_cell(ls, 11, "code", codes.format(m["labs"]["kal"]["spares"][0]), "kal"),
+     11, "is a spare of this laboratory that was not issued", ()),
+    ("misspelt-column", "kal", lambda ls, m: ls.__setitem__(
+        9, ls[9].replace("remarks", "remark")), HEADER_LINE, "did you mean 'remarks'?", ()),
+]
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
+def test_bad_form_is_one_line_and_nothing_is_recorded(planned, runner, tmp_path, case):
+    name, lab, edit, line, fragment, extra = case
+    lines = filled(planned, lab)
+    if edit is not None:
+        edit(lines, _manifest(planned))
+    path = write(tmp_path, f"{name}.csv", lines)
+    message = one_error(receive(runner, planned, path, extra=extra), path, line)
+    assert fragment in message
+    assert nothing_recorded(planned)
+
+
+def test_suggested_spelling_of_a_decimal_comma(planned, runner, tmp_path):
+    lines = filled(planned, "crx")
+    set_cell(lines, 15, "value", '"12,5"', "crx")
+    path = write(tmp_path, "comma.csv", lines)
+    assert "write '12.5'" in one_error(receive(runner, planned, path), path, 15)
+
+
+def test_empty_file(planned, runner, tmp_path):
+    path = tmp_path / "empty.csv"
+    path.write_bytes(b"")
+    assert "the file is empty" in one_error(receive(runner, planned, path), path, 1)
+    assert nothing_recorded(planned)
+
+
+def test_form_of_another_round(planned, runner, tmp_path):
+    _plan(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
+    path = write(tmp_path, "next-round.csv", filled(planned, "kal", round_id="2027-2"))
+    message = one_error(receive(runner, planned, path), path, 2)
+    assert message.startswith("the form is for round '2027-2', not '2027-1'")
+    assert nothing_recorded(planned)
+
+
+def test_code_of_another_round(planned, runner, tmp_path):
+    _plan(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
+    lines = filled(planned, "kal")
+    set_cell(lines, 11, "code", codes.format(_manifest(planned, "2027-2")["labs"]["tor"]
+                                             ["trials"][0][0]), "kal")
+    path = write(tmp_path, "mixed.csv", lines)
+    assert "belongs to round '2027-2', not to '2027-1'" in one_error(
+        receive(runner, planned, path), path, 11)
+
+
+def test_text_that_is_not_utf8(planned, runner, tmp_path):
+    lines = filled(planned, "kal")
+    path = tmp_path / "latin1.csv"
+    text = "\n".join(lines).replace("A. Analyst", "Sjöberg", 1) + "\n"
+    path.write_bytes(text.encode("latin-1"))
+    # the first byte that is not UTF-8 is the degree sign of the measurand, line 7
+    assert "not UTF-8" in one_error(receive(runner, planned, path), path, 7)
+
+
+def test_all_problems_of_a_form_at_once(planned, runner, tmp_path):
+    lines = filled(planned, "kal")
+    set_cell(lines, 12, "value", "abc", "kal")
+    set_cell(lines, 20, "value", "1.5", "kal")
+    path = write(tmp_path, "two.csv", lines)
+    result = receive(runner, planned, path)
+    assert result.exit_code == 2
+    assert [ln.split(": ")[1] for ln in result.stderr.strip().splitlines()] == [
+        f"{path}:12", f"{path}:20"]
+    assert nothing_recorded(planned)
+
+
+def test_one_bad_form_stops_the_good_one_too(planned, runner, tmp_path):
+    good = write(tmp_path, "good.csv", filled(planned, "crx"))
+    lines = filled(planned, "kal")
+    set_cell(lines, 12, "value", "abc", "kal")
+    bad = write(tmp_path, "bad.csv", lines)
+    one_error(receive(runner, planned, good, bad), bad, 12)
+    assert nothing_recorded(planned)
+
+
+def test_check_only_records_nothing(planned, runner, tmp_path):
+    path = write(tmp_path, "kal.csv", filled(planned, "kal"))
+    result = receive(runner, planned, path, extra=("--check",))
+    assert result.exit_code == 0, result.stderr
+    assert "passes every check (18 values, 0 without value); nothing recorded" in result.stdout
+    assert nothing_recorded(planned)
+
+
+# --- accepted forms -----------------------------------------------------------------
+
+def test_good_comma_form_is_copied_hashed_and_recorded(planned, runner, tmp_path):
+    path = write(tmp_path, "kal-results.csv", filled(planned, "kal"))
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0, result.stderr
+    data = path.read_bytes()
+    sha = hashlib.sha256(data).hexdigest()
+    stored = plan.round_dir(planned, ROUND) / "results" / f"{sha}.csv"
+    assert f"kal: recorded version 1 from {path}: 18 values, 0 without value" in result.stdout
+    assert stored.read_bytes() == data
+    assert not os.access(stored, os.W_OK) or os.geteuid() == 0   # written read-only
+    assert oct(stored.stat().st_mode & 0o777) == "0o444"
+    manifest = _manifest(planned)
+    slots = {c: (t, p) for t, run in enumerate(manifest["labs"]["kal"]["trials"], 1)
+             for p, c in enumerate(run, 1)}
+    with Ledger.open(planned) as ledger:
+        (sub,) = ledger.submissions(ROUND)
+        assert (sub.lab, sub.version, sub.sha256, sub.file_name, sub.received_at, sub.late,
+                sub.after_unseal) == ("kal", 1, sha, "kal-results.csv", NOW, False, False)
+        rows = ledger.result_rows(sub.row)
+        assert [e.detail for e in ledger.events(ROUND, "received")] == [
+            {"lab": "kal", "version": 1, "sha256": sha}]
+        assert ledger.round_status(ROUND) == "received"
+    lines = filled(planned, "kal")
+    written = {codes.compact(get_cell(lines, n, "code", "kal")): _value_of(n - FIRST_ROW + 1)
+               for n in range(FIRST_ROW, FIRST_ROW + 18)}
+    assert {r.code: r.value for r in rows} == written
+    assert {r.code: (r.trial, r.position) for r in rows} == slots
+    assert {r.date for r in rows} == {"2027-01-25"} and {r.flags for r in rows} == {()}
+
+
+def test_point_form_with_comma_separator_and_uncertainty(planned, runner, tmp_path):
+    lines = filled(planned, "crx")
+    set_cell(lines, 11, "uncertainty", "0.35", "crx")
+    set_cell(lines, 12, "value", "1.5e1", "crx")
+    path = write(tmp_path, "crx.csv", lines)
+    assert receive(runner, planned, path).exit_code == 0
+    with Ledger.open(planned) as ledger:
+        rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
+    first = codes.compact(get_cell(lines, 11, "code", "crx"))
+    second = codes.compact(get_cell(lines, 12, "code", "crx"))
+    assert rows[first].uncertainty == 0.35 and rows[second].value == 15.0
+
+
+def test_corrected_form_is_a_new_version_and_history_stays(planned, runner, tmp_path):
+    first = write(tmp_path, "kal-1.csv", filled(planned, "kal"))
+    assert receive(runner, planned, first).exit_code == 0
+    lines = filled(planned, "kal")
+    set_cell(lines, 14, "value", "99,75", "kal")
+    second = write(tmp_path, "kal-2.csv", lines)
+    result = receive(runner, planned, second)
+    assert result.exit_code == 0, result.stderr
+    assert "kal: recorded version 2 (supersedes version 1)" in result.stdout
+    code = codes.compact(get_cell(lines, 14, "code", "kal"))
+    folder = plan.round_dir(planned, ROUND) / "results"
+    with Ledger.open(planned) as ledger:
+        v1, v2 = ledger.submissions(ROUND, "kal")
+        assert (v1.version, v2.version) == (1, 2)
+        old = {r.code: r.value for r in ledger.result_rows(v1.row)}
+        new = {r.code: r.value for r in ledger.result_rows(v2.row)}
+        table = intake.round_status_table(spec.load(planned), planned, ROUND, ledger,
+                                          today=date(2027, 1, 30))
+    assert old[code] == _value_of(14 - FIRST_ROW + 1) and new[code] == 99.75
+    assert sorted(p.name for p in folder.iterdir()) == sorted(
+        f"{hashlib.sha256(p.read_bytes()).hexdigest()}.csv" for p in (first, second))
+    assert table.rows[0]["lab"] == "kal" and table.rows[0]["version"] == 2
+
+
+def test_identical_form_again_changes_nothing(planned, runner, tmp_path):
+    path = write(tmp_path, "kal.csv", filled(planned, "kal"))
+    assert receive(runner, planned, path).exit_code == 0
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0
+    assert "identical to version 1 already recorded; nothing changed" in result.stdout
+    with Ledger.open(planned) as ledger:
+        assert len(ledger.submissions(ROUND)) == 1
+
+
+def test_late_test_date_is_accepted_and_flagged(planned, runner, tmp_path):
+    lines = filled(planned, "kal")
+    set_cell(lines, 20, "date", "2027-01-29", "kal")   # the window ends 2027-01-28
+    path = write(tmp_path, "kal.csv", lines)
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0, result.stderr
+    code = get_cell(lines, 20, "code", "kal")
+    assert f"late: tested after the test window: {code}" in result.stdout
+    with Ledger.open(planned) as ledger:
+        (sub,) = ledger.submissions(ROUND)
+        flags = {r.code: r.flags for r in ledger.result_rows(sub.row)}
+    assert sub.late and flags[codes.compact(code)] == ("late-date",)
+    assert sum(1 for f in flags.values() if f) == 1
+
+
+def test_form_received_after_the_due_date_is_flagged_late(planned, runner, tmp_path, clock):
+    clock["now"] = "2027-02-10T08:00:00+00:00"   # results were due 2027-02-04
+    path = write(tmp_path, "kal.csv", filled(planned, "kal"))
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0
+    assert "late: received after the results were due" in result.stdout
+    with Ledger.open(planned) as ledger:
+        assert ledger.submissions(ROUND)[0].late
+
+
+def test_empty_value_with_a_remark_and_a_missing_row(planned, runner, tmp_path):
+    lines = filled(planned, "kal")
+    set_cell(lines, 16, "value", "", "kal")
+    set_cell(lines, 16, "remarks", '"die blocked; no result"', "kal")   # quoted: ';' separates
+    dropped = lines.pop(FIRST_ROW + 16)                 # the last data row
+    path = write(tmp_path, "kal.csv", lines)
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0, result.stderr
+    assert "17 values" not in result.stdout and "16 values, 1 without value" in result.stdout
+    missing = dropped.split(";")[2]
+    assert f"missing: 1 codes have no row: {missing}" in result.stdout
+    with Ledger.open(planned) as ledger:
+        rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
+    blank = rows[codes.compact(get_cell(lines, 16, "code", "kal"))]
+    assert blank.value is None and blank.flags == ("no-value",)
+    assert blank.remarks == "die blocked; no result"
+
+
+# --- XLSX forms ----------------------------------------------------------------------
+
+def _xlsx_form(study_dir, tmp_path, lab, *, value_for=None):
+    """Render the XLSX twin of the blank CSV form and fill it as a spreadsheet user would."""
+    from openpyxl import load_workbook
+
+    from planner.render import result_form
+
+    csv_path = plan.round_dir(study_dir, ROUND) / "labs" / lab / "result-form.csv"
+    path = result_form.render(tmp_path / f"{lab}.xlsx", csv_path.read_text(encoding="utf-8"))
+    book = load_workbook(path)
+    sheet = book[result_form.SHEET]
+    header = next(r for r in range(1, sheet.max_row + 1)
+                  if [c.value for c in sheet[r]][:4] == ["trial", "position", "code", "value"])
+    for n, r in enumerate(range(header + 1, sheet.max_row + 1), start=1):
+        sheet.cell(r, 4).value = value_for(n) if value_for else _value_of(n)
+        sheet.cell(r, 6).value = date(2027, 1, 21)
+        sheet.cell(r, 7).value = "B. Analyst"
+    book.save(path)
+    return path, header
+
+
+def test_xlsx_form_round_trip(planned, runner, tmp_path):
+    path, _ = _xlsx_form(planned, tmp_path, "kal")
+    result = receive(runner, planned, path)
+    assert result.exit_code == 0, result.stderr
+    sha = hashlib.sha256(path.read_bytes()).hexdigest()
+    assert (plan.round_dir(planned, ROUND) / "results" / f"{sha}.xlsx").is_file()
+    runs = _manifest(planned)["labs"]["kal"]["trials"]
+    in_order = [c for run in runs for c in run]
+    with Ledger.open(planned) as ledger:
+        rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
+    assert [rows[c].value for c in in_order] == [_value_of(n) for n in range(1, 19)]
+    assert {r.date for r in rows.values()} == {"2027-01-21"}
+
+
+def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
+    path, header = _xlsx_form(planned, tmp_path, "kal",
+                              value_for=lambda n: "n/a" if n == 3 else _value_of(n))
+    result = receive(runner, planned, path)
+    assert result.exit_code == 2
+    assert result.stderr.strip().splitlines() == [
+        (f"error: {path}: row {header + 3}: value 'n/a' is not a number; write it like "
+         "'12,5', or leave it empty and say why in remarks")]
+    assert nothing_recorded(planned)
+
+
+# --- after the key was opened ------------------------------------------------------------
+
+LABS = ("kal", "tor", "hel", "lin", "crx")
+
+
+def test_unseal_opens_without_force_once_every_lab_is_in(planned, runner, tmp_path, passphrase):
+    for lab in LABS[:-1]:
+        assert receive(runner, planned, write(tmp_path, f"{lab}.csv",
+                                              filled(planned, lab))).exit_code == 0
+    early = run_cli(runner, "unseal", planned, "--round", ROUND)
+    assert early.exit_code == 2 and "results are still missing from crx" in early.stderr
+    status = run_cli(runner, "status", planned, "--round", ROUND)
+    assert "the key stays sealed: waiting for crx" in status.stdout
+    assert receive(runner, planned, write(tmp_path, "crx.csv",
+                                          filled(planned, "crx"))).exit_code == 0
+    status = run_cli(runner, "status", planned, "--round", ROUND)
+    assert "the key may be opened" in status.stdout
+    opened = run_cli(runner, "unseal", planned, "--round", ROUND)
+    assert opened.exit_code == 0, opened.stderr
+    key = plan.round_dir(planned, ROUND) / seal.KEY_NAME
+    assert seal.fingerprint(key.read_bytes()) == _manifest(planned)["fingerprint"]
+
+
+def test_results_after_unseal_need_the_flag_and_a_reason(planned, runner, tmp_path, passphrase):
+    for lab in LABS:
+        receive(runner, planned, write(tmp_path, f"{lab}.csv", filled(planned, lab)))
+    assert run_cli(runner, "unseal", planned, "--round", ROUND).exit_code == 0
+    lines = filled(planned, "tor")
+    set_cell(lines, 11, "value", "11,11", "tor")
+    late = write(tmp_path, "tor-2.csv", lines)
+    refused = receive(runner, planned, late)
+    assert refused.exit_code == 2 and len(refused.stderr.strip().splitlines()) == 1
+    assert "has been opened; results that arrive after unsealing are refused" in refused.stderr
+    no_reason = receive(runner, planned, late, extra=("--after-unseal",))
+    assert no_reason.exit_code == 2 and "needs --reason TEXT" in no_reason.stderr
+    with Ledger.open(planned) as ledger:
+        assert len(ledger.submissions(ROUND, "tor")) == 1
+    taken = receive(runner, planned, late,
+                    extra=("--after-unseal", "--reason", "transcription error found by tor"))
+    assert taken.exit_code == 0, taken.stderr
+    assert "AFTER UNSEAL" in taken.stdout
+    with Ledger.open(planned) as ledger:
+        last = ledger.submissions(ROUND, "tor")[-1]
+        flags = {r.flags for r in ledger.result_rows(last.row)}
+    assert (last.version, last.after_unseal, last.reason) == (
+        2, True, "transcription error found by tor")
+    assert flags == {("after-unseal",)}
+    status = run_cli(runner, "status", planned, "--round", ROUND)
+    tor_line = next(ln for ln in status.stdout.splitlines() if " tor " in ln)
+    assert "AFTER-UNSEAL" in tor_line
+    assert "the key has been opened" in status.stdout
+
+
+def test_after_unseal_flag_is_refused_while_sealed(planned, runner, tmp_path):
+    path = write(tmp_path, "kal.csv", filled(planned, "kal"))
+    result = receive(runner, planned, path, extra=("--after-unseal", "--reason", "x"))
+    assert result.exit_code == 2 and "is still sealed" in result.stderr
+    assert nothing_recorded(planned)
+
+
+# --- status ------------------------------------------------------------------------
+
+def test_status_rows_and_days_left(planned, runner, tmp_path):
+    lines = filled(planned, "crx")
+    lines.pop()                                       # one code left out
+    receive(runner, planned, write(tmp_path, "crx.csv", lines))
+    study = spec.load(planned)
+    with Ledger.open(planned) as ledger:
+        before = intake.round_status_table(study, planned, ROUND, ledger, today=date(2027, 1, 30))
+        after = intake.round_status_table(study, planned, ROUND, ledger, today=date(2027, 2, 6))
+    rows = {r["lab"]: r for r in before.rows}
+    assert [r["lab"] for r in before.rows] == list(LABS)
+    assert before.results_due == date(2027, 2, 4) and not before.may_open
+    assert before.waiting_for == LABS[:-1]
+    # 2027-01-30 to 2027-02-04 is 5 calendar days; 2027-02-06 is 2 days past it
+    assert rows["kal"] | {"missing_codes": None} == {
+        "lab": "kal", "received": False, "version": None, "received_at": None, "values": 0,
+        "failed": 0, "expected": 18, "missing": 18, "missing_codes": None, "late": False,
+        "after_unseal": False, "spares_issued": 0, "days_left": 5}
+    assert (rows["crx"]["received"], rows["crx"]["version"], rows["crx"]["values"],
+            rows["crx"]["missing"], rows["crx"]["days_left"]) == (True, 1, 17, 1, None)
+    assert rows["crx"]["missing_codes"] == [lines_last_code(planned)]
+    late = {r["lab"]: (r["late"], r["days_left"]) for r in after.rows}
+    assert late["kal"] == (True, -2) and late["crx"] == (False, None)
+
+
+def lines_last_code(study_dir):
+    return codes.format(_manifest(study_dir)["labs"]["crx"]["trials"][-1][-1])
+
+
+def test_status_cli_json(planned, runner):
+    result = run_cli(runner, "status", planned, "--round", ROUND, "--json")
+    assert result.exit_code == 0
+    import json
+
+    info = json.loads(result.stdout)
+    assert info["may_open"] is False and len(info["rows"]) == 5
+
+
+def test_status_of_an_unplanned_round(example_dir, runner):
+    result = run_cli(runner, "status", example_dir, "--round", "2030-1")
+    assert result.exit_code == 2
+    assert "round '2030-1' has not been planned" in result.stderr
+
+
+# --- spares -------------------------------------------------------------------------
+
+def _key(study_dir):
+    return seal.open_key(plan.round_dir(study_dir, ROUND), PASSPHRASE)
+
+
+def test_spare_replaces_a_damaged_unit_without_naming_the_material(planned, runner, tmp_path,
+                                                                 passphrase):
+    manifest = _manifest(planned)
+    damaged = manifest["labs"]["crx"]["trials"][0][0]
+    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                     "--damaged", codes.format(damaged).lower())
+    assert result.exit_code == 0, result.stderr
+    units = {u["code"]: u for u in _key(planned)["units"]}
+    spare = codes.compact(result.stdout.split("use spare ")[1].split()[0])
+    # the key, decrypted independently, says the spare is crx's and of the damaged unit's material
+    assert units[spare]["kind"] == "spare" and units[spare]["lab"] == "crx"
+    assert units[spare]["material"] == units[damaged]["material"]
+    study = spec.load(planned)
+    for m in study.materials:
+        assert m.id not in result.stdout and m.description not in result.stdout
+    assert "(trial 1, position 1)" in result.stdout
+    with Ledger.open(planned) as ledger:
+        assert [e.detail for e in ledger.events(ROUND, "spare-swap")] == [
+            {"lab": "crx", "damaged": damaged, "spare": spare}]
+    again = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                    "--damaged", codes.format(damaged))
+    assert again.exit_code == 2 and "already replaced by spare" in again.stderr
+    # the same material in another trial: crx had one spare of it (spares_per_lab: 1)
+    twin = next(c for run in manifest["labs"]["crx"]["trials"][1:] for c in run
+                if units[c]["material"] == units[damaged]["material"])
+    none_left = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                        "--damaged", codes.format(twin))
+    assert none_left.exit_code == 2 and "no unused spare left" in none_left.stderr
+    for m in study.materials:
+        assert m.id not in none_left.stderr
+
+
+def test_intake_expects_the_spare_in_place_of_the_damaged_unit(planned, runner, tmp_path,
+                                                             passphrase):
+    lines = filled(planned, "crx")
+    damaged = get_cell(lines, 11, "code", "crx")
+    issued = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                     "--damaged", damaged)
+    spare = issued.stdout.split("use spare ")[1].split()[0]
+    old = write(tmp_path, "old.csv", lines)
+    assert f"unit {damaged} was replaced by spare {spare}" in one_error(
+        receive(runner, planned, old), old, 11)
+    set_cell(lines, 11, "code", spare, "crx")
+    new = write(tmp_path, "new.csv", lines)
+    result = receive(runner, planned, new)
+    assert result.exit_code == 0, result.stderr
+    with Ledger.open(planned) as ledger:
+        rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
+        status = intake.round_status_table(spec.load(planned), planned, ROUND, ledger,
+                                           today=date(2027, 1, 30))
+    row = rows[codes.compact(spare)]
+    assert (row.trial, row.position, row.flags) == (1, 1, ("spare",))
+    assert codes.compact(damaged) not in rows
+    crx = next(r for r in status.rows if r["lab"] == "crx")
+    assert (crx["missing"], crx["spares_issued"]) == (0, 1)
+
+
+def test_spare_refusals(planned, runner, tmp_path, passphrase):
+    manifest = _manifest(planned)
+    other = codes.format(manifest["labs"]["tor"]["trials"][0][0])
+    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                     "--damaged", other)
+    assert result.exit_code == 2 and "is not a unit that laboratory 'crx' tests" in result.stderr
+    mistyped = _mistype(codes.format(manifest["labs"]["crx"]["trials"][0][0]))
+    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                     "--damaged", mistyped)
+    assert result.exit_code == 2 and "check character does not match" in result.stderr
+    wrong = tmp_path / "pass.txt"
+    wrong.write_text("not-the-passphrase\n")
+    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
+                     "--damaged", codes.format(manifest["labs"]["crx"]["trials"][0][0]),
+                     "--passphrase-file", wrong)
+    assert result.exit_code == 2 and "wrong passphrase" in result.stderr
+    with Ledger.open(planned) as ledger:
+        assert ledger.events(ROUND, "spare-swap") == []
+
+
+# --- library details -------------------------------------------------------------------
+
+@pytest.mark.parametrize("text, decimal, expected", [
+    ("12,5", "comma", 12.5), ("12.5", "point", 12.5), ("-0,25", "comma", -0.25),
+    (",5", "comma", 0.5), ("1e-3", "point", 0.001), ("7", "comma", 7.0),
+], ids=str)
+def test_numbers_in_the_laboratory_convention(text, decimal, expected):
+    assert intake._number(text, decimal, "value") == expected
+
+
+@pytest.mark.parametrize("text, decimal, fragment", [
+    ("1,234.5", "point", "thousands"), ("1.234,5", "comma", "thousands"),
+    ("1.234.567", "point", "thousands"), ("1'234", "point", "thousands"),
+    ("1,5", "point", "decimal comma"), ("1.5", "comma", "decimal point"),
+    ("nan", "point", "not a number"), ("inf", "point", "not a number"),
+    ("1_000", "point", "not a number"), ("<0.1", "point", "not a number"),
+    ("1e999", "point", "not a finite number"),
+], ids=str)
+def test_numbers_refused(text, decimal, fragment):
+    with pytest.raises(IntakeError, match=fragment):
+        intake._number(text, decimal, "value")
+
+
+def test_check_form_lists_problems_with_places(planned, tmp_path):
+    lines = filled(planned, "kal")
+    set_cell(lines, 12, "value", "abc", "kal")
+    form = intake.read_form(write(tmp_path, "f.csv", lines))
+    problems = intake.check_form(spec.load(planned), _manifest(planned), form,
+                                 today=date(2027, 1, 30))
+    assert [(p.where.line, type(p).__name__) for p in problems] == [(12, "IntakeError")]
+
+
+# --- killed in the middle of receive -----------------------------------------------------
+
+def _snapshot(study_dir):
+    """Return the ledger's full SQL dump and the results folder's names and hashes."""
+    db = sqlite3.connect(study_dir / "ledger.sqlite")
+    try:
+        dump = list(db.iterdump())      # rolls back a hot journal left by a killed writer
+    finally:
+        db.close()
+    folder = plan.round_dir(study_dir, ROUND) / "results"
+    files = (sorted((p.name, hashlib.sha256(p.read_bytes()).hexdigest())
+                    for p in folder.iterdir()) if folder.exists() else None)
+    return dump, files
+
+
+def _kill_while_paused(study_dir, form, stage):
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "planner", "receive", str(study_dir), "--round", ROUND, str(form)],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        line = proc.stderr.readline()
+        assert line.strip() == f"paused {stage}", line + proc.stderr.read()
+    finally:
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+        proc.stdout.close()
+        proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL
+
+
+def _undated(study_dir, lab):
+    # The subprocess uses the real clock, so leave the test dates empty.
+    return filled(study_dir, lab, day="")
+
+
+def test_kill_before_commit_leaves_ledger_and_results_as_before(planned, runner, tmp_path):
+    assert receive(runner, planned, write(tmp_path, "crx.csv",
+                                          _undated(planned, "crx"))).exit_code == 0
+    before = _snapshot(planned)
+    form = write(tmp_path, "kal.csv", _undated(planned, "kal"))
+    _kill_while_paused(planned, form, "before-commit")
+    assert _snapshot(planned) == before
+    # the next receive clears the stale staged copy and records the form as version 1
+    result = receive(runner, planned, form)
+    assert result.exit_code == 0, result.stderr
+    assert "kal: recorded version 1" in result.stdout
+    assert not any((plan.round_dir(planned, ROUND) / ".intake").iterdir())
+
+
+def test_kill_after_commit_is_completed_by_the_next_receive(planned, runner, tmp_path):
+    form = write(tmp_path, "kal.csv", _undated(planned, "kal"))
+    _kill_while_paused(planned, form, "after-commit")
+    name = f"{hashlib.sha256(form.read_bytes()).hexdigest()}.csv"
+    results = plan.round_dir(planned, ROUND) / "results"
+    with Ledger.open(planned) as ledger:
+        assert [s.sha256 + ".csv" for s in ledger.submissions(ROUND)] == [name]
+    assert not (results / name).exists()
+    assert receive(runner, planned, write(tmp_path, "crx.csv",
+                                          _undated(planned, "crx"))).exit_code == 0
+    assert (results / name).read_bytes() == form.read_bytes()
