@@ -302,12 +302,16 @@ def expected_codes(manifest: Mapping[str, Any], lab: str,
     out: dict[str, tuple[int, int]] = {}
     for trial, run in enumerate(manifest["labs"][lab]["trials"], start=1):
         for position, code in enumerate(run, start=1):
-            seen = {code}
-            while code in swaps and swaps[code] not in seen:
-                code = swaps[code]
-                seen.add(code)
-            out[code] = (trial, position)
+            out[_last_spare(code, swaps)] = (trial, position)
     return out
+
+
+def _last_spare(code: str, swaps: Mapping[str, str]) -> str:
+    seen = {code}
+    while code in swaps and swaps[code] not in seen:
+        code = swaps[code]
+        seen.add(code)
+    return code
 
 
 def _owners(manifest: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
@@ -360,7 +364,9 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
     decimal = study.lab(form_lab).decimal
     dates = manifest["dates"]
     start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
-    replaced = {d: s for d, s in swaps.items() if d not in expected}
+    # this laboratory's units that a spare replaced, mapped to the spare now in force
+    replaced = {d: _last_spare(d, swaps) for d in swaps
+                if owners.get(d, ("", ""))[0] == form_lab and d not in expected}
     planned = _flatten(manifest["labs"][form_lab]["trials"])
     first_seen: dict[str, int] = {}
     kept: list[ResultRow] = []
@@ -369,9 +375,12 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
         where = form.where(row.line)
         found: list[PlannerError] = []
         if form.separator is not None and row.width > form.header_width:
-            hint = (f"; a decimal comma splits a value in a file separated by ',', and this "
-                    f"laboratory writes a decimal point (e.g. {_EXAMPLE[decimal]!r})"
-                    if form.separator == "," else "; remove the extra separator")
+            hint = "; remove the extra separator"
+            if form.separator == ",":
+                hint = ("; a decimal comma splits a value in two in a file separated by ','"
+                        + (f", and this laboratory writes a decimal point (e.g. "
+                           f"{_EXAMPLE[decimal]!r})" if decimal == "point" else
+                           ": put such values in quotes, or save the file with ';'"))
             problems.append(IntakeError(f"the row has {row.width} fields but the header has "
                                         f"{form.header_width}{hint}", where))
             continue
@@ -381,7 +390,7 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
         value = _quantity(row.get("value"), decimal, "value", where, found)
         uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
         remarks = _cell_text(row.get("remarks"))
-        if value is None and not found and _cell_text(row.get("value")) == "":
+        if value is None and _cell_text(row.get("value")) == "":
             if not remarks:
                 found.append(IntakeError(
                     "value is empty; enter the result, or say in remarks why there is none",

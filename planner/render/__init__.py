@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["KINDS", "print_round", "print_calibration"]
+__all__ = ["KINDS", "print_calibration", "print_round"]
 
 KINDS = ("labels", "prep", "packing", "runsheets", "forms")
 """The kinds of document ``print_round(only=...)`` accepts."""

@@ -177,9 +177,16 @@ class _Chart(Flowable):  # type: ignore[misc]
         size = min(6.5, max(4.5, step * 0.9 / max(1, max(len(s) for s in labels)) * 1.8))
         c.setFillColor(HexColor(_layout.INK))
         c.setFont(_layout.FONT, size)
+        right = -1e9
         for i, (text, show) in enumerate(zip(labels, named)):
-            if show:
-                c.drawCentredString(x0 + (i + 0.5) * step, y0 - size - 2, text)
+            if not show:
+                continue
+            x = x0 + (i + 0.5) * step
+            half = c.stringWidth(text, _layout.FONT, size) / 2
+            if x - half < right + 2:
+                continue  # would print over the previous name; the bar's colour still shows
+            c.drawCentredString(x, y0 - size - 2, text)
+            right = x + half
 
 
 def _range(values: Sequence[float | None], extra: Sequence[float] = (),

@@ -20,10 +20,28 @@ from pathlib import Path
 from typing import Any
 
 __all__ = [
-    "ACCENT", "INK", "MUTED", "RULE", "FONT", "BOLD", "MONO", "MONO_REGULAR",
-    "page_size", "styles", "Running", "build", "write_atomic", "fit_text", "wrap_words",
-    "rounded_box", "check_box", "table_style", "grouped_fingerprint", "escape",
-    "content_width", "table",
+    "ACCENT",
+    "BOLD",
+    "FONT",
+    "INK",
+    "MONO",
+    "MONO_REGULAR",
+    "MUTED",
+    "RULE",
+    "Running",
+    "build",
+    "check_box",
+    "content_width",
+    "escape",
+    "fit_text",
+    "grouped_fingerprint",
+    "page_size",
+    "rounded_box",
+    "styles",
+    "table",
+    "table_style",
+    "wrap_words",
+    "write_atomic",
 ]
 
 ACCENT = "#1d5c63"
@@ -113,7 +131,7 @@ def _numbered_canvas(running: Running) -> type:
             super().__init__(*args, **kwargs)
             self._held: list[dict[str, Any]] = []
 
-        def showPage(self) -> None:  # noqa: N802 - reportlab's name
+        def showPage(self) -> None:
             self._held.append(dict(self.__dict__))
             self._startPage()
 

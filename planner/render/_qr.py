@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from reportlab.pdfgen.canvas import Canvas
 
-__all__ = ["QUIET", "matrix", "image_mask", "image_masks", "draw", "modules", "flowable"]
+__all__ = ["QUIET", "draw", "flowable", "image_mask", "image_masks", "matrix", "modules"]
 
 QUIET = 4
 """Width of the blank quiet zone around a symbol, in modules."""

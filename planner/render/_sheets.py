@@ -24,7 +24,7 @@ import yaml
 from planner.errors import SpecError, Where
 from planner.resources import template_path
 
-__all__ = ["Geometry", "PAGE_SIZES", "MM", "load", "names", "parse"]
+__all__ = ["MM", "PAGE_SIZES", "Geometry", "load", "names", "parse"]
 
 MM = 72.0 / 25.4
 """PDF points per millimetre."""

@@ -43,8 +43,19 @@ from planner.render._sheets import MM, Geometry
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["Label", "Separator", "host_labels", "lab_labels", "pick", "use_by", "render",
-           "render_calibration", "layout", "MIN_SIZE", "CHUNK"]
+__all__ = [
+    "CHUNK",
+    "MIN_SIZE",
+    "Label",
+    "Separator",
+    "host_labels",
+    "lab_labels",
+    "layout",
+    "pick",
+    "render",
+    "render_calibration",
+    "use_by",
+]
 
 MIN_SIZE = 5.0
 """Smallest text size on a label in points (about 1.8 mm capitals; common practice)."""
@@ -538,8 +549,8 @@ def render_calibration(path: Path, geometry: Geometry, *,
             canvas.setFont(_layout.FONT, small)
             canvas.drawString(x + pad + 0.5 * MM, y + h - pad - small, str(index + 1))
         lines = [f"alignment page · sheet {geometry.name} · {geometry.description}",
-                 f"offset x {offset_mm[0]:+.1f} mm, y {offset_mm[1]:+.1f} mm · print at 100 %, "
-                 "then measure against a label sheet"]
+                 (f"offset x {offset_mm[0]:+.1f} mm, y {offset_mm[1]:+.1f} mm · print at 100 %, "
+                 "then measure against a label sheet")]
         _draw_notes(canvas, geometry, lines)
         canvas.showPage()
         canvas.save()

@@ -127,8 +127,8 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
             f"{len(s['materials'])} materials, {s['trials']} trials each. Measurand: "
             f"{esc(s['measurand'])}, in {esc(s['unit'])}. Your laboratory is <b>{esc(to.lab)}</b>; "
             "in the charts and tables of this letter it is marked <i>you</i>. The other "
-            "participants appear only under codes drawn at random for this round (P-01, "
-            "P-02, ...), which change every round.", st["lead"]),
+            "participants appear only under codes P-nn drawn at random for this round, "
+            "which change every round.", st["lead"]),
     ]
     if in_house:
         story.append(Paragraph(

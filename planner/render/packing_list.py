@@ -19,7 +19,7 @@ from planner.render import _layout
 if TYPE_CHECKING:
     from planner.spec import Lab, Study
 
-__all__ = ["render", "SDS_NOTE"]
+__all__ = ["SDS_NOTE", "render"]
 
 SDS_NOTE = ("These notes do not replace the safety data sheet of the material or your local "
             "rules; where they differ, the safety data sheet and local rules apply.")

@@ -18,7 +18,7 @@ from planner.render import _layout
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["render", "CONFIDENTIAL", "CHECKLIST"]
+__all__ = ["CHECKLIST", "CONFIDENTIAL", "render"]
 
 CONFIDENTIAL = ("CONFIDENTIAL · host only · links codes to materials · keep with the sealed "
                 "key, never send to a participant")
@@ -27,8 +27,8 @@ CHECKLIST = (
     "Print the labels and this sheet; check that the fingerprint below matches key.fingerprint.",
     "Prepare each material as one homogeneous batch before it is split into units.",
     "Split each material into the number of units in the table, each of the amount given.",
-    "Label the units of one material at a time, following the separator labels; never have "
-    "two materials open on the bench at once.",
+    ("Label the units of one material at a time, following the separator labels; never have "
+    "two materials open on the bench at once."),
     "Set the homogeneity units aside at once and test them before the parcels leave.",
     "Keep the retained units in their storage condition until the round is evaluated.",
     "Pack each laboratory's parcel against its packing list; a second person checks it.",

@@ -21,7 +21,7 @@ from typing import Any
 
 from planner.render import _layout
 
-__all__ = ["render", "read_csv", "SHEET"]
+__all__ = ["SHEET", "read_csv", "render"]
 
 SHEET = "result form"
 """Name of the worksheet that holds the form."""

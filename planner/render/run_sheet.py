@@ -18,18 +18,18 @@ from planner.render import _layout, _qr
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["render", "INSTRUCTIONS"]
+__all__ = ["INSTRUCTIONS", "render"]
 
 INSTRUCTIONS = (
     "Test the units of each trial in the order of its table, top to bottom.",
-    "Run one trial per session (a separate day or shift); finish a trial before you start the "
-    "next, and do not look back at earlier results.",
-    "Report every result, including failed or doubtful tests: leave the value empty and say "
-    "what happened under remarks. Do not repeat a test to get a better value.",
-    "Use a spare only to replace a lost or damaged unit, and write the spare's code in the "
-    "remarks of the unit it replaces.",
-    "The decoding key stays sealed with the coordinator until every laboratory has reported; "
-    "do not try to find out which material a unit holds.",
+    ("Run one trial per session (a separate day or shift); finish a trial before you start the "
+    "next, and do not look back at earlier results."),
+    ("Report every result, including failed or doubtful tests: leave the value empty and say "
+    "what happened under remarks. Do not repeat a test to get a better value."),
+    ("Use a spare only to replace a lost or damaged unit, and write the spare's code in the "
+    "remarks of the unit it replaces."),
+    ("The decoding key stays sealed with the coordinator until every laboratory has reported; "
+    "do not try to find out which material a unit holds."),
 )
 
 _MM = 72.0 / 25.4

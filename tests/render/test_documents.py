@@ -8,8 +8,15 @@ import re
 import pytest
 
 from planner import codes
-from tests.render.conftest import (A4_PT, LETTER_PT, TENTH_MM_PT, decode_qr, pdf_text,
-                                   render_pages, secret_words)
+from tests.render.conftest import (
+    A4_PT,
+    LETTER_PT,
+    TENTH_MM_PT,
+    decode_qr,
+    pdf_text,
+    render_pages,
+    secret_words,
+)
 
 
 def _boxes(path):
@@ -99,7 +106,7 @@ def test_prep_sheet_totals_and_confidential_mark(printed):
     assert all("CONFIDENTIAL" in page for page in pages)
     # per material: 5 labs x 3 trials + 5 spares + 2 retained + 10 homogeneity = 32 units
     # (study.yaml); 32 x 30 g = 960 g, RE-MIX 32 x 40 g = 1280 g
-    assert re.search(r"HD-BM5\s.*?15 5 2 10 32 30 g 960 g", text, re.S)
+    assert re.search(r"HD-BM5\s.*?15 5 2 10 32 30 g 960 g", text, re.DOTALL)
     assert "32 40 g 1280 g" in text
     for unit in printed.key["units"]:
         assert codes.format(unit["code"]) in text

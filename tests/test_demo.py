@@ -1,0 +1,74 @@
+"""The demo: the example study end to end with simulated results."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import pytest
+
+from conftest import run_cli
+from planner import demo
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "ringplan-demo"
+    return demo.build_demo(out)
+
+
+def test_demo_runs_the_round_to_the_end(built):
+    assert built["status"] == "evaluated"
+    assert sorted(built["received"]) == ["crx", "hel", "kal", "lin", "tor"]
+    for key in ("report", "statistics", "results", "letter", "run_sheet"):
+        assert built[key].is_file(), key
+    assert len(built["letters"]) == 5
+    assert (built["study_dir"] / "returned" / "crx.xlsx").is_file()  # one spreadsheet form
+
+
+def test_the_biased_laboratory_shows_in_the_scores(built):
+    s = json.loads(built["statistics"].read_text(encoding="utf-8"))
+    biased = built["biased_lab"]
+    assert biased != built["host"]
+    bands = {lab: [s["scores"][m]["labs"][lab]["band"] for m in s["materials"]]
+             for lab in s["labs"]}
+    assert bands[biased].count("unsatisfactory") >= 4
+    assert all(b == "satisfactory" for lab, bs in bands.items() if lab != biased for b in bs)
+
+
+def test_flags_come_through_intake(built):
+    with open(built["results"], encoding="utf-8") as f:
+        table = list(csv.DictReader(f))
+    assert len(table) == 5 * 6 * 3
+    spare = [r for r in table if "spare-used" in r["flags"]]
+    assert [(r["lab"], r["code"].replace("-", "")) for r in spare] == [
+        (built["spare"]["lab"], built["spare"]["spare"])]
+    assert {r["lab"] for r in table if "in-house" in r["flags"]} == {built["host"]}
+    assert {r["lab"] for r in table if r["uncertainty"]} == {"tor", "crx"}
+
+
+def test_comma_laboratories_return_comma_forms(built):
+    text = (built["study_dir"] / "returned" / "kal.csv").read_text(encoding="utf-8")
+    row = [ln for ln in text.splitlines() if not ln.startswith("#")][1]
+    assert row.count(";") == 7 and "," in row.split(";")[3]
+
+
+def test_demo_is_the_same_for_the_same_seed(built, tmp_path):
+    again = demo.build_demo(tmp_path / "again")
+    assert again["fingerprint"] == built["fingerprint"]
+    assert again["results"].read_bytes() == built["results"].read_bytes()
+
+
+def test_cli_demo_refuses_a_folder_with_files(tmp_path, runner):
+    (tmp_path / "x.txt").write_text("keep me", encoding="utf-8")
+    res = run_cli(runner, "demo", tmp_path)
+    assert res.exit_code == 2
+    assert res.stderr.strip() == (f"error: {tmp_path}: the folder exists and is not empty; "
+                                  "give a new folder for the demo")
+
+
+def test_cli_demo_says_what_to_open_first(tmp_path, runner):
+    res = run_cli(runner, "demo", tmp_path / "d")
+    assert res.exit_code == 0, res.stderr
+    assert "for this demo only" in res.stdout
+    assert "report.pdf" in res.stdout and "letter-" in res.stdout and "run-sheet.pdf" in res.stdout
