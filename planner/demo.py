@@ -55,18 +55,14 @@ _DAMAGED_LAB = "hel"  # reports a damaged unit and tests a spare in its place
 
 def example_spec() -> Path:
     """Return the bundled example study.yaml (installed package or source checkout)."""
-    from planner.resources import template_path
+    from planner.resources import example_path
 
-    candidates = []
     try:
-        candidates.append(template_path("examples", "norrvik-mfr", "study.yaml"))
+        path = example_path("norrvik-mfr", "study.yaml")
     except FileNotFoundError:
-        pass
-    candidates.append(Path(__file__).resolve().parent.parent / "examples" / "norrvik-mfr"
-                      / "study.yaml")
-    for path in candidates:
-        if path.is_file():
-            return path
+        path = None
+    if path is not None and path.is_file():
+        return path
     raise PlannerError("the example study is missing from this installation; reinstall "
                        "ringplan")
 

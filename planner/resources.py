@@ -1,14 +1,15 @@
 """Where the bundled files are: the study template, label-sheet geometries, document texts.
 
-In an installed package they sit in ``planner/templates``; in a source checkout
-in the top-level ``templates/`` folder.
+In an installed package they sit in ``planner/templates`` and
+``planner/examples``; in a source checkout in the top-level ``templates/`` and
+``examples/`` folders.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-__all__ = ["template_path"]
+__all__ = ["template_path", "example_path"]
 
 _HERE = Path(__file__).resolve().parent
 
@@ -19,3 +20,11 @@ def template_path(*parts: str) -> Path:
         if base.is_dir():
             return base.joinpath(*parts)
     raise FileNotFoundError("ringplan's templates folder is missing from this installation")
+
+
+def example_path(*parts: str) -> Path:
+    """Return the path of a bundled example study (``example_path("norrvik-mfr")``)."""
+    for base in (_HERE / "examples", _HERE.parent / "examples"):
+        if base.is_dir():
+            return base.joinpath(*parts)
+    raise FileNotFoundError("ringplan's examples folder is missing from this installation")

@@ -564,8 +564,12 @@ def _draw_notes(canvas: Any, g: Geometry, lines: Sequence[str]) -> None:
 
     width = g.page_width * MM
     size = max(MIN_SIZE, min(8.0, g.page_height * MM / 12))
-    canvas.setFillColor(HexColor(_layout.ACCENT))
     y = g.page_height * MM / 2 + size
+    # A white panel behind the notes keeps them readable over the outlines.
+    block = (len(lines) + 2.2) * size * 1.4
+    canvas.setFillColor(HexColor("#ffffff"))
+    canvas.rect(2 * MM, y - block + size * 1.2, width - 4 * MM, block, stroke=0, fill=1)
+    canvas.setFillColor(HexColor(_layout.ACCENT))
     for line in lines:
         text = _layout.fit_text(line, _layout.FONT, size, width - 4 * MM)
         canvas.setFont(_layout.FONT, size)
