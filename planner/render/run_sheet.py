@@ -26,8 +26,8 @@ INSTRUCTIONS = (
     "next, and do not look back at earlier results."),
     ("Report every result, including failed or doubtful tests: leave the value empty and say "
     "what happened under remarks. Do not repeat a test to get a better value."),
-    ("Use a spare only to replace a lost or damaged unit, and write the spare's code in the "
-    "remarks of the unit it replaces."),
+    ("If a unit is lost or damaged, ask the coordinator which spare replaces it; test the spare "
+    "in the unit's place and write the spare's code in the code column of the result form."),
     ("The decoding key stays sealed with the coordinator until every laboratory has reported; "
     "do not try to find out which material a unit holds."),
 )
