@@ -222,7 +222,10 @@ def history_command(
             else:
                 cells.append(f"{entry['mean_z']:+.2f}{' *' if entry['hosted'] else ''}")
         rows.append([lab, *cells])
-    con.print(_table("Mean z per round (* hosted)", ["laboratory", *rounds], rows))
+    if rounds:
+        con.print(_table("Mean z per round (* hosted)", ["laboratory", *rounds], rows))
+    else:
+        con.print("no round of this study has been evaluated yet ('ringplan evaluate' makes one)")
     effect = record["host_effect"]
     for lab, item in effect["labs"].items():
         con.print(item["statement"])
