@@ -1,6 +1,7 @@
 """Opening and auditing the key: the unsealing gate, and rebuilding a round from its secret.
 
-``unseal_round`` writes key.json only when every laboratory's results are in
+``unseal_round`` writes key.json only when every laboratory's results (for a
+circulating set: every stop's, the host's later stops as ``host@visit``) are in
 the ledger (or when forced with a recorded reason) and checks that its SHA-256
 equals the fingerprint published before shipping. ``verify_round`` rebuilds
 the round from the spec and the key's secret and names every unit that differs,
@@ -10,35 +11,85 @@ so anyone can check that the key was not edited after the results came in.
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
-from planner import plan, seal
+from planner import circulate, plan, seal
 from planner.errors import LedgerError, SealError, Where
 
 if TYPE_CHECKING:
     from planner.ledger import Ledger
     from planner.spec import Study
 
-__all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict"]
+__all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict",
+           "report_slots", "round_slots", "slot_runs", "slot_of", "split_slot"]
 
 
-def missing_labs(study: Study, ledger: Ledger, round_id: str) -> list[str]:
-    """Return the laboratories of a round whose results have not been received, in spec order."""
+def slot_of(lab: str, visit: str | None) -> str:
+    """Return the submission slot of a laboratory's stop: its id, or ``host@visit`` for the
+    host's later stops of a circulating set (its first stop is the host's own id)."""
+    return lab if visit in (None, "start") else circulate.station_key(lab, visit)
+
+
+def split_slot(slot: str) -> tuple[str, str | None]:
+    """Return (laboratory, visit or None) of a submission slot."""
+    lab, at, visit = slot.partition("@")
+    return (lab, visit) if at else (lab, None)
+
+
+def report_slots(manifest: Mapping[str, Any]) -> list[str]:
+    """Return every slot a result form is due for: the laboratories (manifest order), or for a
+    circulating set its stops in route order, the host's later stops as ``host@visit``."""
+    if manifest.get("mode") == "circulate" and manifest.get("route"):
+        return [slot_of(str(s["lab"]), s.get("visit")) for s in manifest["route"]]
+    return list(manifest["labs"])
+
+
+def slot_runs(manifest: Mapping[str, Any], slot: str) -> list[list[str]]:
+    """Return the codes in run order per trial of a slot (KeyError for an unknown slot)."""
+    lab, visit = split_slot(slot)
+    if visit is not None:
+        return list(manifest["host_visits"][visit])
+    return list(manifest["labs"][lab]["trials"])
+
+
+def missing_labs(study: Study, ledger: Ledger, round_id: str, *,
+                 manifest: Mapping[str, Any] | None = None) -> list[str]:
+    """Return the slots of a round whose results have not been received.
+
+    Split mode: the laboratories in spec order. A circulating set: every stop of
+    the route in order (``host@middle``, ``host@end`` for the host's later
+    stops), from ``manifest`` when given, else rebuilt from the spec and the
+    ledger's host.
+    """
     received = {e.detail.get("lab") for e in ledger.events(round_id, "received")}
-    return [lab.id for lab in study.laboratories if lab.id not in received]
+    return [s for s in round_slots(study, ledger, round_id, manifest=manifest)
+            if s not in received]
+
+
+def round_slots(study: Study, ledger: Ledger, round_id: str, *,
+                manifest: Mapping[str, Any] | None = None) -> list[str]:
+    """Return the slots of a round as ``missing_labs`` orders them (see there)."""
+    if manifest is not None and manifest.get("mode") == "circulate":
+        return report_slots(manifest)
+    current = ledger.current_round(round_id)
+    if study.design.mode == "circulate" and current is not None:
+        return [slot_of(lab, visit) for lab, visit in circulate.stops(study, current.host)]
+    return [lab.id for lab in study.laboratories]
 
 
 def check_gate(study: Study, ledger: Ledger, round_id: str, *, force: bool = False,
-               reason: str | None = None) -> list[str]:
-    """Return the laboratories still missing; raise LedgerError if the key may not open yet."""
+               reason: str | None = None,
+               manifest: Mapping[str, Any] | None = None) -> list[str]:
+    """Return the slots still missing; raise LedgerError if the key may not open yet."""
     if ledger.current_round(round_id) is None:
         raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
                           "this study folder")
     if ledger.round_status(round_id) in ("unsealed", "evaluated"):
         raise LedgerError(f"round {round_id!r} is already unsealed; key.json is in its folder")
-    missing = missing_labs(study, ledger, round_id)
+    missing = missing_labs(study, ledger, round_id, manifest=manifest)
     if missing and not force:
         raise LedgerError(f"results are still missing from {', '.join(missing)}; the key opens "
                           "when every laboratory has reported (or use --force --reason TEXT)")
@@ -58,7 +109,8 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
     """
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
-    missing = check_gate(study, ledger, round_id, force=force, reason=reason)
+    missing = check_gate(study, ledger, round_id, force=force, reason=reason,
+                         manifest=manifest)
     key = seal.open_key(folder, passphrase)
     if key.get("round") != round_id or key.get("study") != study.id:
         raise SealError(f"the sealed key belongs to study {key.get('study')!r} round "

@@ -16,6 +16,11 @@ it), and writes into ``rounds/<round>/report/``:
 - ``letter-<lab>.pdf`` one per laboratory: its own results and scores, the
                        others only under participant codes drawn anew each round
 
+A circulating set (``design.mode: circulate``) is evaluated from each
+laboratory's own stop, the host's first; the host's later stops (middle, end)
+feed ``drift_check``, the stability check of the artefacts, which goes into
+statistics.json as ``drift`` and into the report as its own section.
+
 Flags on a result: ``late`` (received after the results were due),
 ``after-unseal`` (received after the key was opened), ``in-house`` (the host's
 own result: it prepared the material) and ``spare-used`` (a spare unit replaced
@@ -43,7 +48,7 @@ if TYPE_CHECKING:
 __all__ = [
     "Unblinded", "unblind", "participant_codes", "results_csv", "round_statistics",
     "evaluate_round", "REPORT_DIR", "RESULTS_NAME", "STATISTICS_NAME", "REPORT_NAME",
-    "FLAGS", "letter_name",
+    "FLAGS", "letter_name", "drift_check", "DRIFT_FACTOR", "DRIFT_SOURCE", "accepted_results",
 ]
 
 REPORT_DIR = "report"
@@ -53,6 +58,15 @@ REPORT_NAME = "report.pdf"
 FLAGS = ("late", "after-unseal", "in-house", "spare-used")
 _STATS_FORMAT = "ringplan-statistics/1"
 _PARALLEL_FROM = 24  # letters; below this a process pool costs more than it saves
+
+DRIFT_FACTOR = 0.3
+"""Share of sigma_pt a host re-measurement may differ from its first (ISO 13528 Annex B)."""
+DRIFT_SOURCE = (
+    "Drift of the circulating artefacts: the stability check of ISO 13528:2015 Annex B, "
+    "quoted from memory, not checked against the text. The host's mean of an artefact at a "
+    "later stop may differ from its mean at the start by at most 0.3 sigma_pt; where it does "
+    "not, the widened limit 0.3 sigma_pt + 2 sqrt(u1^2 + u2^2) allows for the uncertainty of "
+    "the two means, u = s / sqrt(n) of each stop's results.")
 
 
 @dataclass(frozen=True, slots=True)
@@ -231,12 +245,14 @@ def _without_host(full: Mapping[str, Any], alt: Mapping[str, Any], host: str,
 
 
 def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
-                     missing: Sequence[Mapping[str, Any]] = ()) -> dict[str, Any]:
+                     missing: Sequence[Mapping[str, Any]] = (),
+                     visits: Mapping[str, Sequence[Unblinded]] | None = None) -> dict[str, Any]:
     """Return the statistics.json content of a round: the stats of every method and the identity.
 
     The host is left out of a second consensus; ``scores.<material>.without_host`` holds
-    that consensus and its difference from the full one. Raises DataError when no result
-    has a value.
+    that consensus and its difference from the full one. ``visits`` (a circulating set)
+    are the host's results of its later stops by visit; with them ``drift`` holds the
+    drift check of ``drift_check``. Raises DataError when no result has a value.
     """
     from planner import stats
 
@@ -285,7 +301,82 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
                     "flags": flags},
         "participants": participant_codes(secret, [lab.id for lab in study.laboratories]),
     }
-    return {**head, **full}
+    out = {**head, **full}
+    if visits is not None:
+        start = [r for r in rows if r.lab == host]
+        sigma = {m: full["scores"].get(m, {}).get("sigma_pt") for m in full["materials"]}
+        artefacts = {u.material: codes.format(u.code) for u in plan.units_from_key(dict(key))
+                     if u.kind == "artefact"}
+        materials = [m.id for m in study.materials if m.id in artefacts]
+        out["drift"] = drift_check({"start": start, **visits}, sigma, materials=materials,
+                                   codes_of=artefacts, host=host)
+    return out
+
+
+def _visit_summary(values: Sequence[float]) -> dict[str, Any]:
+    n = len(values)
+    mean = math.fsum(values) / n
+    sd = (math.sqrt(math.fsum((v - mean) ** 2 for v in values) / (n - 1)) if n >= 2 else None)
+    return {"n": n, "mean": mean, "sd": sd, "u": sd / math.sqrt(n) if sd is not None else None}
+
+
+def drift_check(by_visit: Mapping[str, Sequence[Unblinded]],
+                sigma_pt: Mapping[str, float | None], *, materials: Sequence[str],
+                codes_of: Mapping[str, str], host: str) -> dict[str, Any]:
+    """Return the drift check of a circulating set from the host's results by visit.
+
+    ``by_visit`` holds the host's results of each stop ("start", then "middle",
+    "end"); per material come the mean, SD, n and u = s/sqrt(n) of each stop, and for
+    each later stop the difference to the start, the limit 0.3 sigma_pt, the widened
+    limit 0.3 sigma_pt + 2 sqrt(u_start^2 + u_stop^2) and whether the difference is
+    within each. The verdict: "pass" (every difference within 0.3 sigma_pt), "pass
+    (widened limit)" (within the widened limit only), "fail", or "not checked" with the
+    reason.
+    """
+    order = {v: i for i, v in enumerate(("start", "middle", "end"))}
+    visits = sorted(by_visit, key=lambda v: (order.get(v, len(order)), v))
+    out: dict[str, Any] = {}
+    for m in materials:
+        values = {v: [r.value for r in by_visit[v] if r.material == m and r.value is not None]
+                  for v in visits}
+        summary = {v: _visit_summary(vals) for v, vals in values.items() if vals}
+        sig = sigma_pt.get(m)
+        entry: dict[str, Any] = {"code": codes_of.get(m), "sigma_pt": sig,
+                                 "limit": DRIFT_FACTOR * sig if sig else None,
+                                 "visits": summary, "checks": {}}
+        first = summary.get("start")
+        later = [v for v in visits if v != "start" and v in summary]
+        if not sig:
+            entry.update(verdict="not checked", why="no sigma_pt for this material")
+        elif first is None:
+            entry.update(verdict="not checked", why=f"the host {host!r} has no result of its "
+                                                    "first stop")
+        elif not later:
+            entry.update(verdict="not checked", why=f"the host {host!r} has no result of a "
+                                                    "later stop")
+        else:
+            limit = DRIFT_FACTOR * sig
+            for v in later:
+                now = summary[v]
+                diff = now["mean"] - first["mean"]
+                widened = (limit + 2 * math.sqrt(first["u"] ** 2 + now["u"] ** 2)
+                           if first["u"] is not None and now["u"] is not None else None)
+                entry["checks"][v] = {
+                    "difference": diff, "difference_in_sigma_pt": diff / sig,
+                    "limit": limit, "widened_limit": widened,
+                    "within_limit": abs(diff) <= limit,
+                    "within_widened_limit": abs(diff) <= widened if widened is not None
+                    else None}
+            checks = entry["checks"].values()
+            if all(c["within_limit"] for c in checks):
+                entry["verdict"] = "pass"
+            elif all(c["within_limit"] or c["within_widened_limit"] for c in checks):
+                entry["verdict"] = "pass (widened limit)"
+            else:
+                entry["verdict"] = "fail"
+        out[m] = entry
+    return {"host": host, "visits": visits, "factor": DRIFT_FACTOR, "method": DRIFT_SOURCE,
+            "materials": out}
 
 
 def _missing(key: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[dict[str, Any]]:
@@ -303,6 +394,34 @@ def _missing(key: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[dict[str
     return out
 
 
+def _missing_circulating(manifest: Mapping[str, Any], key: Mapping[str, Any],
+                         accepted: Sequence[Any]) -> list[dict[str, Any]]:
+    """Return every (stop, trial, artefact) of a circulating set with no value, and why."""
+    from planner import audit
+
+    material = {u.code: u.material for u in plan.units_from_key(dict(key))}
+    have: set[tuple[str, str, int]] = set()
+    failed: set[tuple[str, str, int]] = set()
+    for r in accepted:
+        slot = audit.slot_of(str(_field(r, "lab")), _field(r, "visit"))
+        trial = _field(r, "trial")
+        if trial in (None, ""):
+            continue
+        item = (slot, codes.compact(str(_field(r, "code", ""))), int(trial))
+        (have if _number(_field(r, "value")) is not None else failed).add(item)
+    out = []
+    for slot in audit.report_slots(manifest):
+        for trial, run in enumerate(audit.slot_runs(manifest, slot), start=1):
+            for position, code in enumerate(run, start=1):
+                if (slot, code, trial) not in have:
+                    out.append({"material": material.get(code, ""), "lab": slot,
+                                "trial": trial, "position": position,
+                                "code": codes.format(code),
+                                "why": "reported without a value"
+                                if (slot, code, trial) in failed else "not reported"})
+    return out
+
+
 def _write_text(path: Path, text: str) -> None:
     from planner.render import _layout
 
@@ -317,16 +436,25 @@ _INTAKE_FLAGS = {"late-date": "late", "after-unseal": "after-unseal", "no-value"
                  "spare": ""}
 
 
-def accepted_results(study: Study, ledger: Ledger, round_id: str) -> list[dict[str, Any]]:
+def accepted_results(study: Study, ledger: Ledger, round_id: str, *,
+                     manifest: Mapping[str, Any] | None = None) -> list[dict[str, Any]]:
     """Return the results in force of a round: each laboratory's newest accepted form.
 
     Each is a dict (lab, code, trial, value, uncertainty, remarks, flags) as ``unblind``
     takes it; "late" when the form came after the results were due or a test date
     lies after the test window, "after-unseal" when it came after the key was opened.
+    A circulating set's results also say the ``visit`` of the host's later stops
+    ("middle", "end"; None for a laboratory's own stop and the host's first).
     """
+    from planner import audit
+
     out: list[dict[str, Any]] = []
-    for lab in study.laboratories:
-        history = ledger.submissions(round_id, lab.id)
+    circulating = study.design.mode == "circulate"
+    slots = (audit.round_slots(study, ledger, round_id, manifest=manifest) if circulating
+             else [lab.id for lab in study.laboratories])
+    for slot in slots:
+        lab_id, visit = audit.split_slot(slot)
+        history = ledger.submissions(round_id, slot)
         if not history:
             continue
         last = history[-1]
@@ -336,9 +464,12 @@ def accepted_results(study: Study, ledger: Ledger, round_id: str) -> list[dict[s
                 flags.add("late")
             if last.after_unseal:
                 flags.add("after-unseal")
-            out.append({"lab": lab.id, "code": r.code, "trial": r.trial, "value": r.value,
-                        "uncertainty": r.uncertainty, "remarks": r.remarks,
-                        "flags": tuple(sorted(flags))})
+            record = {"lab": lab_id, "code": r.code, "trial": r.trial, "value": r.value,
+                      "uncertainty": r.uncertainty, "remarks": r.remarks,
+                      "flags": tuple(sorted(flags))}
+            if circulating:
+                record["visit"] = visit
+            out.append(record)
     return out
 
 
@@ -365,10 +496,24 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     if key.get("round") != round_id or key.get("study") != study.id:
         raise LedgerError(f"key.json belongs to study {key.get('study')!r} round "
                           f"{key.get('round')!r}, not to this round", Where(str(folder)))
-    accepted = list(results) if results is not None else accepted_results(study, ledger,
-                                                                          round_id)
-    rows = _ordered(unblind(key, accepted), study)
-    statistics = round_statistics(study, key, rows, missing=_missing(key, rows))
+    manifest = plan.read_manifest(folder)
+    accepted = (list(results) if results is not None else
+                accepted_results(study, ledger, round_id, manifest=manifest))
+    if manifest.get("mode") == "circulate":
+        # Each laboratory's own stop (the host's first) makes the statistics; the host's
+        # later stops only say whether the artefacts drifted.
+        later: dict[str, list[Any]] = {}
+        for r in accepted:
+            if _field(r, "visit") not in (None, "", "start"):
+                later.setdefault(str(_field(r, "visit")), []).append(r)
+        own = [r for r in accepted if _field(r, "visit") in (None, "", "start")]
+        rows = _ordered(unblind(key, own), study)
+        visits = {v: _ordered(unblind(key, rs), study) for v, rs in later.items()}
+        statistics = round_statistics(study, key, rows, visits=visits,
+                                      missing=_missing_circulating(manifest, key, accepted))
+    else:
+        rows = _ordered(unblind(key, accepted), study)
+        statistics = round_statistics(study, key, rows, missing=_missing(key, rows))
     out = folder / REPORT_DIR
     out.mkdir(parents=True, exist_ok=True)
     _write_text(out / RESULTS_NAME, results_csv(rows))

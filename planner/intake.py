@@ -15,6 +15,14 @@ removed by the next ``receive``); one killed after the commit but before the
 rename is completed by the next ``receive``, which moves every staged file the
 ledger knows into ``results/``.
 
+A circulating set (manifest ``mode: circulate``) is one set of artefacts that
+every laboratory measures: each artefact code appears once in every trial (the
+trial column says which measurement a row is), and each stop of the route is
+its own submission slot. A laboratory's slot is its id; the host's first stop
+is the host's id and its later stops ``host@middle`` and ``host@end``, whose
+forms carry the identity line ``# visit: middle`` or ``# visit: end``. Such a
+set has no spares.
+
 Numbers follow the laboratory's ``decimal`` setting in the study (point or
 comma). A number with both marks, with a mark twice, or with spaces or
 apostrophes between digits is refused: thousands separators read differently
@@ -66,6 +74,7 @@ __all__ = [
 
 IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
 """Identity lines a returned form must carry."""
+_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit")
 
 RESULTS_DIR = "results"
 STAGING_DIR = ".intake"
@@ -166,7 +175,7 @@ def _identity_line(text: str) -> tuple[str, str] | None:
     body = text.strip().lstrip("#").strip()
     key, colon, value = body.partition(":")
     key = key.strip().lower()
-    if not colon or key not in IDENTITY_KEYS + ("decimal", "measurand", "results due"):
+    if not colon or key not in IDENTITY_KEYS + _MORE_IDENTITY:
         return None
     return key, value.strip()
 
@@ -258,7 +267,7 @@ def _read_xlsx(name: str, data: bytes) -> Form:
             found = _identity_line(str(filled[0]))
             if found is None and len(filled) >= 2:
                 key = str(filled[0]).strip().rstrip(":").strip().lower()
-                if key in IDENTITY_KEYS:
+                if key in IDENTITY_KEYS or key == "visit":
                     found = (key, str(filled[1]).strip())
             if found:
                 identity.append((*found, number))
@@ -347,6 +356,9 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
     if problems:
         return _Checked(tuple(problems), None, (), (), ())
     form_lab = form.ident("laboratory")[0]  # type: ignore[index]
+    if manifest.get("mode") == "circulate":
+        return _inspect_circulating(study, manifest, form, unsealed=unsealed, today=today,
+                                    elsewhere=elsewhere)
     expected = expected_codes(manifest, form_lab, swaps)
     owners = _owners(manifest)
     rows = form.rows
@@ -458,6 +470,8 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: Form, *,
     elif lab is not None and lab_id != lab:
         out.append(IntakeError(f"the form is from laboratory {lab_id!r}, not {lab!r} as --lab "
                                "says; check who sent it", form.where(lab_at)))
+    if not out:
+        out += _check_visit(manifest, form, lab_id)
     if print_.strip().lower() != manifest["fingerprint"]:
         out.append(IntakeError(f"fingerprint {print_[:16]!r}... is not this round's "
                                f"({manifest['fingerprint'][:16]}...); the form belongs to an "
@@ -468,6 +482,166 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: Form, *,
                                f"{study.study.unit!r}; report the results in "
                                f"{study.study.unit!r}", form.where(unit_at)))
     return out
+
+
+def _check_visit(manifest: Mapping[str, Any], form: Form, lab_id: str) -> list[PlannerError]:
+    """Return the problem of a form's visit line: only a circulating set's host has later stops."""
+    found = form.ident("visit")
+    if found is None:
+        return []
+    visit, line = found[0].strip().lower(), found[1]
+    round_id, host = manifest["round"], manifest["host"]
+    if manifest.get("mode") != "circulate":
+        return [IntakeError(f"the form says visit {visit!r}, but round {round_id!r} sends each "
+                            "laboratory its own units, so there are no visits; remove the "
+                            "'# visit' line", form.where(line))]
+    if lab_id != host:
+        return [IntakeError(f"the form says visit {visit!r}, but laboratory {lab_id!r} has one "
+                            "stop on the route and its form has no visit line; remove the "
+                            "'# visit' line", form.where(line))]
+    visits = list(manifest.get("host_visits", {}))
+    if visit not in ("start", *visits):
+        stops = ", ".join(["start (the form without a visit line)", *visits])
+        return [IntakeError(f"visit {visit!r} is not a stop of the host in round {round_id!r}; "
+                            f"its stops are {stops}", form.where(line))]
+    return []
+
+
+def _form_slot(form: Form, lab_id: str) -> str:
+    """Return the submission slot of a checked form: its laboratory or ``host@visit``."""
+    from planner import audit
+
+    found = form.ident("visit")
+    return audit.slot_of(lab_id, found[0].strip().lower() if found else None)
+
+
+def _slot_text(slot: str) -> str:
+    """Return a slot as a message names it: "laboratory 'x'", or the host's stop."""
+    lab, _, visit = slot.partition("@")
+    return f"laboratory {lab!r}" + (f" ({visit} stop)" if visit else "")
+
+
+def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: Form, *,
+                         unsealed: bool, today: date | None,
+                         elsewhere: Mapping[str, str]) -> _Checked:
+    """Check the rows of a circulating set's form: every artefact once in every trial."""
+    from planner import audit
+
+    form_lab = form.ident("laboratory")[0]  # type: ignore[index]
+    slot = _form_slot(form, form_lab)
+    runs = audit.slot_runs(manifest, slot)
+    expected = {(code, trial): position for trial, run in enumerate(runs, start=1)
+                for position, code in enumerate(run, start=1)}
+    artefacts = frozenset(code for code, _ in expected)
+    problems: list[PlannerError] = list(_check_columns(form))
+    decimal = study.lab(form_lab).decimal
+    dates = manifest["dates"]
+    start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
+    first_seen: dict[tuple[str, int], int] = {}
+    kept: list[ResultRow] = []
+    late_rows: list[str] = []
+    for row in form.rows:
+        where = form.where(row.line)
+        found: list[PlannerError] = []
+        if form.separator is not None and row.width > form.header_width:
+            problems.append(IntakeError(f"the row has {row.width} fields but the header has "
+                                        f"{form.header_width}; remove the extra separator"
+                                        + ("; with ',' as separator put values with a decimal "
+                                           "comma in quotes" if form.separator == "," else ""),
+                                        where))
+            continue
+        hit = _check_artefact(row, where, found, artefacts=artefacts, trials=len(runs),
+                              round_id=str(manifest["round"]), elsewhere=elsewhere,
+                              first_seen=first_seen, form=form)
+        value = _quantity(row.get("value"), decimal, "value", where, found)
+        uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
+        remarks = _cell_text(row.get("remarks"))
+        if value is None and _cell_text(row.get("value")) == "":
+            if not remarks:
+                found.append(IntakeError(
+                    "value is empty; enter the result, or say in remarks why there is none",
+                    where))
+            if uncertainty is not None:
+                found.append(IntakeError("an uncertainty is given without a value; give the "
+                                         "value too, or leave both empty", where))
+        if uncertainty is not None and uncertainty <= 0:
+            found.append(IntakeError(f"uncertainty {row.get('uncertainty')!r} is not above 0; "
+                                     "give the expanded uncertainty (k = 2), or leave it empty",
+                                     where))
+        tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
+        if hit is not None:
+            _check_slot(row, where, found, code=hit[0], slot=(hit[1], expected[hit]))
+        problems += found
+        if found or hit is None:
+            continue
+        code, trial = hit
+        flags = []
+        if value is None:
+            flags.append("no-value")
+        if tested is not None and tested > end:
+            flags.append("late-date")
+            late_rows.append(code)
+        if unsealed:
+            flags.append("after-unseal")
+        kept.append(ResultRow(code, trial, expected[hit], value, uncertainty,
+                              tested.isoformat() if tested else None,
+                              _cell_text(row.get("analyst")), remarks, tuple(flags)))
+    if not form.rows:
+        problems.append(IntakeError("the form has no result rows below the header; fill in "
+                                    "the rows of the blank form", form.where(form.header_line)))
+    missing = tuple(code for code, trial in expected if (code, trial) not in first_seen)
+    return _Checked(tuple(problems), slot, tuple(kept), missing, tuple(late_rows))
+
+
+def _check_artefact(row: FormRow, where: Where, found: list[PlannerError], *,
+                    artefacts: frozenset[str], trials: int, round_id: str,
+                    elsewhere: Mapping[str, str], first_seen: dict[tuple[str, int], int],
+                    form: Form) -> tuple[str, int] | None:
+    """Return (code, trial) of a circulating set's row; else note why not and return None.
+
+    Each artefact is measured once in every trial, so the trial column says
+    which measurement a row is and must be given.
+    """
+    text = _cell_text(row.get("code"))
+    if not text:
+        found.append(IntakeError("the row has no code; every result needs the code from the "
+                                 "artefact's label", where))
+        return None
+    try:
+        code = codes.validate(text, where=where)
+    except CodeError as exc:
+        found.append(exc)
+        return None
+    shown = codes.format(code)
+    if code not in artefacts:
+        if code in elsewhere:
+            msg = f"code {shown} belongs to round {elsewhere[code]!r}, not to {round_id!r}"
+        else:
+            msg = (f"code {shown} is not an artefact of round {round_id!r}; check it against "
+                   "the artefact's label")
+        found.append(IntakeError(msg, where))
+        return None
+    raw = row.get("trial")
+    trial: int | None
+    if isinstance(raw, bool):
+        trial = None
+    elif isinstance(raw, (int, float)):
+        trial = int(raw) if float(raw).is_integer() else None
+    else:
+        trial = int(str(raw).strip()) if str(raw).strip().isdigit() else None
+    if trial is None or not 1 <= trial <= trials:
+        found.append(IntakeError(f"trial {_cell_text(raw)!r} of artefact {shown} is not a trial "
+                                 f"of the round; every artefact is measured once in each trial, "
+                                 f"so give the trial (1 to {trials}) as on the run sheet", where))
+        return None
+    if (code, trial) in first_seen:
+        place = first_seen[(code, trial)]
+        place_text = f"line {place}" if form.kind == "csv" else f"row {place}"
+        found.append(IntakeError(f"artefact {shown} appears twice in trial {trial} (first on "
+                                 f"{place_text}); report each artefact once per trial", where))
+        return None
+    first_seen[(code, trial)] = row.line
+    return code, trial
 
 
 def _check_columns(form: Form) -> list[PlannerError]:
@@ -754,7 +928,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     for form, checked in accepted:
         assert checked.lab is not None
         if checked.lab in by_lab:
-            problems.append(IntakeError(f"a second form of laboratory {checked.lab!r} (the "
+            problems.append(IntakeError(f"a second form of {_slot_text(checked.lab)} (the "
                                         f"first is {by_lab[checked.lab]}); send one form per "
                                         "laboratory at a time", Where(form.path)))
         by_lab[checked.lab] = form.path
@@ -847,6 +1021,10 @@ def issue_spare(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
     """
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
+    if manifest.get("mode") == "circulate":
+        raise IntakeError(f"round {round_id!r} circulates one set of artefacts, which has no "
+                          "spares; report the damage in the remarks of the form and tell the "
+                          "host, who decides whether the artefact stays in the round")
     if key.get("round") != round_id or key.get("study") != study.id:
         raise IntakeError(f"the key belongs to study {key.get('study')!r} round "
                           f"{key.get('round')!r}, not to this round", Where(str(folder)))
@@ -906,6 +1084,11 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
     due = date.fromisoformat(manifest["dates"]["results_due"])
     swaps = spare_swaps(ledger, round_id)
     unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
+    if manifest.get("mode") == "circulate":
+        rows = _circulating_rows(manifest, ledger, round_id, today=today, due=due)
+        waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
+        return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
+                           tuple(rows))
     rows = []
     for lab in study.laboratories:
         if lab.id not in manifest["labs"]:
@@ -935,6 +1118,43 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
     waiting = tuple(audit.missing_labs(study, ledger, round_id))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
                        tuple(rows))
+
+
+def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, *,
+                      today: date, due: date) -> list[dict[str, Any]]:
+    """Return one status row per stop of a circulating set, in route order."""
+    from planner import audit
+
+    stations = {audit.slot_of(str(s["lab"]), s.get("visit")): s for s in manifest["route"]}
+    rows = []
+    for slot in audit.report_slots(manifest):
+        runs = audit.slot_runs(manifest, slot)
+        expected = [(code, trial) for trial, run in enumerate(runs, start=1) for code in run]
+        history = ledger.submissions(round_id, slot)
+        last = history[-1] if history else None
+        got = ledger.result_rows(last.row) if last else []
+        reported = {(r.code, r.trial) for r in got}
+        missing = [f"{codes.format(c)} (trial {t})" for c, t in expected if (c, t) not in reported]
+        station = stations.get(slot, {})
+        rows.append({
+            "lab": slot,
+            "laboratory": station.get("lab", slot),
+            "visit": station.get("visit"),
+            "test_end": station.get("test_end"),
+            "received": last is not None,
+            "version": last.version if last else None,
+            "received_at": last.received_at if last else None,
+            "values": sum(1 for r in got if r.value is not None),
+            "failed": sum(1 for r in got if r.value is None),
+            "expected": len(expected),
+            "missing": len(missing),
+            "missing_codes": missing,
+            "late": last.late if last else today > due,
+            "after_unseal": any(s.after_unseal for s in history),
+            "spares_issued": 0,
+            "days_left": None if last else (due - today).days,
+        })
+    return rows
 
 
 def _flatten(items: Iterable[Iterable[str]]) -> set[str]:

@@ -105,6 +105,34 @@ _MIGRATIONS: tuple[str, ...] = (
     CREATE TRIGGER result_rows_no_delete BEFORE DELETE ON result_rows
         BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
     """,
+    # 3: a circulating set reports each artefact once in every trial, so a result row is
+    # (code, trial) within its submission. SQLite cannot change a primary key in place:
+    # the rows move to a new table (dropping a table fires no trigger).
+    """
+    CREATE TABLE result_rows_v3 (
+        submission INTEGER NOT NULL REFERENCES submissions(id),
+        code TEXT NOT NULL,
+        trial INTEGER,
+        position INTEGER,
+        value REAL,
+        uncertainty REAL,
+        date TEXT,
+        analyst TEXT NOT NULL,
+        remarks TEXT NOT NULL,
+        flags TEXT NOT NULL,
+        PRIMARY KEY (submission, code, trial)
+    );
+    INSERT INTO result_rows_v3 (submission, code, trial, position, value, uncertainty, date,
+                                analyst, remarks, flags)
+        SELECT submission, code, trial, position, value, uncertainty, date, analyst, remarks,
+               flags FROM result_rows;
+    DROP TABLE result_rows;
+    ALTER TABLE result_rows_v3 RENAME TO result_rows;
+    CREATE TRIGGER result_rows_append_only BEFORE UPDATE ON result_rows
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
+    CREATE TRIGGER result_rows_no_delete BEFORE DELETE ON result_rows
+        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
+    """,
 )
 SCHEMA_VERSION = len(_MIGRATIONS)
 

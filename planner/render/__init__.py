@@ -8,6 +8,13 @@
     labs/<lab>/run-sheet.pdf
     labs/<lab>/result-form.xlsx beside the planner's result-form.csv
 
+A circulating set (``design.mode: circulate``) has no parcels: the host prints
+one label per artefact, and each stop of the route gets a hand-over sheet in
+place of the packing list (``labs/<lab>/handover.pdf``; the host one per stop,
+``handover-start.pdf``, ``handover-middle.pdf``, ``handover-end.pdf``), its
+run sheet and its result form (the host's later stops ``run-sheet-<visit>.pdf``
+and ``result-form-<visit>.xlsx``).
+
 Only the host documents need the materials; they come from the decoded key,
 which the caller decrypts in memory. Nothing a laboratory receives names a
 material.
@@ -73,6 +80,12 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
         raise PlannerError("--codes reprints labels; leave out --only or use --only labels",
                            Where(field="--codes"))
     wanted = {"labels"} if codes else ({only} if only else set(KINDS))
+    circulating = manifest.get("mode") == "circulate"
+    if circulating and lab and "labels" in wanted:
+        if only == "labels" or codes:
+            raise PlannerError("a circulating set's labels are printed once, by the host, one "
+                               "per artefact; leave out --lab", Where(field="--lab"))
+        wanted.discard("labels")
     paper = study.study.paper
     lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
     title = f"{study.id} round {round_id}"
@@ -97,6 +110,9 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
                                      paper=paper))
     for lab_id in lab_ids:
         lab_dir = folder / "labs" / lab_id
+        if circulating:
+            out += _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper)
+            continue
         if "packing" in wanted:
             out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest, key,
                                            lab_id, paper=paper))
@@ -110,6 +126,35 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
             else:
                 text = plan.result_form_csv(study, manifest, lab_id)
             out.append(result_form.render(lab_dir / "result-form.xlsx", text))
+    return out
+
+
+def _print_stops(study: Study, manifest: dict[str, Any], lab_dir: Path, lab_id: str,
+                 wanted: set[str], *, paper: str) -> list[Path]:
+    """Write a circulating set's documents of every stop of one laboratory; return their paths."""
+    from planner import plan
+    from planner.render import handover, result_form, run_sheet
+
+    out: list[Path] = []
+    for station in manifest["route"]:
+        if station["lab"] != lab_id:
+            continue
+        visit = station.get("visit")
+        later = visit if visit not in (None, "start") else None
+        if "packing" in wanted:
+            out.append(handover.render(lab_dir / handover.file_name(station), study, manifest,
+                                       station, paper=paper))
+        if "runsheets" in wanted:
+            out.append(run_sheet.render(lab_dir / run_sheet.file_name(later), study, manifest,
+                                        lab_id, paper=paper, visit=later))
+        if "forms" in wanted:
+            stem = f"result-form-{later}" if later else "result-form"
+            csv_path = lab_dir / f"{stem}.csv"
+            if csv_path.is_file():
+                text = csv_path.read_text(encoding="utf-8")
+            else:
+                text = plan.result_form_csv(study, manifest, lab_id, later)
+            out.append(result_form.render(lab_dir / f"{stem}.xlsx", text))
     return out
 
 

@@ -25,6 +25,12 @@ hazard word stay per material: they decide how the unit is handled safely.
 Host labels are sorted material by material, each material led by a
 separator label (no QR) that names the material and how many labels follow;
 within a material by destination laboratory (in study order) and trial.
+
+A circulating set has one label per artefact, printed by the host: the code,
+"circulating artefact", the study and round and the storage condition (and
+the hazard word), but no destination and no use-by date, because the same
+piece goes to every laboratory. Its separator still tells the host which
+artefact the label that follows belongs on.
 """
 
 from __future__ import annotations
@@ -106,7 +112,8 @@ def _kind_text(unit: dict[str, Any], host: str) -> str:
     if kind == "test":
         return f"trial {unit['trial']} · run {unit['position']}"
     return {"spare": "spare", "retained": "retained by host",
-            "homogeneity": "homogeneity check"}.get(kind, str(kind))
+            "homogeneity": "homogeneity check",
+            "artefact": "circulating artefact"}.get(kind, str(kind))
 
 
 def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
@@ -115,6 +122,11 @@ def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
     lab = study.lab(unit["lab"])
     host = manifest["host"]
     suffix = " (host)" if lab.id == host and unit["kind"] in ("retained", "homogeneity") else ""
+    if unit["kind"] == "artefact":
+        # The same piece visits every laboratory: no destination, no use-by date.
+        return Label(code=unit["code"], hazard=material.hazard.word if material.hazard else "",
+                     trial=_kind_text(unit, host), study=f"{study.id} · round {manifest['round']}",
+                     storage=material.storage)
     return Label(
         code=unit["code"],
         hazard=material.hazard.word if material.hazard else "",
@@ -415,7 +427,8 @@ def _draw_separator(canvas: Any, sep: Separator, cell: tuple[float, float, float
     width = w - (inner_x - x) - pad
     _, body = _sizes(_frame(g))
     head = _fit(f"next: {sep.material}", _layout.BOLD, body * 1.4, width) or []
-    lines = head + (_fit(f"{sep.count} labels follow", _layout.BOLD, body, width) or [])
+    lines = head + (_fit(f"{sep.count} label{'s' if sep.count != 1 else ''} follow"
+                                 f"{'s' if sep.count == 1 else ''}", _layout.BOLD, body, width) or [])
     for extra in (sep.description, sep.study):
         more = _fit(extra, _layout.FONT, body, width)
         if more and _height(lines + more) <= h - 2 * pad:

@@ -6,6 +6,8 @@ unblinded results; it computes nothing itself, it only arranges. Sections:
 1. summary: who took part, what stands out (scores outside the satisfactory
    band, stragglers and outliers, the size of the measurement variation), a
    table per material, and the consensus without the host
+   (a circulating set: the drift check of the artefacts from the host's
+   re-measurements, a table and a chart of the host's means by stop)
 2. scores: a laboratory x material matrix of z (or z') scores in their bands
 3. per material: laboratory means with the spread of their results and the
    assigned value, z-score bars with the bands, and (for rounds of up to
@@ -135,11 +137,35 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
     if worst is not None:
         out.append(f"leaving the host {host} out of the consensus moves the assigned value by at "
                    f"most {fmt(abs(worst[1]), 2)} sigma_pt ({worst[0]})")
+    drift = (statistics.get("drift") or {}).get("materials", {})
+    if drift:
+        verdicts = {m: e.get("verdict") for m, e in drift.items()}
+        failed = [m for m, v in verdicts.items() if v == "fail"]
+        widened = [m for m, v in verdicts.items() if v == "pass (widened limit)"]
+        text = (f"drift check of the circulating artefacts (host {host}): "
+                f"{sum(1 for v in verdicts.values() if v == 'pass')} of {len(verdicts)} within "
+                "0.3 sigma_pt")
+        if widened:
+            text += f"; within the widened limit only: {', '.join(widened)}"
+        if failed:
+            text += "; DRIFT beyond the widened limit: " + ", ".join(
+                f"{m} ({_worst_drift(drift[m])})" for m in failed)
+        out.append(text)
     missing = statistics["results"]["missing"]
     if missing:
         labs = sorted({d["lab"] for d in missing})
         out.append(f"{len(missing)} test result(s) missing, from {', '.join(labs)}")
     return out
+
+
+def _worst_drift(entry: Mapping[str, Any]) -> str:
+    """Return the largest difference of an artefact's later stops as text."""
+    checks = entry.get("checks", {})
+    if not checks:
+        return "-"
+    visit, c = max(checks.items(), key=lambda kv: abs(kv[1]["difference"]))
+    return (f"{visit} - start = {fmt(c['difference'], 3)}, "
+            f"{fmt(c['difference_in_sigma_pt'], 2)} sigma_pt")
 
 
 class _Doc:
@@ -271,6 +297,90 @@ def _without_host_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     if notes:
         out += [d.p(_layout.escape(n), "small") for n in sorted(set(notes))[:5]]
     return out if len(out) > 1 else []
+
+
+def _drift(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    """The drift check of a circulating set: the host's means by stop, table and chart."""
+    from reportlab.platypus import CondPageBreak, KeepTogether, Table
+
+    from planner.render import _charts
+
+    drift = s.get("drift")
+    if not drift:
+        return []
+    esc = _layout.escape
+    head = ["material", "artefact", "stop", "n", "mean", "s", "diff.", "limit", "widened",
+            "check", "verdict"]
+    rows: list[list[Any]] = [head]
+    shade: list[tuple[Any, ...]] = []
+    charts: list[Any] = []
+    half = (d.width - 6) / 2
+    for m, e in drift["materials"].items():
+        first = True
+        for visit in drift["visits"]:
+            v = e["visits"].get(visit)
+            if v is None:
+                continue
+            c = e["checks"].get(visit)
+            if c is None:
+                check = ""
+            elif c["within_limit"]:
+                check = "within"
+            elif c["within_widened_limit"]:
+                check = "within widened"
+            else:
+                check = "beyond"
+            # A difference below the rounding of the means is shown as 0, not as 1e-14.
+            diff = c["difference"] if c else None
+            if diff is not None and abs(diff) < 1e-9 * max(1.0, abs(v["mean"])):
+                diff = 0
+            rows.append([m if first else "", (e.get("code") or "") if first else "", visit,
+                         v["n"], fmt(v["mean"]), fmt(v["sd"], 3),
+                         fmt(diff, 3) if c else "", fmt(c["limit"], 3) if c else "",
+                         fmt(c["widened_limit"], 3) if c else "", check,
+                         e["verdict"] if first else ""])
+            if check == "beyond":
+                shade.append(("BACKGROUND", (9, len(rows) - 1), (9, len(rows) - 1),
+                              d.hex(_charts.band_colour("unsatisfactory") or "#ffffff")))
+            if first and e["verdict"] == "fail":
+                shade.append(("FONT", (10, len(rows) - 1), (10, len(rows) - 1), _layout.BOLD, 8))
+            first = False
+        if not e["visits"]:
+            rows.append([m, e.get("code") or "", "-", "", "", "", "", "", "", "",
+                         e["verdict"]])
+        if e.get("why"):
+            rows[-1][9] = e["why"]
+        shown = [visit for visit in drift["visits"] if visit in e["visits"]]
+        if len(shown) >= 2 and e.get("limit"):
+            means = [e["visits"][v]["mean"] for v in shown]
+            us = [e["visits"][v]["u"] for v in shown]
+            start = e["visits"]["start"]["mean"] if "start" in e["visits"] else None
+            charts.append(_charts.MeansChart(
+                shown, means, [mu - 2 * u if u is not None else None for mu, u in zip(means, us)],
+                [mu + 2 * u if u is not None else None for mu, u in zip(means, us)],
+                centre=start, band=(start - e["limit"], start + e["limit"])
+                if start is not None else None,
+                highlight=[e["checks"].get(v, {}).get("within_limit") is False for v in shown],
+                width=half, height=92, centre_label="start", band_label="0.3 sigma_pt",
+                title=f"{m} ({e.get('code') or ''}): host means ± 2u [{s['unit']}]"))
+    out: list[Any] = [
+        CondPageBreak((len(rows) * 5.2 + 30) * _MM), d.p("Drift of the circulating artefacts", "h2"),
+        d.p(esc(f"The host {drift['host']} measured the set at its stops "
+                f"{', '.join(drift['visits'])}; each later mean is compared with the first. "
+                "diff.: the stop's mean minus the start mean; limit: 0.3 sigma_pt; widened: "
+                "0.3 sigma_pt + 2 sqrt(u1^2 + u2^2), u = s/sqrt(n) of each mean."), "small"),
+        d.table(rows, [50, 60, 38, 18, 42, 38, 42, 40, 44, 56, 54], size=7.2, right_from=3,
+                extra=[("ALIGN", (9, 0), (10, -1), "LEFT"), *shade])]
+    out.append(d.p(esc(drift.get("method", "")), "small"))
+    if charts:
+        grid = [charts[i:i + 2] + [""] * (2 - len(charts[i:i + 2]))
+                for i in range(0, len(charts), 2)]
+        t = Table(grid, colWidths=[half + 3, half + 3], hAlign="LEFT")
+        t.setStyle([("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
+                    ("TOPPADDING", (0, 0), (-1, -1), 2), ("BOTTOMPADDING", (0, 0), (-1, -1), 4),
+                    ("VALIGN", (0, 0), (-1, -1), "TOP")])
+        out.append(KeepTogether([t]))
+    return out
 
 
 def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
@@ -566,6 +676,7 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
     s = statistics
     spreads = spread(rows)
     story = _summary(d, s)
+    story += _drift(d, s)
     story += _matrix(d, s)
     for m in s["materials"]:
         story += _material_section(d, s, m, spreads)
