@@ -18,7 +18,7 @@ from planner.render import _layout
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["CHECKLIST", "CONFIDENTIAL", "render"]
+__all__ = ["CHECKLIST", "CIRCULATE_CHECKLIST", "CONFIDENTIAL", "render"]
 
 CONFIDENTIAL = ("CONFIDENTIAL · host only · links codes to materials · keep with the sealed "
                 "key, never send to a participant")
@@ -33,6 +33,17 @@ CHECKLIST = (
     "Keep the retained units in their storage condition until the round is evaluated.",
     "Pack each laboratory's parcel against its packing list; a second person checks it.",
     "Store this sheet with the sealed key, away from the units and the parcels.",
+)
+
+# For a circulating set: one artefact per material that travels the whole route.
+CIRCULATE_CHECKLIST = (
+    "Print the labels and this sheet; check that the fingerprint below matches key.fingerprint.",
+    "Check every artefact for damage and clean it as the method prescribes.",
+    ("Label the artefacts one at a time, following the separator labels; the label goes where "
+    "it does not touch a measuring surface."),
+    "Measure the set at the start stop as its run sheet says, before it leaves.",
+    "Pack the set with the next laboratory's hand-over sheet; a second person checks it.",
+    "Store this sheet with the sealed key; the set comes back for the host's later stops.",
 )
 
 _MM = 72.0 / 25.4
@@ -64,6 +75,9 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
                   f"{esc(manifest['dates'].get('prepare_on', ''))}. "
                   f"{len(key['units'])} units of {len(by_material)} materials.", st["lead"]),
     ]
+    if manifest.get("mode") == "circulate":
+        return _render_circulating(path, study, manifest, by_material, paper=paper,
+                                   story=story[:1])
     rows: list[list[Any]] = [["material", "test", "spare", "retained", "homog.", "units",
                               "per unit", "to prepare"]]
     for material in study.materials:
@@ -81,22 +95,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
     story.append(Paragraph("The amount to prepare includes spares, retained and homogeneity "
                            "units; add what your splitting method loses.", st["small"]))
 
-    story.append(Paragraph("Storage and hazards", st["h2"]))
-    for material in study.materials:
-        hazard = (f" <b>{esc(material.hazard.word)}</b>: {esc(material.hazard.note)}"
-                  if material.hazard else "")
-        story.append(Paragraph(f"<b>{esc(material.id)}</b>: {esc(material.storage)}; stable "
-                               f"{material.stability_days} days.{hazard}", st["bullet"],
-                               bulletText="•"))
-
-    story.append(Paragraph("Checklist", st["h2"]))
-    box = 3.6 * _MM
-    checks = [[_layout.check_box(box), Paragraph(esc(text), st["body"])] for text in CHECKLIST]
-    story.append(_layout.table(checks, [8 * _MM, width - 8 * _MM], _layout.table_style(
-        header=False, extra=[("VALIGN", (0, 0), (-1, -1), "TOP"),
-                             ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff")])))
-    story += [Paragraph("Round fingerprint", st["h2"]),
-              Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"])]
+    _storage_and_checklist(story, study, manifest, CHECKLIST, width)
 
     for material in study.materials:
         units = sorted(by_material.get(material.id, []), key=lambda u: (
@@ -117,6 +116,69 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
             Paragraph(f"{esc(material.id)} · {len(units)} units", st["h2"]),
             Paragraph(esc(material.description), st["small"]), Spacer(1, 2 * _MM),
             table]))
+    return _build(path, study, manifest, story, paper)
+
+
+def _render_circulating(path: Path, study: Study, manifest: dict[str, Any],
+                        by_material: dict[str, list[dict[str, Any]]], *, paper: str,
+                        story: list[Any]) -> Path:
+    """The sheet of a circulating set: each material's artefact code, then the route."""
+    from reportlab.platypus import Paragraph
+
+    st = _layout.styles()
+    esc = _layout.escape
+    width = _layout.content_width(paper)
+    route = manifest.get("route", [])
+    story.append(Paragraph(
+        f"For the host, <b>{esc(study.lab(manifest['host']).name)}</b>: one circulating set of "
+        f"{len(study.materials)} artefacts; it leaves on {esc(route[0]['pass_on'] or '')} and "
+        f"comes back for {sum(1 for s in route if s['visit'] not in (None, 'start'))} more "
+        "stops of the host.", st["lead"]))
+    rows: list[list[Any]] = [["material", "artefact code"]]
+    for material in study.materials:
+        units = by_material.get(material.id, [])
+        rows.append([Paragraph(f"<b>{esc(material.id)}</b><br/>{esc(material.description)}",
+                               st["cell"]),
+                     ", ".join(codes.format(u["code"]) for u in units)])
+    story.append(_layout.table(rows, [w * width for w in (0.6, 0.4)],
+                               _layout.table_style(extra=[
+                                   ("FONT", (1, 1), (1, -1), _layout.MONO, 10)]), repeatRows=1))
+    _storage_and_checklist(story, study, manifest, CIRCULATE_CHECKLIST, width)
+    story.append(Paragraph("Route", st["h2"]))
+    stops = [["stop", "laboratory", "arrives", "tests", "passes on"]]
+    stops += [[s["index"], s["lab"] + (f" ({s['visit']})" if s["visit"] else ""), s["arrive"],
+               f"{s['test_start']} to {s['test_end']}", s["pass_on"] or ""] for s in route]
+    story.append(_layout.table(stops, [w * width for w in (0.08, 0.27, 0.17, 0.3, 0.18)],
+                               _layout.table_style(), repeatRows=1))
+    return _build(path, study, manifest, story, paper)
+
+
+def _storage_and_checklist(story: list[Any], study: Study, manifest: dict[str, Any],
+                           checklist: tuple[str, ...], width: float) -> None:
+    from reportlab.platypus import Paragraph
+
+    st = _layout.styles()
+    esc = _layout.escape
+    story.append(Paragraph("Storage and hazards", st["h2"]))
+    for material in study.materials:
+        hazard = (f" <b>{esc(material.hazard.word)}</b>: {esc(material.hazard.note)}"
+                  if material.hazard else "")
+        story.append(Paragraph(f"<b>{esc(material.id)}</b>: {esc(material.storage)}; stable "
+                               f"{material.stability_days} days.{hazard}", st["bullet"],
+                               bulletText="•"))
+
+    story.append(Paragraph("Checklist", st["h2"]))
+    box = 3.6 * _MM
+    checks = [[_layout.check_box(box), Paragraph(esc(text), st["body"])] for text in checklist]
+    story.append(_layout.table(checks, [8 * _MM, width - 8 * _MM], _layout.table_style(
+        header=False, extra=[("VALIGN", (0, 0), (-1, -1), "TOP"),
+                             ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff")])))
+    story += [Paragraph("Round fingerprint", st["h2"]),
+              Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"])]
+
+
+def _build(path: Path, study: Study, manifest: dict[str, Any], story: list[Any],
+           paper: str) -> Path:
     running = _layout.Running(study.id, study.study.title, manifest["round"],
                               "preparation sheet · host", confidential=CONFIDENTIAL)
     return _layout.build(path, story, paper=paper, running=running,

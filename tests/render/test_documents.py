@@ -4,6 +4,7 @@ on anything a laboratory receives. External readers: pdfplumber, pypdfium2, zxin
 from __future__ import annotations
 
 import re
+from pathlib import Path
 
 import pytest
 
@@ -110,3 +111,27 @@ def test_prep_sheet_totals_and_confidential_mark(printed):
     assert "32 40 g 1280 g" in text
     for unit in printed.key["units"]:
         assert codes.format(unit["code"]) in text
+
+
+def test_prep_sheet_of_a_circulating_set_lists_each_artefact_once(tmp_path):
+    """The host's sheet of a circulating set names one code per material and the route."""
+    import pdfplumber
+
+    from planner import codes as code_mod
+    from planner import plan as planning
+    from planner import spec as spec_mod
+    from planner.render import prep_sheet
+
+    root = Path(__file__).resolve().parents[2]
+    study = spec_mod.load(root / "examples" / "norrvik-hardness")
+    dates, route = planning.dates_for(study, "lin")
+    result = planning.plan_round(study, round_id="C1", host="lin", dates=dates,
+                                 secret=bytes(range(32)), route=route)
+    manifest = planning.manifest_of(study, result)
+    out = prep_sheet.render(tmp_path / "prep.pdf", study, manifest, planning.key_of(result),
+                            paper="A4")
+    with pdfplumber.open(out) as pdf:
+        text = "\n".join(page.extract_text() or "" for page in pdf.pages)
+    for unit in result.units:
+        assert text.count(code_mod.format(unit.code)) == 1
+    assert "Route" in text and "lin (middle)" in text and "homogeneity" not in text
