@@ -427,12 +427,13 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
     """Show per laboratory whether results are in, and whether the key may be opened."""
     from dataclasses import asdict
 
-    from planner import intake
+    from planner import status as standing
     from planner.ledger import Ledger
 
     study = _load(study_dir)
     with Ledger.open(study_dir) as ledger:
-        info = intake.round_status_table(study, study_dir, round_id, ledger, today=date.today())
+        info = standing.round_status_table(study, study_dir, round_id, ledger,
+                                           today=date.today())
     if as_json:
         _print_json(asdict(info))
         return
@@ -465,7 +466,7 @@ def spare(
     passphrase_file: PassFile = None,
 ) -> None:
     """Tell a laboratory which of its spare codes replaces a damaged or failed unit."""
-    from planner import codes, intake, seal
+    from planner import codes, seal, spares
     from planner import plan as planning
     from planner.ledger import Ledger
 
@@ -473,7 +474,7 @@ def spare(
     passphrase = _passphrase(passphrase_file, confirm=False)
     key = seal.open_key(planning.round_dir(study_dir, round_id), passphrase)
     with Ledger.open(study_dir) as ledger:
-        swap = intake.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
+        swap = spares.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
                                   key=key)
     typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
                f"{codes.format(swap.damaged)} (trial {swap.trial}, position {swap.position}); "

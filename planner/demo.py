@@ -193,7 +193,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
     host, fingerprint, the laboratory simulated off, and the paths to open first
     (report, a letter, a run sheet). Raises PlannerError if ``out`` holds files.
     """
-    from planner import audit, evaluate, intake, overview, rotation, spec
+    from planner import audit, evaluate, intake, overview, rotation, spares, spec
     from planner import plan as planning
     from planner import render
     from planner.ledger import Ledger
@@ -232,7 +232,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
         manifest = planning.read_manifest(folder)
         clock.set(test_start)
         damaged = manifest["labs"][_DAMAGED_LAB]["trials"][0][0]
-        swap = intake.issue_spare(study, out, ROUND, ledger, lab=_DAMAGED_LAB, damaged=damaged,
+        swap = spares.issue_spare(study, out, ROUND, ledger, lab=_DAMAGED_LAB, damaged=damaged,
                                   key=key)
         returned = out / "returned"
         returned.mkdir()

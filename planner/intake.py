@@ -1,10 +1,9 @@
-"""Returned result forms: read them, check them, record them, and say where a round stands.
+"""Returned result forms: check them against their round, and record them.
 
-A result form is the CSV that ``plan`` wrote into ``labs/<lab>/result-form.csv``
-(identity lines ``# key: value``, then a header row with at least ``code`` and
-``value``), or the XLSX workbook of the same content. ``check_form`` reports
-every problem at once, each as ``file:line: what is wrong``; a form with any
-problem is not recorded.
+``check_form`` checks a form as ``planner.forms`` read it against the round's
+manifest and reports every problem at once, each as ``file:line: what is
+wrong``; a form with any problem is not recorded. Spares are issued in
+``planner.spares``, and ``planner.status`` says where a round stands.
 
 Recording is one decision, the ledger commit. The form's bytes are first
 written (temp name, fsync, rename) to the round's hidden staging folder
@@ -31,21 +30,18 @@ from one country to the next, so they are ambiguous.
 
 from __future__ import annotations
 
-import csv
 import difflib
-import hashlib
-import io
 import math
 import os
 import re
 import secrets
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import date, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, plan
+from planner import codes, forms, plan
 from planner.errors import CodeError, IntakeError, LedgerError, PlannerError, Where
 from planner.ledger import ResultRow
 
@@ -54,33 +50,19 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = [
-    "IDENTITY_KEYS",
     "RESULTS_DIR",
     "STAGING_DIR",
-    "Form",
-    "FormRow",
     "Receipt",
-    "RoundStatus",
-    "Swap",
     "check_form",
     "expected_codes",
-    "issue_spare",
-    "read_form",
     "receive",
-    "round_status_table",
     "settle_results",
     "spare_swaps",
 ]
 
-IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
-"""Identity lines a returned form must carry."""
-_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit")
-
 RESULTS_DIR = "results"
 STAGING_DIR = ".intake"
 _KNOWN_COLUMNS = frozenset(plan.FORM_COLUMNS)
-_XLSX_MAGIC = b"PK\x03\x04"
-_OLD_XLS_MAGIC = b"\xd0\xcf\x11\xe0"
 _NUMBER = {
     "point": re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"),
     "comma": re.compile(r"[+-]?(?:\d+(?:,\d*)?|,\d+)(?:[eE][+-]?\d+)?"),
@@ -91,201 +73,6 @@ _EXAMPLE = {"point": "12.5", "comma": "12,5"}
 # them: the thousands separators of several locales.
 _GROUPED = re.compile(r"\d[\s'\u2019\u00a0\u202f]+\d")
 _ISO_DATE = re.compile(r"(\d{4}-\d{2}-\d{2})(?:[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)?")
-
-
-# --- reading ---------------------------------------------------------------------
-
-@dataclass(frozen=True, slots=True)
-class FormRow:
-    """One table row of a form: its line (CSV) or row (XLSX) and its cells by column."""
-
-    line: int
-    cells: tuple[tuple[str, Any], ...]
-    width: int
-
-    def get(self, column: str) -> Any:
-        """Return the raw cell of ``column`` ('' if the form has no such column)."""
-        for name, value in self.cells:
-            if name == column:
-                return value
-        return ""
-
-
-@dataclass(frozen=True, slots=True)
-class Form:
-    """A returned result form as read, before any check against the round."""
-
-    path: str
-    kind: str                                  # "csv" | "xlsx"
-    sha256: str
-    identity: tuple[tuple[str, str, int], ...]  # (key, value, line)
-    header_line: int
-    columns: tuple[str, ...]
-    header_width: int
-    separator: str | None
-    rows: tuple[FormRow, ...]
-    data: bytes = field(repr=False)
-
-    def where(self, line: int | None) -> Where:
-        """Return the place of a line (CSV) or row (XLSX) of this form."""
-        if line is None:
-            return Where(self.path)
-        if self.kind == "xlsx":
-            return Where(self.path, None, f"row {line}")
-        return Where(self.path, line)
-
-    def ident(self, key: str) -> tuple[str, int] | None:
-        """Return (value, line) of an identity line, or None if the form lacks it."""
-        for name, value, line in self.identity:
-            if name == key:
-                return value, line
-        return None
-
-
-def read_form(path: Path) -> Form:
-    """Return the form in a CSV or XLSX file; raise IntakeError if it cannot be read as one."""
-    name = str(path)
-    try:
-        data = Path(path).read_bytes()
-    except OSError as exc:
-        raise IntakeError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
-                          Where(name)) from None
-    if not data.strip():
-        raise IntakeError("the file is empty; send the result form that 'ringplan plan' wrote "
-                          "for the laboratory, with the values filled in", Where(name, 1))
-    if data.startswith(_OLD_XLS_MAGIC):
-        raise IntakeError("this is an old-style .xls workbook; save it as .xlsx or as CSV",
-                          Where(name))
-    if data.startswith(_XLSX_MAGIC):
-        return _read_xlsx(name, data)
-    return _read_csv(name, data)
-
-
-def _decode(name: str, data: bytes) -> str:
-    try:
-        return data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        line = data[:exc.start].count(b"\n") + 1
-        raise IntakeError("the file is not UTF-8 text (nor an .xlsx workbook); save it as "
-                          "'CSV UTF-8'", Where(name, line)) from None
-
-
-def _identity_line(text: str) -> tuple[str, str] | None:
-    """Return (key, value) of '# key: value' (or 'key: value'), or None for other text."""
-    body = text.strip().lstrip("#").strip()
-    key, colon, value = body.partition(":")
-    key = key.strip().lower()
-    if not colon or key not in IDENTITY_KEYS + _MORE_IDENTITY:
-        return None
-    return key, value.strip()
-
-
-def _read_csv(name: str, data: bytes) -> Form:
-    text = _decode(name, data)
-    if "\x00" in text:
-        raise IntakeError("the file holds NUL bytes; it is not a CSV text file", Where(name))
-    lines = text.splitlines()
-    header_at = next((i for i, line in enumerate(lines)
-                      if line.strip() and not line.lstrip(' "').startswith("#")), None)
-    if header_at is None:
-        raise IntakeError("the file has no header row; the table must start with the row "
-                          "'trial, position, code, value, ...' of the blank form",
-                          Where(name, len(lines) or 1))
-    sep = _separator(lines[header_at])
-    if sep is None:
-        raise IntakeError(f"expected the header row with the columns 'code' and 'value', "
-                          f"found {lines[header_at].strip()[:60]!r}", Where(name, header_at + 1))
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
-    identity: list[tuple[str, str, int]] = []
-    rows: list[FormRow] = []
-    columns: tuple[str, ...] = ()
-    header_line = header_width = 0
-    last = 0
-    try:
-        for cells in reader:
-            start, last = last + 1, reader.line_num
-            if not any(c.strip() for c in cells):
-                continue
-            if not columns and cells[0].lstrip().startswith("#"):
-                found = _identity_line(sep.join(cells).rstrip(sep + " "))
-                if found:
-                    identity.append((*found, start))
-                continue
-            if not columns:
-                columns = tuple(c.strip().lower() for c in cells)
-                header_line, header_width = start, len(cells)
-                continue
-            if cells[0].lstrip().startswith("#"):
-                continue  # a comment below the table
-            rows.append(FormRow(start, tuple(zip(columns, (c.strip() for c in cells))),
-                                len(cells)))
-    except csv.Error as exc:
-        raise IntakeError(f"the CSV cannot be read ({exc})", Where(name, last + 1)) from None
-    return Form(name, "csv", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
-                columns, header_width, sep, tuple(rows), data)
-
-
-def _separator(header: str) -> str | None:
-    for sep in (";", ",", "\t"):
-        cells = {c.strip().strip('"').lower() for c in header.split(sep)}
-        if {"code", "value"} <= cells:
-            return sep
-    return None
-
-
-def _read_xlsx(name: str, data: bytes) -> Form:
-    from zipfile import BadZipFile
-
-    from openpyxl import load_workbook
-
-    from planner.render.result_form import SHEET
-
-    try:
-        book = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
-    except (BadZipFile, KeyError, ValueError, OSError):
-        raise IntakeError("this zip file is not an .xlsx workbook; save the form as .xlsx or "
-                          "CSV", Where(name)) from None
-    try:
-        sheet = book[SHEET] if SHEET in book.sheetnames else book.worksheets[0]
-        grid = [tuple(row) for row in sheet.iter_rows(min_row=1, values_only=True)]
-    finally:
-        book.close()
-    identity: list[tuple[str, str, int]] = []
-    rows: list[FormRow] = []
-    columns: tuple[str, ...] = ()
-    header_line = 0
-    for number, raw in enumerate(grid, start=1):
-        cells = [_cell_text(c) if not isinstance(c, (int, float, date)) else c for c in raw]
-        filled = [c for c in cells if c not in (None, "")]
-        if not filled:
-            continue
-        if not columns:
-            lowered = tuple(str(c).strip().lower() if c is not None else "" for c in cells)
-            if {"code", "value"} <= set(lowered):
-                columns, header_line = lowered, number
-                continue
-            found = _identity_line(str(filled[0]))
-            if found is None and len(filled) >= 2:
-                key = str(filled[0]).strip().rstrip(":").strip().lower()
-                if key in IDENTITY_KEYS or key == "visit":
-                    found = (key, str(filled[1]).strip())
-            if found:
-                identity.append((*found, number))
-            continue
-        if isinstance(cells[0], str) and cells[0].lstrip().startswith("#"):
-            continue
-        rows.append(FormRow(number, tuple(zip(columns, ("" if c is None else c for c in cells))),
-                            len(cells)))
-    if not columns:
-        raise IntakeError(f"the sheet {sheet.title!r} has no header row with the columns "
-                          "'code' and 'value'; send the result form as it was printed",
-                          Where(name))
-    return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
-                columns, len(columns), None, tuple(rows), data)
-
-
-def _cell_text(value: Any) -> str:
-    return "" if value is None else str(value).strip()
 
 
 # --- checking -------------------------------------------------------------------
@@ -335,7 +122,7 @@ def _owners(manifest: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
     return out
 
 
-def check_form(study: Study, manifest: Mapping[str, Any], form: Form, *,
+def check_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                swaps: Mapping[str, str] | None = None, unsealed: bool = False,
                lab: str | None = None, today: date | None = None,
                elsewhere: Mapping[str, str] | None = None) -> list[PlannerError]:
@@ -349,7 +136,7 @@ def check_form(study: Study, manifest: Mapping[str, Any], form: Form, *,
                          today=today, elsewhere=elsewhere or {}).problems)
 
 
-def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
+def _inspect(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
              swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
              elsewhere: Mapping[str, str]) -> _Checked:
     problems = _check_identity(study, manifest, form, lab=lab)
@@ -401,8 +188,8 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
                            elsewhere=elsewhere, first_seen=first_seen, form=form)
         value = _quantity(row.get("value"), decimal, "value", where, found)
         uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
-        remarks = _cell_text(row.get("remarks"))
-        if value is None and _cell_text(row.get("value")) == "":
+        remarks = forms.cell_text(row.get("remarks"))
+        if value is None and forms.cell_text(row.get("value")) == "":
             if not remarks:
                 found.append(IntakeError(
                     "value is empty; enter the result, or say in remarks why there is none",
@@ -433,7 +220,7 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
         trial, position = expected[code]
         kept.append(ResultRow(code, trial, position, value, uncertainty,
                               tested.isoformat() if tested else None,
-                              _cell_text(row.get("analyst")), remarks, tuple(flags)))
+                              forms.cell_text(row.get("analyst")), remarks, tuple(flags)))
     if not rows:
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
@@ -441,10 +228,10 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: Form, *,
     return _Checked(tuple(problems), form_lab, tuple(kept), missing, tuple(late_rows))
 
 
-def _check_identity(study: Study, manifest: Mapping[str, Any], form: Form, *,
+def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                     lab: str | None) -> list[PlannerError]:
     """Return identity problems, the most telling first; later ones would only repeat it."""
-    absent = [k for k in IDENTITY_KEYS if form.ident(k) is None]
+    absent = [k for k in forms.IDENTITY_KEYS if form.ident(k) is None]
     if absent:
         return [IntakeError(f"the form has no '# {k}: ...' line; send the result form that "
                             "'ringplan plan' wrote, with its first lines unchanged",
@@ -484,7 +271,7 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: Form, *,
     return out
 
 
-def _check_visit(manifest: Mapping[str, Any], form: Form, lab_id: str) -> list[PlannerError]:
+def _check_visit(manifest: Mapping[str, Any], form: forms.Form, lab_id: str) -> list[PlannerError]:
     """Return the problem of a form's visit line: only a circulating set's host has later stops."""
     found = form.ident("visit")
     if found is None:
@@ -507,7 +294,7 @@ def _check_visit(manifest: Mapping[str, Any], form: Form, lab_id: str) -> list[P
     return []
 
 
-def _form_slot(form: Form, lab_id: str) -> str:
+def _form_slot(form: forms.Form, lab_id: str) -> str:
     """Return the submission slot of a checked form: its laboratory or ``host@visit``."""
     from planner import audit
 
@@ -521,7 +308,7 @@ def _slot_text(slot: str) -> str:
     return f"laboratory {lab!r}" + (f" ({visit} stop)" if visit else "")
 
 
-def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: Form, *,
+def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                          unsealed: bool, today: date | None,
                          elsewhere: Mapping[str, str]) -> _Checked:
     """Check the rows of a circulating set's form: every artefact once in every trial."""
@@ -555,8 +342,8 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: Form, 
                               first_seen=first_seen, form=form)
         value = _quantity(row.get("value"), decimal, "value", where, found)
         uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
-        remarks = _cell_text(row.get("remarks"))
-        if value is None and _cell_text(row.get("value")) == "":
+        remarks = forms.cell_text(row.get("remarks"))
+        if value is None and forms.cell_text(row.get("value")) == "":
             if not remarks:
                 found.append(IntakeError(
                     "value is empty; enter the result, or say in remarks why there is none",
@@ -585,7 +372,7 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: Form, 
             flags.append("after-unseal")
         kept.append(ResultRow(code, trial, expected[hit], value, uncertainty,
                               tested.isoformat() if tested else None,
-                              _cell_text(row.get("analyst")), remarks, tuple(flags)))
+                              forms.cell_text(row.get("analyst")), remarks, tuple(flags)))
     if not form.rows:
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
@@ -593,16 +380,16 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: Form, 
     return _Checked(tuple(problems), slot, tuple(kept), missing, tuple(late_rows))
 
 
-def _check_artefact(row: FormRow, where: Where, found: list[PlannerError], *,
+def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError], *,
                     artefacts: frozenset[str], trials: int, round_id: str,
                     elsewhere: Mapping[str, str], first_seen: dict[tuple[str, int], int],
-                    form: Form) -> tuple[str, int] | None:
+                    form: forms.Form) -> tuple[str, int] | None:
     """Return (code, trial) of a circulating set's row; else note why not and return None.
 
     Each artefact is measured once in every trial, so the trial column says
     which measurement a row is and must be given.
     """
-    text = _cell_text(row.get("code"))
+    text = forms.cell_text(row.get("code"))
     if not text:
         found.append(IntakeError("the row has no code; every result needs the code from the "
                                  "artefact's label", where))
@@ -630,9 +417,10 @@ def _check_artefact(row: FormRow, where: Where, found: list[PlannerError], *,
     else:
         trial = int(str(raw).strip()) if str(raw).strip().isdigit() else None
     if trial is None or not 1 <= trial <= trials:
-        found.append(IntakeError(f"trial {_cell_text(raw)!r} of artefact {shown} is not a trial "
-                                 f"of the round; every artefact is measured once in each trial, "
-                                 f"so give the trial (1 to {trials}) as on the run sheet", where))
+        found.append(IntakeError(f"trial {forms.cell_text(raw)!r} of artefact {shown} is not a "
+                                 f"trial of the round; every artefact is measured once in each "
+                                 f"trial, so give the trial (1 to {trials}) as on the run sheet",
+                                 where))
         return None
     if (code, trial) in first_seen:
         place = first_seen[(code, trial)]
@@ -644,7 +432,7 @@ def _check_artefact(row: FormRow, where: Where, found: list[PlannerError], *,
     return code, trial
 
 
-def _check_columns(form: Form) -> list[PlannerError]:
+def _check_columns(form: forms.Form) -> list[PlannerError]:
     out: list[PlannerError] = []
     seen: set[str] = set()
     for name in form.columns:
@@ -663,13 +451,13 @@ def _check_columns(form: Form) -> list[PlannerError]:
     return out
 
 
-def _check_code(row: FormRow, where: Where, found: list[PlannerError], *,
+def _check_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
                 expected: Mapping[str, tuple[int, int]], replaced: Mapping[str, str],
                 owners: Mapping[str, tuple[str, str]], lab: str, round_id: str,
                 elsewhere: Mapping[str, str], first_seen: dict[str, int],
-                form: Form) -> str | None:
+                form: forms.Form) -> str | None:
     """Return the row's compact code if it is this laboratory's; else note why and return None."""
-    text = _cell_text(row.get("code"))
+    text = forms.cell_text(row.get("code"))
     if not text:
         found.append(IntakeError("the row has no code; every result needs the code from the "
                                  "unit's label", where))
@@ -708,7 +496,7 @@ def _check_code(row: FormRow, where: Where, found: list[PlannerError], *,
     return None
 
 
-def _check_slot(row: FormRow, where: Where, found: list[PlannerError], *, code: str,
+def _check_slot(row: forms.FormRow, where: Where, found: list[PlannerError], *, code: str,
                 slot: tuple[int, int]) -> None:
     """Note a row whose trial or position disagrees with the run order of its code."""
     given = []
@@ -912,10 +700,10 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     swaps = spare_swaps(ledger, round_id)
     elsewhere = _other_rounds(ledger, round_id)
     problems: list[PlannerError] = []
-    accepted: list[tuple[Form, _Checked]] = []
+    accepted: list[tuple[forms.Form, _Checked]] = []
     for path in paths:
         try:
-            form = read_form(path)
+            form = forms.read_form(path)
         except IntakeError as exc:
             problems.append(exc)
             continue
@@ -985,7 +773,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     return receipts
 
 
-def _receipt(form: Form, checked: _Checked, last: Any, version: int | None,
+def _receipt(form: forms.Form, checked: _Checked, last: Any, version: int | None,
              stored: str | None, received_late: bool, unsealed: bool) -> Receipt:
     repeat = last.version if last is not None and last.sha256 == form.sha256 else None
     return Receipt(
@@ -996,165 +784,6 @@ def _receipt(form: Form, checked: _Checked, last: Any, version: int | None,
         late_rows=checked.late_rows, received_late=received_late, after_unseal=unsealed,
         repeat_of=repeat)
 
-
-# --- spares ---------------------------------------------------------------------
-
-@dataclass(frozen=True, slots=True)
-class Swap:
-    """A spare issued for a damaged or failed unit; the material is never part of it."""
-
-    lab: str
-    damaged: str
-    spare: str
-    trial: int
-    position: int
-
-
-def issue_spare(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *, lab: str,
-                damaged: str, key: Mapping[str, Any]) -> Swap:
-    """Return and record the spare that replaces a laboratory's damaged unit.
-
-    ``key`` is the decoded key (``seal.open_key``), needed for the material of
-    the damaged unit; the spare is the laboratory's lowest unused spare code of
-    that material. Raises CodeError for a malformed code and IntakeError when
-    the unit is not the laboratory's, was replaced already, or no spare is left.
-    """
-    folder = plan.round_dir(study_dir, round_id)
-    manifest = plan.read_manifest(folder)
-    if manifest.get("mode") == "circulate":
-        raise IntakeError(f"round {round_id!r} circulates one set of artefacts, which has no "
-                          "spares; report the damage in the remarks of the form and tell the "
-                          "host, who decides whether the artefact stays in the round")
-    if key.get("round") != round_id or key.get("study") != study.id:
-        raise IntakeError(f"the key belongs to study {key.get('study')!r} round "
-                          f"{key.get('round')!r}, not to this round", Where(str(folder)))
-    if lab not in manifest["labs"]:
-        known = ", ".join(manifest["labs"])
-        raise IntakeError(f"--lab {lab!r} is not a laboratory of round {round_id!r}; known: "
-                          f"{known}")
-    code = codes.validate(damaged, where=Where(field="--damaged"))
-    shown = codes.format(code)
-    swaps = spare_swaps(ledger, round_id)
-    expected = expected_codes(manifest, lab, swaps)
-    if code in swaps:
-        raise IntakeError(f"unit {shown} was already replaced by spare "
-                          f"{codes.format(swaps[code])}")
-    if code not in expected:
-        raise IntakeError(f"{shown} is not a unit that laboratory {lab!r} tests in round "
-                          f"{round_id!r}; give the code on the damaged unit's label")
-    units = plan.units_from_key(dict(key))
-    material = {u.code: u.material for u in units}.get(code)
-    used = set(swaps.values())
-    free = sorted(u.code for u in units if u.kind == "spare" and u.lab == lab
-                  and u.material == material and u.code not in used)
-    if not free:
-        raise IntakeError(f"laboratory {lab!r} has no unused spare left for unit {shown}; "
-                          "the host must send a replacement unit")
-    spare = free[0]
-    trial, position = expected[code]
-    with ledger.transaction():
-        ledger.record_event(round_id, "spare-swap", {"lab": lab, "damaged": code, "spare": spare})
-    return Swap(lab, code, spare, trial, position)
-
-
-# --- where a round stands -------------------------------------------------------
-
-@dataclass(frozen=True, slots=True)
-class RoundStatus:
-    """One row per laboratory (dicts, spec order) and whether the key may be opened."""
-
-    round: str
-    results_due: date
-    unsealed: bool
-    may_open: bool
-    waiting_for: tuple[str, ...]
-    rows: tuple[dict[str, Any], ...]
-
-
-def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
-                       today: date) -> RoundStatus:
-    """Return per laboratory: received, version, values, codes missing, late, days left."""
-    from planner import audit
-
-    folder = plan.round_dir(study_dir, round_id)
-    manifest = plan.read_manifest(folder)
-    if ledger.current_round(round_id) is None:
-        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
-                          "this study folder")
-    due = date.fromisoformat(manifest["dates"]["results_due"])
-    swaps = spare_swaps(ledger, round_id)
-    unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
-    if manifest.get("mode") == "circulate":
-        rows = _circulating_rows(manifest, ledger, round_id, today=today, due=due)
-        waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
-        return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
-                           tuple(rows))
-    rows = []
-    for lab in study.laboratories:
-        if lab.id not in manifest["labs"]:
-            continue
-        expected = expected_codes(manifest, lab.id, swaps)
-        history = ledger.submissions(round_id, lab.id)
-        last = history[-1] if history else None
-        got = ledger.result_rows(last.row) if last else []
-        reported = {r.code for r in got}
-        missing = [codes.format(c) for c in expected if c not in reported]
-        rows.append({
-            "lab": lab.id,
-            "received": last is not None,
-            "version": last.version if last else None,
-            "received_at": last.received_at if last else None,
-            "values": sum(1 for r in got if r.value is not None),
-            "failed": sum(1 for r in got if r.value is None),
-            "expected": len(expected),
-            "missing": len(missing),
-            "missing_codes": missing,
-            "late": last.late if last else today > due,
-            "after_unseal": any(s.after_unseal for s in history),
-            "spares_issued": sum(1 for s in swaps.values()
-                                 if s in manifest["labs"][lab.id].get("spares", ())),
-            "days_left": None if last else (due - today).days,
-        })
-    waiting = tuple(audit.missing_labs(study, ledger, round_id))
-    return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
-                       tuple(rows))
-
-
-def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, *,
-                      today: date, due: date) -> list[dict[str, Any]]:
-    """Return one status row per stop of a circulating set, in route order."""
-    from planner import audit
-
-    stations = {audit.slot_of(str(s["lab"]), s.get("visit")): s for s in manifest["route"]}
-    rows = []
-    for slot in audit.report_slots(manifest):
-        runs = audit.slot_runs(manifest, slot)
-        expected = [(code, trial) for trial, run in enumerate(runs, start=1) for code in run]
-        history = ledger.submissions(round_id, slot)
-        last = history[-1] if history else None
-        got = ledger.result_rows(last.row) if last else []
-        reported = {(r.code, r.trial) for r in got}
-        missing = [f"{codes.format(c)} (trial {t})" for c, t in expected if (c, t) not in reported]
-        station = stations.get(slot, {})
-        rows.append({
-            "lab": slot,
-            "laboratory": station.get("lab", slot),
-            "visit": station.get("visit"),
-            "test_end": station.get("test_end"),
-            "received": last is not None,
-            "version": last.version if last else None,
-            "received_at": last.received_at if last else None,
-            "values": sum(1 for r in got if r.value is not None),
-            "failed": sum(1 for r in got if r.value is None),
-            "expected": len(expected),
-            "missing": len(missing),
-            "missing_codes": missing,
-            "late": last.late if last else today > due,
-            "after_unseal": any(s.after_unseal for s in history),
-            "spares_issued": 0,
-            "days_left": None if last else (due - today).days,
-        })
-    return rows
 
 
 def _flatten(items: Iterable[Iterable[str]]) -> set[str]:

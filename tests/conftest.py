@@ -1,4 +1,9 @@
-"""What many test modules share: the example study, a fixed secret, a CLI runner."""
+"""What many test modules share: the example study, a fixed secret, a CLI runner.
+
+And for the modules on returned forms (intake, spares, status): round 2027-1 of the
+example study planned with the fixed secret, and its blank CSV forms filled in by
+editing lines. Expected values are the numbers the tests write into the forms.
+"""
 
 from __future__ import annotations
 
@@ -39,3 +44,125 @@ def run_cli(runner, *args: str):
     from planner.cli import app
 
     return runner.invoke(app, [str(a) for a in args])
+
+
+# --- a planned round and its returned forms --------------------------------------
+
+ROUND = "2027-1"
+NOW = "2027-01-30T09:00:00+00:00"   # after the test window (2027-01-19..28), before 02-04
+HEADER_LINE = 10                    # 9 identity and note lines, then the header
+FIRST_ROW = 11
+LABS = ("kal", "tor", "hel", "lin", "crx")
+
+
+@pytest.fixture
+def clock(monkeypatch):
+    """Fix the ledger's clock (the time a form is received) at NOW; tests may move it."""
+    from planner.ledger import Ledger
+
+    state = {"now": NOW}
+    monkeypatch.setattr(Ledger, "now", lambda self: state["now"])
+    return state
+
+
+def plan_example_round(study_dir, round_id=ROUND, host="kal", receive_by=None):
+    """Plan a round of the study in ``study_dir`` with the fixed secret; return the RoundPlan."""
+    from planner import calendar, plan, spec
+    from planner.ledger import Ledger
+
+    study = spec.load(study_dir)
+    dates = calendar.schedule_round(study, host, receive_by=receive_by)
+    with Ledger.open(study_dir) as ledger:
+        result = plan.plan_round(study, round_id=round_id, host=host, dates=dates,
+                                 secret=SECRET, taken=ledger.codes())
+        plan.write_round(study, study_dir, result, ledger, passphrase=PASSPHRASE)
+    return result
+
+
+@pytest.fixture
+def planned(example_dir, clock):
+    """The example study folder with round ROUND planned (host kal); the clock is at NOW."""
+    plan_example_round(example_dir)
+    return example_dir
+
+
+def manifest_of(study_dir, round_id=ROUND):
+    """Return the manifest of a planned round."""
+    from planner import plan
+
+    return plan.read_manifest(plan.round_dir(study_dir, round_id))
+
+
+def _sep(lab):
+    return "," if lab == "crx" else ";"   # crx writes a decimal point, the others a comma
+
+
+def _number(x, lab):
+    text = f"{x:.2f}"
+    return text if lab == "crx" else text.replace(".", ",")
+
+
+def value_of(n):
+    """The value the tests write on data row n (1-based); exact in binary floating point."""
+    return 10 + n / 4
+
+
+def filled(study_dir, lab, *, round_id=ROUND, day="2027-01-25"):
+    """Return the lines of a laboratory's blank form with every row filled in."""
+    from planner import plan
+
+    path = plan.round_dir(study_dir, round_id) / "labs" / lab / "result-form.csv"
+    lines = path.read_text(encoding="utf-8").splitlines()
+    sep = _sep(lab)
+    for i in range(FIRST_ROW - 1, len(lines)):
+        cells = lines[i].split(sep)
+        cells[3] = _number(value_of(i - FIRST_ROW + 2), lab)
+        cells[5] = day
+        cells[6] = "A. Analyst"
+        lines[i] = sep.join(cells)
+    return lines
+
+
+def set_cell(lines, line, column, text, lab):
+    """Write ``text`` into a column of a form line (1-based), in the laboratory's separator."""
+    from planner import plan
+
+    sep = _sep(lab)
+    cells = lines[line - 1].split(sep)
+    cells[plan.FORM_COLUMNS.index(column)] = text
+    lines[line - 1] = sep.join(cells)
+
+
+def get_cell(lines, line, column, lab):
+    """Return a column of a form line (1-based)."""
+    from planner import plan
+
+    return lines[line - 1].split(_sep(lab))[plan.FORM_COLUMNS.index(column)]
+
+
+def write(tmp_path, name, lines):
+    """Write form lines to ``tmp_path/name``; return the path."""
+    path = tmp_path / name
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def one_error(result, path, line):
+    """Assert exit 2 and exactly one stderr line naming path:line; return the message."""
+    assert result.exit_code == 2, (result.stdout, result.stderr)
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, lines
+    prefix = f"error: {path}:{line}: "
+    assert lines[0].startswith(prefix), lines[0]
+    return lines[0][len(prefix):]
+
+
+def receive(runner, study_dir, *files, extra=()):
+    """Run ``ringplan receive`` on forms for round ROUND; return the click Result."""
+    return run_cli(runner, "receive", study_dir, "--round", ROUND, *files, *extra)
+
+
+def mistype(code_text):
+    """Change the check character to another symbol; Luhn mod N catches every such change."""
+    last = code_text[-1]
+    return code_text[:-1] + ("0" if last != "0" else "1")

@@ -23,7 +23,7 @@ from datetime import UTC, date, datetime, time, timedelta
 import pytest
 from conftest import PASSPHRASE, ROOT, SECRET
 
-from planner import audit, codes, evaluate, intake, plan, spec
+from planner import audit, codes, evaluate, forms, intake, plan, spares, spec, status
 from planner.errors import IntakeError, LedgerError
 from planner.ledger import Ledger
 
@@ -135,14 +135,14 @@ def round_(tmp_path_factory):
                 except LedgerError as exc:
                     gate_before_end = str(exc)
             intake.receive(study, folder_root, ROUND, [target], ledger)
-        status = intake.round_status_table(study, folder_root, ROUND, ledger,
-                                           today=clock.now.date())
+        standing = status.round_status_table(study, folder_root, ROUND, ledger,
+                                             today=clock.now.date())
         audit.unseal_round(study, folder_root, ROUND, ledger, passphrase=PASSPHRASE)
         report_dir = evaluate.evaluate_round(study, folder_root, ROUND, ledger)
         verdict = audit.verify_round(study, folder_root, ROUND, ledger)
     stats = json.loads((report_dir / evaluate.STATISTICS_NAME).read_text(encoding="utf-8"))
     return {"study": study, "study_dir": folder_root, "folder": folder, "manifest": manifest,
-            "key": key, "values": values, "printed": printed, "status": status,
+            "key": key, "values": values, "printed": printed, "status": standing,
             "stats": stats, "report_dir": report_dir, "gate_before_end": gate_before_end,
             "verdict": verdict}
 
@@ -263,7 +263,7 @@ def _blank(r, lab, name="result-form.csv"):
 def _check(r, tmp_path, text, name="form.csv"):
     path = tmp_path / name
     path.write_text(text, encoding="utf-8")
-    return [str(p) for p in intake.check_form(r["study"], r["manifest"], intake.read_form(path),
+    return [str(p) for p in intake.check_form(r["study"], r["manifest"], forms.read_form(path),
                                               today=date(2027, 4, 1))]
 
 
@@ -318,7 +318,7 @@ def test_the_host_forms_are_accepted_as_their_stops(r, tmp_path):
 
 def test_spare_says_a_circulating_set_has_none(r):
     with Ledger.open(r["study_dir"]) as ledger, pytest.raises(IntakeError) as info:
-        intake.issue_spare(r["study"], r["study_dir"], ROUND, ledger, lab="hel",
+        spares.issue_spare(r["study"], r["study_dir"], ROUND, ledger, lab="hel",
                            damaged=codes.format(r["manifest"]["artefacts"][0]), key=r["key"])
     message = str(info.value)
     assert "circulates one set of artefacts, which has no spares" in message
@@ -408,7 +408,7 @@ def test_host_middle_form_as_spreadsheet_is_its_stop(r, tmp_path):
         sheet.cell(n, col["analyst"]).value = "A"
     path = tmp_path / "middle.xlsx"
     book.save(path)
-    form = intake.read_form(path)
+    form = forms.read_form(path)
     assert form.ident("visit")[0] == "middle"
     assert intake.check_form(r["study"], r["manifest"], form, today=date(2027, 4, 1)) == []
 

@@ -1,4 +1,4 @@
-"""Returned result forms: checks through the CLI, recording, versions, spares, status, kills.
+"""Returned result forms: checks through the CLI, recording, versions, kills.
 
 Every round here is planned from the example study with the fixed secret of
 conftest; forms are the CSV that ``plan`` wrote, filled in by editing lines.
@@ -16,102 +16,31 @@ import sys
 from datetime import date
 
 import pytest
-from conftest import PASSPHRASE, ROOT, SECRET, run_cli
+from conftest import (
+    FIRST_ROW,
+    HEADER_LINE,
+    LABS,
+    NOW,
+    ROOT,
+    ROUND,
+    filled,
+    get_cell,
+    manifest_of,
+    mistype,
+    one_error,
+    plan_example_round,
+    receive,
+    run_cli,
+    set_cell,
+    value_of,
+    write,
+)
 
-from planner import calendar, codes, intake, plan, seal, spec
+from planner import codes, forms, intake, plan, seal, spec, status
 from planner.errors import IntakeError
 from planner.ledger import Ledger
 
-ROUND = "2027-1"
-NOW = "2027-01-30T09:00:00+00:00"   # after the test window (2027-01-19..28), before 02-04
-HEADER_LINE = 10                    # 9 identity and note lines, then the header
-FIRST_ROW = 11
-
-
 # --- helpers ---------------------------------------------------------------------
-
-@pytest.fixture
-def clock(monkeypatch):
-    """Fix the ledger's clock (the time a form is received) at NOW; tests may move it."""
-    state = {"now": NOW}
-    monkeypatch.setattr(Ledger, "now", lambda self: state["now"])
-    return state
-
-
-def _plan(study_dir, round_id=ROUND, host="kal", receive_by=None):
-    study = spec.load(study_dir)
-    dates = calendar.schedule_round(study, host, receive_by=receive_by)
-    with Ledger.open(study_dir) as ledger:
-        result = plan.plan_round(study, round_id=round_id, host=host, dates=dates,
-                                 secret=SECRET, taken=ledger.codes())
-        plan.write_round(study, study_dir, result, ledger, passphrase=PASSPHRASE)
-    return result
-
-
-@pytest.fixture
-def planned(example_dir, clock):
-    _plan(example_dir)
-    return example_dir
-
-
-def _manifest(study_dir, round_id=ROUND):
-    return plan.read_manifest(plan.round_dir(study_dir, round_id))
-
-
-def _sep(lab):
-    return "," if lab == "crx" else ";"   # crx writes a decimal point, the others a comma
-
-
-def _number(x, lab):
-    text = f"{x:.2f}"
-    return text if lab == "crx" else text.replace(".", ",")
-
-
-def _value_of(n):
-    """The value the tests write on data row n (1-based); exact in binary floating point."""
-    return 10 + n / 4
-
-
-def filled(study_dir, lab, *, round_id=ROUND, day="2027-01-25"):
-    """Return the lines of a laboratory's blank form with every row filled in."""
-    path = plan.round_dir(study_dir, round_id) / "labs" / lab / "result-form.csv"
-    lines = path.read_text(encoding="utf-8").splitlines()
-    sep = _sep(lab)
-    for i in range(FIRST_ROW - 1, len(lines)):
-        cells = lines[i].split(sep)
-        cells[3] = _number(_value_of(i - FIRST_ROW + 2), lab)
-        cells[5] = day
-        cells[6] = "A. Analyst"
-        lines[i] = sep.join(cells)
-    return lines
-
-
-def set_cell(lines, line, column, text, lab):
-    sep = _sep(lab)
-    cells = lines[line - 1].split(sep)
-    cells[plan.FORM_COLUMNS.index(column)] = text
-    lines[line - 1] = sep.join(cells)
-
-
-def get_cell(lines, line, column, lab):
-    return lines[line - 1].split(_sep(lab))[plan.FORM_COLUMNS.index(column)]
-
-
-def write(tmp_path, name, lines):
-    path = tmp_path / name
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    return path
-
-
-def one_error(result, path, line):
-    """Assert exit 2 and exactly one stderr line naming path:line; return the message."""
-    assert result.exit_code == 2, (result.stdout, result.stderr)
-    lines = result.stderr.strip().splitlines()
-    assert len(lines) == 1, lines
-    prefix = f"error: {path}:{line}: "
-    assert lines[0].startswith(prefix), lines[0]
-    return lines[0][len(prefix):]
-
 
 def nothing_recorded(study_dir):
     with Ledger.open(study_dir) as ledger:
@@ -123,20 +52,11 @@ def nothing_recorded(study_dir):
     return True
 
 
-def receive(runner, study_dir, *files, extra=()):
-    return run_cli(runner, "receive", study_dir, "--round", ROUND, *files, *extra)
-
-
 # --- bad forms through the CLI: one line, exit 2, nothing recorded -----------------
 
 def _other_lab_code(m):
     return codes.format(m["labs"]["tor"]["trials"][0][0])
 
-
-def _mistype(code_text):
-    """Change the check character to another symbol; Luhn mod N catches every such change."""
-    last = code_text[-1]
-    return code_text[:-1] + ("0" if last != "0" else "1")
 
 
 CASES = [
@@ -152,7 +72,7 @@ CASES = [
      lambda ls, m: set_cell(ls, 11, "code", _other_lab_code(m), "kal"), 11,
      "belongs to laboratory 'tor', not to 'kal'", ()),
     ("mistyped-check-character", "kal",
-     lambda ls, m: set_cell(ls, 12, "code", _mistype(get_cell(ls, 12, "code", "kal")), "kal"),
+     lambda ls, m: set_cell(ls, 12, "code", mistype(get_cell(ls, 12, "code", "kal")), "kal"),
      12, "check character does not match", ()),
     ("duplicate-code", "kal",
      lambda ls, m: set_cell(ls, 13, "code", get_cell(ls, 11, "code", "kal"), "kal"), 13,
@@ -211,7 +131,7 @@ def test_bad_form_is_one_line_and_nothing_is_recorded(planned, runner, tmp_path,
     name, lab, edit, line, fragment, extra = case
     lines = filled(planned, lab)
     if edit is not None:
-        edit(lines, _manifest(planned))
+        edit(lines, manifest_of(planned))
     path = write(tmp_path, f"{name}.csv", lines)
     message = one_error(receive(runner, planned, path, extra=extra), path, line)
     assert fragment in message
@@ -233,7 +153,7 @@ def test_empty_file(planned, runner, tmp_path):
 
 
 def test_form_of_another_round(planned, runner, tmp_path):
-    _plan(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
+    plan_example_round(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
     path = write(tmp_path, "next-round.csv", filled(planned, "kal", round_id="2027-2"))
     message = one_error(receive(runner, planned, path), path, 2)
     assert message.startswith("the form is for round '2027-2', not '2027-1'")
@@ -241,9 +161,9 @@ def test_form_of_another_round(planned, runner, tmp_path):
 
 
 def test_code_of_another_round(planned, runner, tmp_path):
-    _plan(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
+    plan_example_round(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
     lines = filled(planned, "kal")
-    set_cell(lines, 11, "code", codes.format(_manifest(planned, "2027-2")["labs"]["tor"]
+    set_cell(lines, 11, "code", codes.format(manifest_of(planned, "2027-2")["labs"]["tor"]
                                              ["trials"][0][0]), "kal")
     path = write(tmp_path, "mixed.csv", lines)
     assert "belongs to round '2027-2', not to '2027-1'" in one_error(
@@ -301,7 +221,7 @@ def test_good_comma_form_is_copied_hashed_and_recorded(planned, runner, tmp_path
     assert stored.read_bytes() == data
     assert not os.access(stored, os.W_OK) or os.geteuid() == 0   # written read-only
     assert oct(stored.stat().st_mode & 0o777) == "0o444"
-    manifest = _manifest(planned)
+    manifest = manifest_of(planned)
     slots = {c: (t, p) for t, run in enumerate(manifest["labs"]["kal"]["trials"], 1)
              for p, c in enumerate(run, 1)}
     with Ledger.open(planned) as ledger:
@@ -313,7 +233,7 @@ def test_good_comma_form_is_copied_hashed_and_recorded(planned, runner, tmp_path
             {"lab": "kal", "version": 1, "sha256": sha}]
         assert ledger.round_status(ROUND) == "received"
     lines = filled(planned, "kal")
-    written = {codes.compact(get_cell(lines, n, "code", "kal")): _value_of(n - FIRST_ROW + 1)
+    written = {codes.compact(get_cell(lines, n, "code", "kal")): value_of(n - FIRST_ROW + 1)
                for n in range(FIRST_ROW, FIRST_ROW + 18)}
     assert {r.code: r.value for r in rows} == written
     assert {r.code: (r.trial, r.position) for r in rows} == slots
@@ -349,9 +269,9 @@ def test_corrected_form_is_a_new_version_and_history_stays(planned, runner, tmp_
         assert (v1.version, v2.version) == (1, 2)
         old = {r.code: r.value for r in ledger.result_rows(v1.row)}
         new = {r.code: r.value for r in ledger.result_rows(v2.row)}
-        table = intake.round_status_table(spec.load(planned), planned, ROUND, ledger,
+        table = status.round_status_table(spec.load(planned), planned, ROUND, ledger,
                                           today=date(2027, 1, 30))
-    assert old[code] == _value_of(14 - FIRST_ROW + 1) and new[code] == 99.75
+    assert old[code] == value_of(14 - FIRST_ROW + 1) and new[code] == 99.75
     assert sorted(p.name for p in folder.iterdir()) == sorted(
         f"{hashlib.sha256(p.read_bytes()).hexdigest()}.csv" for p in (first, second))
     assert table.rows[0]["lab"] == "kal" and table.rows[0]["version"] == 2
@@ -425,7 +345,7 @@ def _xlsx_form(study_dir, tmp_path, lab, *, value_for=None):
     header = next(r for r in range(1, sheet.max_row + 1)
                   if [c.value for c in sheet[r]][:4] == ["trial", "position", "code", "value"])
     for n, r in enumerate(range(header + 1, sheet.max_row + 1), start=1):
-        sheet.cell(r, 4).value = value_for(n) if value_for else _value_of(n)
+        sheet.cell(r, 4).value = value_for(n) if value_for else value_of(n)
         sheet.cell(r, 6).value = date(2027, 1, 21)
         sheet.cell(r, 7).value = "B. Analyst"
     book.save(path)
@@ -438,17 +358,17 @@ def test_xlsx_form_round_trip(planned, runner, tmp_path):
     assert result.exit_code == 0, result.stderr
     sha = hashlib.sha256(path.read_bytes()).hexdigest()
     assert (plan.round_dir(planned, ROUND) / "results" / f"{sha}.xlsx").is_file()
-    runs = _manifest(planned)["labs"]["kal"]["trials"]
+    runs = manifest_of(planned)["labs"]["kal"]["trials"]
     in_order = [c for run in runs for c in run]
     with Ledger.open(planned) as ledger:
         rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
-    assert [rows[c].value for c in in_order] == [_value_of(n) for n in range(1, 19)]
+    assert [rows[c].value for c in in_order] == [value_of(n) for n in range(1, 19)]
     assert {r.date for r in rows.values()} == {"2027-01-21"}
 
 
 def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
     path, header = _xlsx_form(planned, tmp_path, "kal",
-                              value_for=lambda n: "n/a" if n == 3 else _value_of(n))
+                              value_for=lambda n: "n/a" if n == 3 else value_of(n))
     result = receive(runner, planned, path)
     assert result.exit_code == 2
     assert result.stderr.strip().splitlines() == [
@@ -458,9 +378,6 @@ def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
 
 
 # --- after the key was opened ------------------------------------------------------------
-
-LABS = ("kal", "tor", "hel", "lin", "crx")
-
 
 def test_unseal_opens_without_force_once_every_lab_is_in(planned, runner, tmp_path, passphrase):
     for lab in LABS[:-1]:
@@ -477,7 +394,7 @@ def test_unseal_opens_without_force_once_every_lab_is_in(planned, runner, tmp_pa
     opened = run_cli(runner, "unseal", planned, "--round", ROUND)
     assert opened.exit_code == 0, opened.stderr
     key = plan.round_dir(planned, ROUND) / seal.KEY_NAME
-    assert seal.fingerprint(key.read_bytes()) == _manifest(planned)["fingerprint"]
+    assert seal.fingerprint(key.read_bytes()) == manifest_of(planned)["fingerprint"]
 
 
 def test_results_after_unseal_need_the_flag_and_a_reason(planned, runner, tmp_path, passphrase):
@@ -517,134 +434,6 @@ def test_after_unseal_flag_is_refused_while_sealed(planned, runner, tmp_path):
     assert nothing_recorded(planned)
 
 
-# --- status ------------------------------------------------------------------------
-
-def test_status_rows_and_days_left(planned, runner, tmp_path):
-    lines = filled(planned, "crx")
-    lines.pop()                                       # one code left out
-    receive(runner, planned, write(tmp_path, "crx.csv", lines))
-    study = spec.load(planned)
-    with Ledger.open(planned) as ledger:
-        before = intake.round_status_table(study, planned, ROUND, ledger, today=date(2027, 1, 30))
-        after = intake.round_status_table(study, planned, ROUND, ledger, today=date(2027, 2, 6))
-    rows = {r["lab"]: r for r in before.rows}
-    assert [r["lab"] for r in before.rows] == list(LABS)
-    assert before.results_due == date(2027, 2, 4) and not before.may_open
-    assert before.waiting_for == LABS[:-1]
-    # 2027-01-30 to 2027-02-04 is 5 calendar days; 2027-02-06 is 2 days past it
-    assert rows["kal"] | {"missing_codes": None} == {
-        "lab": "kal", "received": False, "version": None, "received_at": None, "values": 0,
-        "failed": 0, "expected": 18, "missing": 18, "missing_codes": None, "late": False,
-        "after_unseal": False, "spares_issued": 0, "days_left": 5}
-    assert (rows["crx"]["received"], rows["crx"]["version"], rows["crx"]["values"],
-            rows["crx"]["missing"], rows["crx"]["days_left"]) == (True, 1, 17, 1, None)
-    assert rows["crx"]["missing_codes"] == [lines_last_code(planned)]
-    late = {r["lab"]: (r["late"], r["days_left"]) for r in after.rows}
-    assert late["kal"] == (True, -2) and late["crx"] == (False, None)
-
-
-def lines_last_code(study_dir):
-    return codes.format(_manifest(study_dir)["labs"]["crx"]["trials"][-1][-1])
-
-
-def test_status_cli_json(planned, runner):
-    result = run_cli(runner, "status", planned, "--round", ROUND, "--json")
-    assert result.exit_code == 0
-    import json
-
-    info = json.loads(result.stdout)
-    assert info["may_open"] is False and len(info["rows"]) == 5
-
-
-def test_status_of_an_unplanned_round(example_dir, runner):
-    result = run_cli(runner, "status", example_dir, "--round", "2030-1")
-    assert result.exit_code == 2
-    assert "round '2030-1' has not been planned" in result.stderr
-
-
-# --- spares -------------------------------------------------------------------------
-
-def _key(study_dir):
-    return seal.open_key(plan.round_dir(study_dir, ROUND), PASSPHRASE)
-
-
-def test_spare_replaces_a_damaged_unit_without_naming_the_material(planned, runner, tmp_path,
-                                                                 passphrase):
-    manifest = _manifest(planned)
-    damaged = manifest["labs"]["crx"]["trials"][0][0]
-    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                     "--damaged", codes.format(damaged).lower())
-    assert result.exit_code == 0, result.stderr
-    units = {u["code"]: u for u in _key(planned)["units"]}
-    spare = codes.compact(result.stdout.split("use spare ")[1].split()[0])
-    # the key, decrypted independently, says the spare is crx's and of the damaged unit's material
-    assert units[spare]["kind"] == "spare" and units[spare]["lab"] == "crx"
-    assert units[spare]["material"] == units[damaged]["material"]
-    study = spec.load(planned)
-    for m in study.materials:
-        assert m.id not in result.stdout and m.description not in result.stdout
-    assert "(trial 1, position 1)" in result.stdout
-    with Ledger.open(planned) as ledger:
-        assert [e.detail for e in ledger.events(ROUND, "spare-swap")] == [
-            {"lab": "crx", "damaged": damaged, "spare": spare}]
-    again = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                    "--damaged", codes.format(damaged))
-    assert again.exit_code == 2 and "already replaced by spare" in again.stderr
-    # the same material in another trial: crx had one spare of it (spares_per_lab: 1)
-    twin = next(c for run in manifest["labs"]["crx"]["trials"][1:] for c in run
-                if units[c]["material"] == units[damaged]["material"])
-    none_left = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                        "--damaged", codes.format(twin))
-    assert none_left.exit_code == 2 and "no unused spare left" in none_left.stderr
-    for m in study.materials:
-        assert m.id not in none_left.stderr
-
-
-def test_intake_expects_the_spare_in_place_of_the_damaged_unit(planned, runner, tmp_path,
-                                                             passphrase):
-    lines = filled(planned, "crx")
-    damaged = get_cell(lines, 11, "code", "crx")
-    issued = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                     "--damaged", damaged)
-    spare = issued.stdout.split("use spare ")[1].split()[0]
-    old = write(tmp_path, "old.csv", lines)
-    assert f"unit {damaged} was replaced by spare {spare}" in one_error(
-        receive(runner, planned, old), old, 11)
-    set_cell(lines, 11, "code", spare, "crx")
-    new = write(tmp_path, "new.csv", lines)
-    result = receive(runner, planned, new)
-    assert result.exit_code == 0, result.stderr
-    with Ledger.open(planned) as ledger:
-        rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
-        status = intake.round_status_table(spec.load(planned), planned, ROUND, ledger,
-                                           today=date(2027, 1, 30))
-    row = rows[codes.compact(spare)]
-    assert (row.trial, row.position, row.flags) == (1, 1, ("spare",))
-    assert codes.compact(damaged) not in rows
-    crx = next(r for r in status.rows if r["lab"] == "crx")
-    assert (crx["missing"], crx["spares_issued"]) == (0, 1)
-
-
-def test_spare_refusals(planned, runner, tmp_path, passphrase):
-    manifest = _manifest(planned)
-    other = codes.format(manifest["labs"]["tor"]["trials"][0][0])
-    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                     "--damaged", other)
-    assert result.exit_code == 2 and "is not a unit that laboratory 'crx' tests" in result.stderr
-    mistyped = _mistype(codes.format(manifest["labs"]["crx"]["trials"][0][0]))
-    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                     "--damaged", mistyped)
-    assert result.exit_code == 2 and "check character does not match" in result.stderr
-    wrong = tmp_path / "pass.txt"
-    wrong.write_text("not-the-passphrase\n")
-    result = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
-                     "--damaged", codes.format(manifest["labs"]["crx"]["trials"][0][0]),
-                     "--passphrase-file", wrong)
-    assert result.exit_code == 2 and "wrong passphrase" in result.stderr
-    with Ledger.open(planned) as ledger:
-        assert ledger.events(ROUND, "spare-swap") == []
-
-
 # --- library details -------------------------------------------------------------------
 
 @pytest.mark.parametrize("text, decimal, expected", [
@@ -671,8 +460,8 @@ def test_numbers_refused(text, decimal, fragment):
 def test_check_form_lists_problems_with_places(planned, tmp_path):
     lines = filled(planned, "kal")
     set_cell(lines, 12, "value", "abc", "kal")
-    form = intake.read_form(write(tmp_path, "f.csv", lines))
-    problems = intake.check_form(spec.load(planned), _manifest(planned), form,
+    form = forms.read_form(write(tmp_path, "f.csv", lines))
+    problems = intake.check_form(spec.load(planned), manifest_of(planned), form,
                                  today=date(2027, 1, 30))
     assert [(p.where.line, type(p).__name__) for p in problems] == [(12, "IntakeError")]
 

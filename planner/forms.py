@@ -1,0 +1,230 @@
+"""The returned result form's file formats: CSV and XLSX, read into one Form.
+
+A result form is the CSV that ``plan`` wrote into ``labs/<lab>/result-form.csv``
+(identity lines ``# key: value``, then a header row with at least ``code`` and
+``value``), or the XLSX workbook of the same content. The CSV is UTF-8 (a byte
+order mark is allowed) and separated by ``;``, ``,`` or a tab, whichever splits
+the header into ``code`` and ``value``; comment lines below the table are
+skipped. The workbook is read from the form's sheet, or its first sheet, with
+identity lines in the first cells of the rows above the header. An old-style
+``.xls`` workbook is refused.
+
+``read_form`` only reads: it keeps every cell as found, with its line (CSV) or
+row (XLSX), and leaves checking against the round to ``planner.intake``.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+from dataclasses import dataclass, field
+from datetime import date
+from pathlib import Path
+from typing import Any
+
+from planner.errors import IntakeError, Where
+
+__all__ = ["IDENTITY_KEYS", "Form", "FormRow", "cell_text", "read_form"]
+
+IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
+"""Identity lines a returned form must carry."""
+_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit")
+
+_XLSX_MAGIC = b"PK\x03\x04"
+_OLD_XLS_MAGIC = b"\xd0\xcf\x11\xe0"
+
+
+@dataclass(frozen=True, slots=True)
+class FormRow:
+    """One table row of a form: its line (CSV) or row (XLSX) and its cells by column."""
+
+    line: int
+    cells: tuple[tuple[str, Any], ...]
+    width: int
+
+    def get(self, column: str) -> Any:
+        """Return the raw cell of ``column`` ('' if the form has no such column)."""
+        for name, value in self.cells:
+            if name == column:
+                return value
+        return ""
+
+
+@dataclass(frozen=True, slots=True)
+class Form:
+    """A returned result form as read, before any check against the round."""
+
+    path: str
+    kind: str                                  # "csv" | "xlsx"
+    sha256: str
+    identity: tuple[tuple[str, str, int], ...]  # (key, value, line)
+    header_line: int
+    columns: tuple[str, ...]
+    header_width: int
+    separator: str | None
+    rows: tuple[FormRow, ...]
+    data: bytes = field(repr=False)
+
+    def where(self, line: int | None) -> Where:
+        """Return the place of a line (CSV) or row (XLSX) of this form."""
+        if line is None:
+            return Where(self.path)
+        if self.kind == "xlsx":
+            return Where(self.path, None, f"row {line}")
+        return Where(self.path, line)
+
+    def ident(self, key: str) -> tuple[str, int] | None:
+        """Return (value, line) of an identity line, or None if the form lacks it."""
+        for name, value, line in self.identity:
+            if name == key:
+                return value, line
+        return None
+
+
+def read_form(path: Path) -> Form:
+    """Return the form in a CSV or XLSX file; raise IntakeError if it cannot be read as one."""
+    name = str(path)
+    try:
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise IntakeError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
+                          Where(name)) from None
+    if not data.strip():
+        raise IntakeError("the file is empty; send the result form that 'ringplan plan' wrote "
+                          "for the laboratory, with the values filled in", Where(name, 1))
+    if data.startswith(_OLD_XLS_MAGIC):
+        raise IntakeError("this is an old-style .xls workbook; save it as .xlsx or as CSV",
+                          Where(name))
+    if data.startswith(_XLSX_MAGIC):
+        return _read_xlsx(name, data)
+    return _read_csv(name, data)
+
+
+def _decode(name: str, data: bytes) -> str:
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data[:exc.start].count(b"\n") + 1
+        raise IntakeError("the file is not UTF-8 text (nor an .xlsx workbook); save it as "
+                          "'CSV UTF-8'", Where(name, line)) from None
+
+
+def _identity_line(text: str) -> tuple[str, str] | None:
+    """Return (key, value) of '# key: value' (or 'key: value'), or None for other text."""
+    body = text.strip().lstrip("#").strip()
+    key, colon, value = body.partition(":")
+    key = key.strip().lower()
+    if not colon or key not in IDENTITY_KEYS + _MORE_IDENTITY:
+        return None
+    return key, value.strip()
+
+
+def _read_csv(name: str, data: bytes) -> Form:
+    text = _decode(name, data)
+    if "\x00" in text:
+        raise IntakeError("the file holds NUL bytes; it is not a CSV text file", Where(name))
+    lines = text.splitlines()
+    header_at = next((i for i, line in enumerate(lines)
+                      if line.strip() and not line.lstrip(' "').startswith("#")), None)
+    if header_at is None:
+        raise IntakeError("the file has no header row; the table must start with the row "
+                          "'trial, position, code, value, ...' of the blank form",
+                          Where(name, len(lines) or 1))
+    sep = _separator(lines[header_at])
+    if sep is None:
+        raise IntakeError(f"expected the header row with the columns 'code' and 'value', "
+                          f"found {lines[header_at].strip()[:60]!r}", Where(name, header_at + 1))
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
+    identity: list[tuple[str, str, int]] = []
+    rows: list[FormRow] = []
+    columns: tuple[str, ...] = ()
+    header_line = header_width = 0
+    last = 0
+    try:
+        for cells in reader:
+            start, last = last + 1, reader.line_num
+            if not any(c.strip() for c in cells):
+                continue
+            if not columns and cells[0].lstrip().startswith("#"):
+                found = _identity_line(sep.join(cells).rstrip(sep + " "))
+                if found:
+                    identity.append((*found, start))
+                continue
+            if not columns:
+                columns = tuple(c.strip().lower() for c in cells)
+                header_line, header_width = start, len(cells)
+                continue
+            if cells[0].lstrip().startswith("#"):
+                continue  # a comment below the table
+            rows.append(FormRow(start, tuple(zip(columns, (c.strip() for c in cells))),
+                                len(cells)))
+    except csv.Error as exc:
+        raise IntakeError(f"the CSV cannot be read ({exc})", Where(name, last + 1)) from None
+    return Form(name, "csv", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
+                columns, header_width, sep, tuple(rows), data)
+
+
+def _separator(header: str) -> str | None:
+    for sep in (";", ",", "\t"):
+        cells = {c.strip().strip('"').lower() for c in header.split(sep)}
+        if {"code", "value"} <= cells:
+            return sep
+    return None
+
+
+def _read_xlsx(name: str, data: bytes) -> Form:
+    from zipfile import BadZipFile
+
+    from openpyxl import load_workbook
+
+    from planner.render.result_form import SHEET
+
+    try:
+        book = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+    except (BadZipFile, KeyError, ValueError, OSError):
+        raise IntakeError("this zip file is not an .xlsx workbook; save the form as .xlsx or "
+                          "CSV", Where(name)) from None
+    try:
+        sheet = book[SHEET] if SHEET in book.sheetnames else book.worksheets[0]
+        grid = [tuple(row) for row in sheet.iter_rows(min_row=1, values_only=True)]
+    finally:
+        book.close()
+    identity: list[tuple[str, str, int]] = []
+    rows: list[FormRow] = []
+    columns: tuple[str, ...] = ()
+    header_line = 0
+    for number, raw in enumerate(grid, start=1):
+        cells = [cell_text(c) if not isinstance(c, (int, float, date)) else c for c in raw]
+        filled = [c for c in cells if c not in (None, "")]
+        if not filled:
+            continue
+        if not columns:
+            lowered = tuple(str(c).strip().lower() if c is not None else "" for c in cells)
+            if {"code", "value"} <= set(lowered):
+                columns, header_line = lowered, number
+                continue
+            found = _identity_line(str(filled[0]))
+            if found is None and len(filled) >= 2:
+                key = str(filled[0]).strip().rstrip(":").strip().lower()
+                if key in IDENTITY_KEYS or key == "visit":
+                    found = (key, str(filled[1]).strip())
+            if found:
+                identity.append((*found, number))
+            continue
+        if isinstance(cells[0], str) and cells[0].lstrip().startswith("#"):
+            continue
+        rows.append(FormRow(number, tuple(zip(columns, ("" if c is None else c for c in cells))),
+                            len(cells)))
+    if not columns:
+        raise IntakeError(f"the sheet {sheet.title!r} has no header row with the columns "
+                          "'code' and 'value'; send the result form as it was printed",
+                          Where(name))
+    return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
+                columns, len(columns), None, tuple(rows), data)
+
+
+def cell_text(value: Any) -> str:
+    """Return a cell as stripped text: '' for an empty cell, str() of any other value."""
+    return "" if value is None else str(value).strip()
+
