@@ -20,119 +20,81 @@ from typing import Any
 
 from planner.errors import LedgerError, Where
 
-__all__ = ["Ledger", "RoundRow", "Event", "Submission", "ResultRow", "LEDGER_NAME", "SCHEMA_VERSION", "STATUS_ORDER"]
+__all__ = ["Ledger", "RoundRow", "Event", "Submission", "ResultRow", "LEDGER_NAME",
+           "SCHEMA_VERSION", "STATUS_ORDER"]
 
 LEDGER_NAME = "ledger.sqlite"
 
-# Each entry brings the schema from version i to i + 1; never edit a shipped entry.
+_TABLES = """
+CREATE TABLE rounds (
+    id INTEGER PRIMARY KEY,
+    study TEXT NOT NULL,
+    round TEXT NOT NULL,
+    host TEXT NOT NULL,
+    fingerprint TEXT NOT NULL,
+    dates TEXT NOT NULL,
+    planned_at TEXT NOT NULL,
+    replaces INTEGER REFERENCES rounds(id)
+);
+CREATE TABLE units (
+    code TEXT PRIMARY KEY,
+    round_row INTEGER NOT NULL REFERENCES rounds(id),
+    lab TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    trial INTEGER,
+    position INTEGER
+);
+CREATE INDEX units_round ON units(round_row);
+CREATE TABLE events (
+    id INTEGER PRIMARY KEY,
+    round TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    at TEXT NOT NULL,
+    detail TEXT NOT NULL
+);
+CREATE INDEX events_round ON events(round, kind);
+-- returned result forms (planner.intake), a corrected form is a new version
+CREATE TABLE submissions (
+    id INTEGER PRIMARY KEY,
+    round TEXT NOT NULL,
+    lab TEXT NOT NULL,
+    version INTEGER NOT NULL,
+    sha256 TEXT NOT NULL,
+    file_name TEXT NOT NULL,
+    received_at TEXT NOT NULL,
+    late INTEGER NOT NULL,
+    after_unseal INTEGER NOT NULL,
+    reason TEXT,
+    UNIQUE (round, lab, version)
+);
+-- one row per code and trial: a circulating artefact is measured once in every trial
+CREATE TABLE result_rows (
+    submission INTEGER NOT NULL REFERENCES submissions(id),
+    code TEXT NOT NULL,
+    trial INTEGER,
+    position INTEGER,
+    value REAL,
+    uncertainty REAL,
+    date TEXT,
+    analyst TEXT NOT NULL,
+    remarks TEXT NOT NULL,
+    flags TEXT NOT NULL,
+    PRIMARY KEY (submission, code, trial)
+);
+"""
+
+
+def _append_only(*tables: str) -> str:
+    """Return triggers that make every row of ``tables`` permanent."""
+    return "".join(
+        f"CREATE TRIGGER {t}_no_{verb.lower()} BEFORE {verb} ON {t} "
+        f"BEGIN SELECT RAISE(ABORT, 'ledger rows are never {done}'); END;\n"
+        for t in tables for verb, done in (("UPDATE", "changed"), ("DELETE", "deleted")))
+
+
+# Each entry brings the schema from version i to i + 1; never edit one that has shipped.
 _MIGRATIONS: tuple[str, ...] = (
-    """
-    CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-    CREATE TABLE rounds (
-        id INTEGER PRIMARY KEY,
-        study TEXT NOT NULL,
-        round TEXT NOT NULL,
-        host TEXT NOT NULL,
-        fingerprint TEXT NOT NULL,
-        dates TEXT NOT NULL,
-        planned_at TEXT NOT NULL,
-        replaces INTEGER REFERENCES rounds(id)
-    );
-    CREATE TABLE units (
-        code TEXT PRIMARY KEY,
-        round_row INTEGER NOT NULL REFERENCES rounds(id),
-        lab TEXT NOT NULL,
-        kind TEXT NOT NULL,
-        trial INTEGER,
-        position INTEGER
-    );
-    CREATE INDEX units_round ON units(round_row);
-    CREATE TABLE events (
-        id INTEGER PRIMARY KEY,
-        round TEXT NOT NULL,
-        kind TEXT NOT NULL,
-        at TEXT NOT NULL,
-        detail TEXT NOT NULL
-    );
-    CREATE INDEX events_round ON events(round, kind);
-    CREATE TRIGGER rounds_append_only BEFORE UPDATE ON rounds
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER units_append_only BEFORE UPDATE ON units
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER events_append_only BEFORE UPDATE ON events
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER rounds_no_delete BEFORE DELETE ON rounds
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    CREATE TRIGGER units_no_delete BEFORE DELETE ON units
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    CREATE TRIGGER events_no_delete BEFORE DELETE ON events
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    """,
-    # 2: returned result forms (planner.intake); a corrected form is a new version.
-    """
-    CREATE TABLE submissions (
-        id INTEGER PRIMARY KEY,
-        round TEXT NOT NULL,
-        lab TEXT NOT NULL,
-        version INTEGER NOT NULL,
-        sha256 TEXT NOT NULL,
-        file_name TEXT NOT NULL,
-        received_at TEXT NOT NULL,
-        late INTEGER NOT NULL,
-        after_unseal INTEGER NOT NULL,
-        reason TEXT,
-        UNIQUE (round, lab, version)
-    );
-    CREATE TABLE result_rows (
-        submission INTEGER NOT NULL REFERENCES submissions(id),
-        code TEXT NOT NULL,
-        trial INTEGER,
-        position INTEGER,
-        value REAL,
-        uncertainty REAL,
-        date TEXT,
-        analyst TEXT NOT NULL,
-        remarks TEXT NOT NULL,
-        flags TEXT NOT NULL,
-        PRIMARY KEY (submission, code)
-    );
-    CREATE TRIGGER submissions_append_only BEFORE UPDATE ON submissions
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER result_rows_append_only BEFORE UPDATE ON result_rows
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER submissions_no_delete BEFORE DELETE ON submissions
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    CREATE TRIGGER result_rows_no_delete BEFORE DELETE ON result_rows
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    """,
-    # 3: a circulating set reports each artefact once in every trial, so a result row is
-    # (code, trial) within its submission. SQLite cannot change a primary key in place:
-    # the rows move to a new table (dropping a table fires no trigger).
-    """
-    CREATE TABLE result_rows_v3 (
-        submission INTEGER NOT NULL REFERENCES submissions(id),
-        code TEXT NOT NULL,
-        trial INTEGER,
-        position INTEGER,
-        value REAL,
-        uncertainty REAL,
-        date TEXT,
-        analyst TEXT NOT NULL,
-        remarks TEXT NOT NULL,
-        flags TEXT NOT NULL,
-        PRIMARY KEY (submission, code, trial)
-    );
-    INSERT INTO result_rows_v3 (submission, code, trial, position, value, uncertainty, date,
-                                analyst, remarks, flags)
-        SELECT submission, code, trial, position, value, uncertainty, date, analyst, remarks,
-               flags FROM result_rows;
-    DROP TABLE result_rows;
-    ALTER TABLE result_rows_v3 RENAME TO result_rows;
-    CREATE TRIGGER result_rows_append_only BEFORE UPDATE ON result_rows
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never changed'); END;
-    CREATE TRIGGER result_rows_no_delete BEFORE DELETE ON result_rows
-        BEGIN SELECT RAISE(ABORT, 'ledger rows are never deleted'); END;
-    """,
+    _TABLES + _append_only("rounds", "units", "events", "submissions", "result_rows"),
 )
 SCHEMA_VERSION = len(_MIGRATIONS)
 

@@ -459,30 +459,19 @@ def test_drift_check_says_when_it_cannot_check():
     assert single["materials"]["A"]["verdict"] == "fail"
 
 
-def test_ledger_of_schema_2_keeps_its_result_rows_keyed_by_code_and_trial(tmp_path):
+def test_ledger_keeps_one_result_row_per_code_and_trial(tmp_path):
     import sqlite3
 
-    from planner import ledger as ledger_module
-
-    db = sqlite3.connect(tmp_path / "ledger.sqlite")
-    for migration in ledger_module._MIGRATIONS[:2]:
-        for statement in ledger_module._split_sql(migration):
-            db.execute(statement)
-    db.execute("PRAGMA user_version = 2")
-    db.execute("INSERT INTO submissions (round, lab, version, sha256, file_name, received_at, "
-               "late, after_unseal) VALUES ('r', 'kal', 1, 'x', 'f.csv', 't', 0, 0)")
-    db.execute("INSERT INTO result_rows VALUES (1, 'CODE', 1, 1, 2.5, NULL, NULL, 'A', '', '')")
-    db.commit()
-    db.close()
     with Ledger.open(tmp_path) as ledger:
-        assert ledger.db.execute("PRAGMA user_version").fetchone()[0] == 3
-        assert [(r.code, r.trial, r.value) for r in ledger.result_rows(1)] == [("CODE", 1, 2.5)]
+        ledger.db.execute("INSERT INTO submissions (round, lab, version, sha256, file_name, "
+                          "received_at, late, after_unseal) VALUES ('r', 'kal', 1, 'x', 'f.csv', "
+                          "'t', 0, 0)")
+        ledger.db.execute("INSERT INTO result_rows VALUES (1, 'CODE', 1, 1, 2.5, NULL, NULL, "
+                          "'A', '', '')")
         # the same artefact in another trial is a row of its own; the same trial is refused
         ledger.db.execute("INSERT INTO result_rows VALUES (1, 'CODE', 2, 1, 2.6, NULL, NULL, "
                           "'A', '', '')")
         with pytest.raises(sqlite3.IntegrityError):
             ledger.db.execute("INSERT INTO result_rows VALUES (1, 'CODE', 1, 1, 2.7, NULL, "
                               "NULL, 'A', '', '')")
-        for sql in ("UPDATE result_rows SET value = 0", "DELETE FROM result_rows"):
-            with pytest.raises(sqlite3.DatabaseError, match="never"):
-                ledger.db.execute(sql)
+        assert [(r.code, r.trial) for r in ledger.result_rows(1)] == [("CODE", 1), ("CODE", 2)]

@@ -539,22 +539,6 @@ def test_windows_line_ends_and_byte_order_mark(planned, runner, tmp_path):
     assert "18 values" in result.stdout
 
 
-def test_ledger_of_schema_1_is_upgraded_and_keeps_its_rows(tmp_path):
-    from planner import ledger as ledger_module
-
-    db = sqlite3.connect(tmp_path / "ledger.sqlite")
-    for statement in ledger_module._split_sql(ledger_module._MIGRATIONS[0]):
-        db.execute(statement)
-    db.execute("PRAGMA user_version = 1")
-    db.execute("INSERT INTO events (round, kind, at, detail) VALUES ('r', 'planned', 't', '{}')")
-    db.commit()
-    db.close()
-    with Ledger.open(tmp_path) as ledger:
-        assert [e.kind for e in ledger.events("r")] == ["planned"]
-        assert ledger.submissions("r") == []
-        assert ledger.db.execute("PRAGMA user_version").fetchone()[0] >= 2
-
-
 def test_received_rows_cannot_be_changed(planned, runner, tmp_path):
     receive(runner, planned, write(tmp_path, "kal.csv", filled(planned, "kal")))
     with Ledger.open(planned) as ledger:
