@@ -24,13 +24,7 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict",
-           "report_slots", "round_slots", "slot_runs", "slot_of", "split_slot"]
-
-
-def slot_of(lab: str, visit: str | None) -> str:
-    """Return the submission slot of a laboratory's stop: its id, or ``host@visit`` for the
-    host's later stops of a circulating set (its first stop is the host's own id)."""
-    return lab if visit in (None, "start") else circulate.station_key(lab, visit)
+           "report_slots", "round_slots", "slot_runs", "split_slot"]
 
 
 def split_slot(slot: str) -> tuple[str, str | None]:
@@ -43,7 +37,7 @@ def report_slots(manifest: Mapping[str, Any]) -> list[str]:
     """Return every slot a result form is due for: the laboratories (manifest order), or for a
     circulating set its stops in route order, the host's later stops as ``host@visit``."""
     if manifest.get("mode") == "circulate" and manifest.get("route"):
-        return [slot_of(str(s["lab"]), s.get("visit")) for s in manifest["route"]]
+        return [circulate.station_key(str(s["lab"]), s.get("visit")) for s in manifest["route"]]
     return list(manifest["labs"])
 
 
@@ -76,7 +70,7 @@ def round_slots(study: Study, ledger: Ledger, round_id: str, *,
         return report_slots(manifest)
     current = ledger.current_round(round_id)
     if study.design.mode == "circulate" and current is not None:
-        return [slot_of(lab, visit) for lab, visit in circulate.stops(study, current.host)]
+        return [circulate.station_key(lab, visit) for lab, visit in circulate.stops(study, current.host)]
     return [lab.id for lab in study.laboratories]
 
 

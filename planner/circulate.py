@@ -83,8 +83,10 @@ class Route:
 
 
 def station_key(lab: str, visit: str | None) -> str:
-    """Return the id of a stop: the laboratory, or ``host@visit`` for the host's stops."""
-    return lab if visit is None else f"{lab}@{visit}"
+    """Return the id of a stop: the laboratory itself (the host's first stop too), or
+    ``host@visit`` for the host's later stops. Run orders, result forms and submissions
+    are all keyed by it."""
+    return lab if visit in (None, "start") else f"{lab}@{visit}"
 
 
 def _cost(study: Study, order: tuple[str, ...]) -> int:

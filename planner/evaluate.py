@@ -38,7 +38,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, draw, plan, seal
+from planner import circulate, codes, draw, plan, seal
 from planner.errors import DataError, LedgerError, Where
 
 if TYPE_CHECKING:
@@ -403,7 +403,7 @@ def _missing_circulating(manifest: Mapping[str, Any], key: Mapping[str, Any],
     have: set[tuple[str, str, int]] = set()
     failed: set[tuple[str, str, int]] = set()
     for r in accepted:
-        slot = audit.slot_of(str(_field(r, "lab")), _field(r, "visit"))
+        slot = circulate.station_key(str(_field(r, "lab")), _field(r, "visit"))
         trial = _field(r, "trial")
         if trial in (None, ""):
             continue

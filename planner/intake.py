@@ -41,7 +41,7 @@ from datetime import date, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, forms, plan
+from planner import circulate, codes, forms, plan
 from planner.errors import CodeError, IntakeError, LedgerError, PlannerError, Where
 from planner.ledger import ResultRow
 
@@ -296,10 +296,9 @@ def _check_visit(manifest: Mapping[str, Any], form: forms.Form, lab_id: str) -> 
 
 def _form_slot(form: forms.Form, lab_id: str) -> str:
     """Return the submission slot of a checked form: its laboratory or ``host@visit``."""
-    from planner import audit
 
     found = form.ident("visit")
-    return audit.slot_of(lab_id, found[0].strip().lower() if found else None)
+    return circulate.station_key(lab_id, found[0].strip().lower() if found else None)
 
 
 def _slot_text(slot: str) -> str:

@@ -69,8 +69,8 @@ class RoundPlan:
 def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int], tuple[str, ...]]:
     """Return the materials in run order for every (laboratory or stop, trial) of a round.
 
-    In circulating mode the slots are the route's stops (``host@start`` and so
-    on for the host's visits); otherwise the laboratories.
+    In circulating mode the slots are the route's stops (the host's later stops
+    as ``host@middle`` and ``host@end``); otherwise the laboratories.
     """
     d = study.design
     if d.mode == "circulate":
@@ -249,8 +249,7 @@ def _circulating_manifest(study: Study, plan: RoundPlan) -> dict[str, Any]:
 
     labs = {}
     for lab in study.laboratories:
-        key = circulate.station_key(lab.id, "start" if lab.id == plan.host else None)
-        labs[lab.id] = {"trials": trials(key), "spares": [], **dates.get(lab.id, {})}
+        labs[lab.id] = {"trials": trials(lab.id), "spares": [], **dates.get(lab.id, {})}
     visits = {s.visit: trials(s.key) for s in plan.route.stations
               if s.visit is not None and s.visit != "start"}
     return {
@@ -284,9 +283,7 @@ def expected_runs(study: Study, *, host: str, secret: bytes,
 def manifest_runs(manifest: dict[str, Any]) -> dict[str, list[list[str]]]:
     """Return the run orders a manifest published, keyed like ``expected_runs``."""
     host = manifest["host"]
-    circulating = manifest.get("mode") == "circulate"
-    out = {circulate.station_key(lab, "start") if circulating and lab == host else lab:
-           entry["trials"] for lab, entry in manifest["labs"].items()}
+    out = {lab: entry["trials"] for lab, entry in manifest["labs"].items()}
     out.update({circulate.station_key(host, visit): trials
                 for visit, trials in manifest.get("host_visits", {}).items()})
     return out

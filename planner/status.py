@@ -17,7 +17,7 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, intake, plan
+from planner import circulate, codes, intake, plan
 from planner.errors import LedgerError
 
 if TYPE_CHECKING:
@@ -93,7 +93,8 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
     """Return one status row per stop of a circulating set, in route order."""
     from planner import audit
 
-    stations = {audit.slot_of(str(s["lab"]), s.get("visit")): s for s in manifest["route"]}
+    stations = {circulate.station_key(str(s["lab"]), s.get("visit")): s
+                for s in manifest["route"]}
     rows = []
     for slot in audit.report_slots(manifest):
         runs = audit.slot_runs(manifest, slot)

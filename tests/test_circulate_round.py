@@ -23,7 +23,7 @@ from datetime import UTC, date, datetime, time, timedelta
 import pytest
 from conftest import PASSPHRASE, ROOT, SECRET
 
-from planner import audit, codes, evaluate, forms, intake, plan, spares, spec, status
+from planner import audit, circulate, codes, evaluate, forms, intake, plan, spares, spec, status
 from planner.errors import IntakeError, LedgerError
 from planner.ledger import Ledger
 
@@ -51,7 +51,7 @@ class _Clock:
 
 
 def _slot(station):
-    return audit.slot_of(station["lab"], station["visit"])
+    return circulate.station_key(station["lab"], station["visit"])
 
 
 def _simulate(study, manifest, key):

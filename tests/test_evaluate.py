@@ -15,7 +15,6 @@ from planner import audit, evaluate, spec
 from planner import plan as planning
 from planner.errors import DataError, LedgerError
 from planner.ledger import Ledger
-from planner.ledger import ResultRow as LedgerRow
 
 ROUND = "2027-1"
 
