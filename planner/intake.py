@@ -186,21 +186,7 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         code = _check_code(row, where, found, expected=expected, replaced=replaced,
                            owners=owners, lab=form_lab, round_id=str(manifest["round"]),
                            elsewhere=elsewhere, first_seen=first_seen, form=form)
-        value = _quantity(row.get("value"), decimal, "value", where, found)
-        uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
-        remarks = forms.cell_text(row.get("remarks"))
-        if value is None and forms.cell_text(row.get("value")) == "":
-            if not remarks:
-                found.append(IntakeError(
-                    "value is empty; enter the result, or say in remarks why there is none",
-                    where))
-            if uncertainty is not None:
-                found.append(IntakeError("an uncertainty is given without a value; give the "
-                                         "value too, or leave both empty", where))
-        if uncertainty is not None and uncertainty <= 0:
-            found.append(IntakeError(f"uncertainty {row.get('uncertainty')!r} is not above 0; "
-                                     "give the expanded uncertainty (k = 2), or leave it empty",
-                                     where))
+        value, uncertainty, remarks = _check_values(row, decimal, where, found)
         tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
         if code is not None and code in expected:
             _check_slot(row, where, found, code=code, slot=expected[code])
@@ -339,21 +325,7 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
         hit = _check_artefact(row, where, found, artefacts=artefacts, trials=len(runs),
                               round_id=str(manifest["round"]), elsewhere=elsewhere,
                               first_seen=first_seen, form=form)
-        value = _quantity(row.get("value"), decimal, "value", where, found)
-        uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
-        remarks = forms.cell_text(row.get("remarks"))
-        if value is None and forms.cell_text(row.get("value")) == "":
-            if not remarks:
-                found.append(IntakeError(
-                    "value is empty; enter the result, or say in remarks why there is none",
-                    where))
-            if uncertainty is not None:
-                found.append(IntakeError("an uncertainty is given without a value; give the "
-                                         "value too, or leave both empty", where))
-        if uncertainty is not None and uncertainty <= 0:
-            found.append(IntakeError(f"uncertainty {row.get('uncertainty')!r} is not above 0; "
-                                     "give the expanded uncertainty (k = 2), or leave it empty",
-                                     where))
+        value, uncertainty, remarks = _check_values(row, decimal, where, found)
         tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
         if hit is not None:
             _check_slot(row, where, found, code=hit[0], slot=(hit[1], expected[hit]))
@@ -429,6 +401,26 @@ def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError],
         return None
     first_seen[(code, trial)] = row.line
     return code, trial
+
+
+def _check_values(row: forms.FormRow, decimal: str, where: Where,
+                  found: list[PlannerError]) -> tuple[float | None, float | None, str]:
+    """Return (value, expanded uncertainty, remarks) of a row, adding its problems to ``found``."""
+    value = _quantity(row.get("value"), decimal, "value", where, found)
+    uncertainty = _quantity(row.get("uncertainty"), decimal, "uncertainty", where, found)
+    remarks = forms.cell_text(row.get("remarks"))
+    if value is None and forms.cell_text(row.get("value")) == "":
+        if not remarks:
+            found.append(IntakeError(
+                "value is empty; enter the result, or say in remarks why there is none", where))
+        if uncertainty is not None:
+            found.append(IntakeError("an uncertainty is given without a value; give the "
+                                     "value too, or leave both empty", where))
+    if uncertainty is not None and uncertainty <= 0:
+        found.append(IntakeError(f"uncertainty {row.get('uncertainty')!r} is not above 0; "
+                                 "give the expanded uncertainty (k = 2), or leave it empty",
+                                 where))
+    return value, uncertainty, remarks
 
 
 def _check_columns(form: forms.Form) -> list[PlannerError]:

@@ -11,7 +11,7 @@ still sealed.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -21,7 +21,7 @@ from planner import circulate, codes, intake, plan
 from planner.errors import LedgerError
 
 if TYPE_CHECKING:
-    from planner.ledger import Ledger
+    from planner.ledger import Ledger, ResultRow, Submission
     from planner.spec import Study
 
 __all__ = ["RoundStatus", "round_status_table"]
@@ -63,26 +63,12 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
             continue
         expected = intake.expected_codes(manifest, lab.id, swaps)
         history = ledger.submissions(round_id, lab.id)
-        last = history[-1] if history else None
-        got = ledger.result_rows(last.row) if last else []
+        got = ledger.result_rows(history[-1].row) if history else []
         reported = {r.code for r in got}
         missing = [codes.format(c) for c in expected if c not in reported]
-        rows.append({
-            "lab": lab.id,
-            "received": last is not None,
-            "version": last.version if last else None,
-            "received_at": last.received_at if last else None,
-            "values": sum(1 for r in got if r.value is not None),
-            "failed": sum(1 for r in got if r.value is None),
-            "expected": len(expected),
-            "missing": len(missing),
-            "missing_codes": missing,
-            "late": last.late if last else today > due,
-            "after_unseal": any(s.after_unseal for s in history),
-            "spares_issued": sum(1 for s in swaps.values()
-                                 if s in manifest["labs"][lab.id].get("spares", ())),
-            "days_left": None if last else (due - today).days,
-        })
+        spares = sum(1 for s in swaps.values() if s in manifest["labs"][lab.id].get("spares", ()))
+        rows.append(_row(lab.id, history, got, expected=len(expected), missing=missing,
+                         spares=spares, today=today, due=due))
     waiting = tuple(audit.missing_labs(study, ledger, round_id))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
                        tuple(rows))
@@ -100,28 +86,36 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
         runs = audit.slot_runs(manifest, slot)
         expected = [(code, trial) for trial, run in enumerate(runs, start=1) for code in run]
         history = ledger.submissions(round_id, slot)
-        last = history[-1] if history else None
-        got = ledger.result_rows(last.row) if last else []
+        got = ledger.result_rows(history[-1].row) if history else []
         reported = {(r.code, r.trial) for r in got}
         missing = [f"{codes.format(c)} (trial {t})" for c, t in expected if (c, t) not in reported]
         station = stations.get(slot, {})
         rows.append({
-            "lab": slot,
+            **_row(slot, history, got, expected=len(expected), missing=missing, spares=0,
+                   today=today, due=due),
             "laboratory": station.get("lab", slot),
             "visit": station.get("visit"),
             "test_end": station.get("test_end"),
-            "received": last is not None,
-            "version": last.version if last else None,
-            "received_at": last.received_at if last else None,
-            "values": sum(1 for r in got if r.value is not None),
-            "failed": sum(1 for r in got if r.value is None),
-            "expected": len(expected),
-            "missing": len(missing),
-            "missing_codes": missing,
-            "late": last.late if last else today > due,
-            "after_unseal": any(s.after_unseal for s in history),
-            "spares_issued": 0,
-            "days_left": None if last else (due - today).days,
         })
     return rows
 
+
+def _row(slot: str, history: Sequence[Submission], got: Sequence[ResultRow], *, expected: int,
+         missing: list[str], spares: int, today: date, due: date) -> dict[str, Any]:
+    """Return the status row of one laboratory (or stop) from its submissions."""
+    last = history[-1] if history else None
+    return {
+        "lab": slot,
+        "received": last is not None,
+        "version": last.version if last else None,
+        "received_at": last.received_at if last else None,
+        "values": sum(1 for r in got if r.value is not None),
+        "failed": sum(1 for r in got if r.value is None),
+        "expected": expected,
+        "missing": len(missing),
+        "missing_codes": missing,
+        "late": last.late if last else today > due,
+        "after_unseal": any(s.after_unseal for s in history),
+        "spares_issued": spares,
+        "days_left": None if last else (due - today).days,
+    }

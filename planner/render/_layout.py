@@ -24,6 +24,7 @@ __all__ = [
     "BOLD",
     "FONT",
     "INK",
+    "sign_lines",
     "MONO",
     "MONO_REGULAR",
     "MUTED",
@@ -307,3 +308,24 @@ def table(rows: Sequence[Sequence[Any]], widths: Sequence[float], style: Any, **
     made = Table([list(r) for r in rows], colWidths=list(widths), hAlign="LEFT", **kwargs)
     made.setStyle(style)
     return made
+
+
+def sign_lines(width: float, labels: Sequence[str], *, row_height: float = 10 * _MM,
+               columns: Sequence[float] = (0.30, 0.30, 0.15, 0.25)) -> Any:
+    """Return a table of signature lines: one row per label, with name, date and signature."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.platypus import Paragraph
+
+    st = styles()
+    rows = [[Paragraph(label, st["label"]), "", "", ""] for label in labels]
+    return table(
+        [[Paragraph("", st["label"]), Paragraph("name", st["label"]),
+          Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
+        [c * width for c in columns],
+        table_style(header=False, extra=[
+            ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(INK)),
+            ("LINEBELOW", (0, 0), (-1, 0), 0, HexColor("#ffffff")),
+            ("LINEBELOW", (0, 1), (0, -1), 0, HexColor("#ffffff")),
+            ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
+            ("LINEAFTER", (1, 1), (2, -1), 6, HexColor("#ffffff")),
+        ]), rowHeights=[5 * _MM] + [row_height] * len(labels))

@@ -101,24 +101,6 @@ def _role(station: dict[str, Any]) -> tuple[str, str, str]:
              "and pass it on."), "received by", "passed on by")
 
 
-def _sign_lines(st: dict[str, Any], width: float, labels: tuple[str, str]) -> Any:
-    from reportlab.lib.colors import HexColor
-    from reportlab.platypus import Paragraph
-
-    rows = [[Paragraph(label, st["label"]), "", "", ""] for label in labels]
-    return _layout.table(
-        [[Paragraph("", st["label"]), Paragraph("name", st["label"]),
-          Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
-        [0.30 * width, 0.30 * width, 0.15 * width, 0.25 * width],
-        _layout.table_style(header=False, extra=[
-            ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(_layout.INK)),
-            ("LINEBELOW", (0, 0), (-1, 0), 0, HexColor("#ffffff")),
-            ("LINEBELOW", (0, 1), (0, -1), 0, HexColor("#ffffff")),
-            ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
-            ("LINEAFTER", (1, 1), (2, -1), 6, HexColor("#ffffff")),
-        ]), rowHeights=[5 * _MM] + [10 * _MM] * len(labels))
-
-
 def _route_line(manifest: dict[str, Any], index: int) -> str:
     """Return the route as one line, this stop in bold."""
     parts = []
@@ -233,7 +215,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], station: dict[str
 
     story.append(KeepTogether([
         Paragraph("Signatures", st["h2"]),
-        _sign_lines(st, width, (first_signer, second_signer))]))
+        _layout.sign_lines(width, (first_signer, second_signer))]))
 
     storage = sorted({m.storage for m in study.materials})
     story += [CondPageBreak(45 * _MM),

@@ -38,25 +38,6 @@ def _address(lab: Lab, heading: str, st: dict[str, Any]) -> list[Any]:
             Paragraph(contact, st["small"])]
 
 
-def _sign_lines(st: dict[str, Any], width: float) -> Any:
-    from reportlab.lib.colors import HexColor
-    from reportlab.platypus import Paragraph
-
-    rows = [[Paragraph(label, st["label"]), "", "", ""] for label in
-            ("packed by (host)", "checked by (host)", "received by (laboratory)")]
-    return _layout.table(
-        [[Paragraph("", st["label"]), Paragraph("name", st["label"]),
-          Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
-        [0.28 * width, 0.30 * width, 0.16 * width, 0.26 * width],
-        _layout.table_style(header=False, extra=[
-        ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(_layout.INK)),
-        ("LINEBELOW", (0, 0), (-1, 0), 0, HexColor("#ffffff")),
-        ("LINEBELOW", (0, 1), (0, -1), 0, HexColor("#ffffff")),
-        ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
-        ("LINEAFTER", (1, 1), (2, -1), 6, HexColor("#ffffff")),
-    ]), rowHeights=[5 * _MM] + [11 * _MM] * 3)
-
-
 def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, Any],
            lab_id: str, *, paper: str) -> Path:
     """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``."""
@@ -141,7 +122,11 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
     else:
         story.append(Paragraph("No unit in this parcel carries a hazard word.", st["body"]))
     story.append(Paragraph(SDS_NOTE, st["small"]))
-    story.append(KeepTogether([Paragraph("Signatures", st["h2"]), _sign_lines(st, width)]))
+    signers = ("packed by (host)", "checked by (host)", "received by (laboratory)")
+    story.append(KeepTogether([
+        Paragraph("Signatures", st["h2"]),
+        _layout.sign_lines(width, signers, row_height=11 * _MM,
+                           columns=(0.28, 0.30, 0.16, 0.26))]))
 
     running = _layout.Running(study.id, study.study.title, manifest["round"],
                               f"packing list · {lab.id}")
