@@ -360,15 +360,8 @@ def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError],
     Each artefact is measured once in every trial, so the trial column says
     which measurement a row is and must be given.
     """
-    text = forms.cell_text(row.get("code"))
-    if not text:
-        found.append(IntakeError("the row has no code; every result needs the code from the "
-                                 "artefact's label", where))
-        return None
-    try:
-        code = codes.validate(text, where=where)
-    except CodeError as exc:
-        found.append(exc)
+    code = _read_code(row, where, found, label="artefact's label")
+    if code is None:
         return None
     shown = codes.format(code)
     if code not in artefacts:
@@ -442,21 +435,29 @@ def _check_columns(form: forms.Form) -> list[PlannerError]:
     return out
 
 
+def _read_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
+               label: str) -> str | None:
+    """Return the row's code, compact and checked; else note why not and return None."""
+    text = forms.cell_text(row.get("code"))
+    if not text:
+        found.append(IntakeError("the row has no code; every result needs the code from the "
+                                 f"{label}", where))
+        return None
+    try:
+        return codes.validate(text, where=where)
+    except CodeError as exc:
+        found.append(exc)
+        return None
+
+
 def _check_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
                 expected: Mapping[str, tuple[int, int]], replaced: Mapping[str, str],
                 owners: Mapping[str, tuple[str, str]], lab: str, round_id: str,
                 elsewhere: Mapping[str, str], first_seen: dict[str, int],
                 form: forms.Form) -> str | None:
     """Return the row's compact code if it is this laboratory's; else note why and return None."""
-    text = forms.cell_text(row.get("code"))
-    if not text:
-        found.append(IntakeError("the row has no code; every result needs the code from the "
-                                 "unit's label", where))
-        return None
-    try:
-        code = codes.validate(text, where=where)
-    except CodeError as exc:
-        found.append(exc)
+    code = _read_code(row, where, found, label="unit's label")
+    if code is None:
         return None
     shown = codes.format(code)
     if code in first_seen:

@@ -24,6 +24,7 @@ __all__ = [
     "BOLD",
     "FONT",
     "INK",
+    "hazard_cautions",
     "sign_lines",
     "MONO",
     "MONO_REGULAR",
@@ -329,3 +330,17 @@ def sign_lines(width: float, labels: Sequence[str], *, row_height: float = 10 * 
             ("VALIGN", (0, 1), (-1, -1), "BOTTOM"),
             ("LINEAFTER", (1, 1), (2, -1), 6, HexColor("#ffffff")),
         ]), rowHeights=[5 * _MM] + [row_height] * len(labels))
+
+
+def hazard_cautions(hazards: dict[str, str], *, none_text: str) -> list[Any]:
+    """Return the "Hazard cautions" heading and one bullet per hazard word, or ``none_text``."""
+    from reportlab.platypus import Paragraph
+
+    st = styles()
+    out: list[Any] = [Paragraph("Hazard cautions", st["h2"])]
+    if hazards:
+        out += [Paragraph(f"<b>{escape(word)}</b>: {escape(note)}", st["bullet"], bulletText="•")
+                for word, note in sorted(hazards.items())]
+    else:
+        out.append(Paragraph(none_text, st["body"]))
+    return out

@@ -228,12 +228,8 @@ def render(path: Path, study: Study, manifest: dict[str, Any], station: dict[str
     for m in study.materials:
         if m.hazard:
             hazards[m.hazard.word] = m.hazard.note
-    story.append(Paragraph("Hazard cautions", st["h2"]))
-    if hazards:
-        story += [Paragraph(f"<b>{esc(word)}</b>: {esc(note)}", st["bullet"], bulletText="•")
-                  for word, note in sorted(hazards.items())]
-    else:
-        story.append(Paragraph("No artefact of this set carries a hazard word.", st["body"]))
+    story += _layout.hazard_cautions(
+        hazards, none_text="No artefact of this set carries a hazard word.")
     story.append(Paragraph(SDS_NOTE, st["small"]))
     if visit is None:
         story += [Spacer(1, 3 * _MM), Paragraph(

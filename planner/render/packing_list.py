@@ -115,12 +115,8 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
         hazard = materials[unit["material"]].hazard
         if hazard:
             hazards[hazard.word] = hazard.note
-    story.append(Paragraph("Hazard cautions", st["h2"]))
-    if hazards:
-        story += [Paragraph(f"<b>{esc(word)}</b>: {esc(note)}", st["bullet"], bulletText="•")
-                  for word, note in sorted(hazards.items())]
-    else:
-        story.append(Paragraph("No unit in this parcel carries a hazard word.", st["body"]))
+    story += _layout.hazard_cautions(
+        hazards, none_text="No unit in this parcel carries a hazard word.")
     story.append(Paragraph(SDS_NOTE, st["small"]))
     signers = ("packed by (host)", "checked by (host)", "received by (laboratory)")
     story.append(KeepTogether([
