@@ -498,6 +498,9 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
         _print_json(result)
         return
     typer.echo(stats.summary_text(result), nl=False)
+    drift = result.get("drift") or {}
+    for material, check in (drift.get("materials") or {}).items():
+        typer.echo(f"drift of artefact {material} between the host's stops: {check['verdict']}")
     typer.echo(f"\nwrote {folder}: {evaluation.REPORT_NAME}, {evaluation.STATISTICS_NAME}, "
                f"{evaluation.RESULTS_NAME} and {len(study.laboratories)} letters")
 

@@ -475,3 +475,15 @@ def test_ledger_keeps_one_result_row_per_code_and_trial(tmp_path):
             ledger.db.execute("INSERT INTO result_rows VALUES (1, 'CODE', 1, 1, 2.7, NULL, "
                               "NULL, 'A', '', '')")
         assert [(r.code, r.trial) for r in ledger.result_rows(1)] == [("CODE", 1), ("CODE", 2)]
+
+
+def test_evaluate_from_the_cli_names_the_drift_verdicts(r, tmp_path):
+    from typer.testing import CliRunner
+
+    from planner.cli import app
+
+    folder = tmp_path / "study"
+    shutil.copytree(r["study_dir"], folder)
+    result = CliRunner().invoke(app, ["evaluate", str(folder), "--round", ROUND])
+    assert result.exit_code == 0, result.output
+    assert f"drift of artefact {DRIFTING} between the host's stops: fail" in result.stdout
