@@ -54,6 +54,7 @@ __all__ = [
     "STAGING_DIR",
     "Receipt",
     "check_form",
+    "condense",
     "expected_codes",
     "receive",
     "settle_results",
@@ -396,6 +397,27 @@ def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError],
     return code, trial
 
 
+def condense(problems: Sequence[PlannerError], *, repeat: int = 3) -> list[str]:
+    """Return one line per problem, but one line for a problem that repeats on many rows.
+
+    A message found on ``repeat`` or more lines of the same file is printed once, at its
+    first line, with how many more lines have it and the last of them.
+    """
+    groups: dict[tuple[str | None, str], list[PlannerError]] = {}
+    for p in problems:
+        groups.setdefault((p.where.file, p.message), []).append(p)
+    out = []
+    for p in problems:
+        same = groups[(p.where.file, p.message)]
+        if len(same) < repeat:
+            out.append(str(p))
+        elif p is same[0]:
+            last = same[-1].where.line
+            out.append(f"{p} (and {len(same) - 1} more rows with the same problem, "
+                       f"up to line {last})")
+    return out
+
+
 def _check_values(row: forms.FormRow, decimal: str, where: Where,
                   found: list[PlannerError]) -> tuple[float | None, float | None, str]:
     """Return (value, expanded uncertainty, remarks) of a row, adding its problems to ``found``."""
@@ -713,7 +735,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
                                         "laboratory at a time", Where(form.path)))
         by_lab[checked.lab] = form.path
     if problems:
-        raise IntakeError("\n".join(str(p) for p in problems))
+        raise IntakeError("\n".join(condense(problems)))
     due = date.fromisoformat(manifest["dates"]["results_due"])
     plans = []
     for form, checked in accepted:

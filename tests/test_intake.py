@@ -546,3 +546,14 @@ def test_received_rows_cannot_be_changed(planned, runner, tmp_path):
                     "UPDATE result_rows SET value = 0", "DELETE FROM result_rows"):
             with pytest.raises(sqlite3.DatabaseError, match="never"):
                 ledger.db.execute(sql)
+
+
+def test_a_problem_on_many_rows_is_one_line():
+    from planner.errors import IntakeError, Where
+
+    message = "date 2027-01-20 is after the day the form was received"
+    problems = [IntakeError(message, Where("f.csv", n)) for n in (11, 12, 13, 14)] + [IntakeError("other", Where("f.csv", 12))]
+    assert intake.condense(problems) == [
+        "f.csv:11: date 2027-01-20 is after the day the form was received (and 3 more rows with "
+        "the same problem, up to line 14)", "f.csv:12: other"]
+    assert intake.condense(problems[:2]) == [str(p) for p in problems[:2]]
