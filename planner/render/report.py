@@ -660,12 +660,12 @@ def _results(d: _Doc, s: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[A
     return out
 
 
-def _methods(d: _Doc) -> list[Any]:
-    from planner.stats import gauge_rr, iso5725_2, iso13528
-
+def _methods(d: _Doc, statistics: Mapping[str, Any]) -> list[Any]:
     out: list[Any] = [d.p("Methods", "h2")]
-    for mod in (gauge_rr, iso5725_2, iso13528):
-        out.append(d.p(_layout.escape(str(getattr(mod, "SOURCE", ""))), "small"))
+    for name in ("gauge_rr", "iso5725_2", "iso13528"):
+        source = (statistics.get("sources") or {}).get(name)
+        if source:
+            out.append(d.p(_layout.escape(str(source)), "small"))
     return out
 
 
@@ -684,7 +684,7 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
     story += _gauge(d, s)
     if len(s["labs"]) <= DETAIL_LABS:
         story += _results(d, s, rows)
-    story += _methods(d)
+    story += _methods(d, s)
     running = _layout.Running(s["study"], s["title"], s["round"], "round report",
                               "for the coordinator: names every laboratory")
     return _layout.build(path, story, paper=paper, running=running,

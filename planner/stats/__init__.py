@@ -215,6 +215,8 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                                   operators=[labs[i] for i in o_lab])  # type: ignore[index]
         out["grr_anova"] = _plain(study.anova)
         out["grr_range"] = _plain(study.range)
+    out["sources"] = {"anova": anova.SOURCE, "gauge_rr": gauge_rr.SOURCE,
+                      "iso5725_2": iso5725_2.SOURCE, "iso13528": iso13528.SOURCE}
     return out
 
 

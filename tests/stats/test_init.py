@@ -22,7 +22,7 @@ def _aiag_rows(read_table):
 
 def test_result_has_the_documented_structure_and_is_json(read_table):
     result = stats.evaluate_table(_aiag_rows(read_table), tolerance=4.0)
-    assert set(result) == {"materials", "labs", "anova", "grr_anova", "grr_range",
+    assert set(result) == {"materials", "labs", "anova", "grr_anova", "grr_range", "sources",
                            "precision", "scores"}
     assert result["labs"] == ["A", "B", "C"] and len(result["materials"]) == 10
     json.dumps(result, allow_nan=False)
