@@ -308,7 +308,10 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
     artefacts = frozenset(code for code, _ in expected)
     problems: list[PlannerError] = list(_check_columns(form))
     decimal = study.lab(form_lab).decimal
-    dates = manifest["dates"]
+    # Each stop tests in its own window while it holds the set.
+    dates = next((s for s in manifest["route"]
+                  if circulate.station_key(str(s["lab"]), s.get("visit")) == slot),
+                 manifest["dates"])
     start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
     first_seen: dict[tuple[str, int], int] = {}
     kept: list[ResultRow] = []

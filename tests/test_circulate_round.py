@@ -487,3 +487,16 @@ def test_evaluate_from_the_cli_names_the_drift_verdicts(r, tmp_path):
     result = CliRunner().invoke(app, ["evaluate", str(folder), "--round", ROUND])
     assert result.exit_code == 0, result.output
     assert f"drift of artefact {DRIFTING} between the host's stops: fail" in result.stdout
+
+
+def test_dates_are_checked_against_the_stop_own_window(r, tmp_path):
+    station = next(s for s in r["manifest"]["route"] if s["lab"] == "hel")
+    before = (date.fromisoformat(station["test_start"]) - timedelta(days=1)).isoformat()
+    text = _filled(r, "hel")
+    lines = text.splitlines()
+    row = next(i for i, line in enumerate(lines) if line[:1].isdigit())
+    cells = lines[row].split(";")
+    cells[5] = before  # the round had started, but the set had not reached hel yet
+    lines[row] = ";".join(cells)
+    problems = _check(r, tmp_path, "\n".join(lines) + "\n")
+    assert len(problems) == 1 and f"date {before} is before the test window" in problems[0]
