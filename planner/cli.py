@@ -32,7 +32,8 @@ app = typer.Typer(
 
 _F = TypeVar("_F", bound=Callable[..., Any])
 
-StudyDir = Annotated[Path, typer.Argument(help="The study folder (holds study.yaml).")]
+StudyDir = Annotated[Path, typer.Argument(metavar="STUDY_DIR",
+                                          help="The study folder (holds study.yaml).")]
 RoundOpt = Annotated[str, typer.Option("--round", help="The round id, e.g. 2027-1.")]
 PassFile = Annotated[Path | None, typer.Option(
     "--passphrase-file", help="Read the key passphrase from this file (first line). "
@@ -590,19 +591,21 @@ def print_documents(
         name = sheet or study.study.label_sheet
         from planner.render import _sheets
 
-        geometry = _sheets.load(name, [study_dir / "sheets"])
+        geometry = _sheets.load(name, [study_dir / "sheets"], field="--sheet")
         path = render.print_calibration(study_dir / f"calibration-{name}.pdf", geometry, offset)
         typer.echo(f"wrote {path}; print it at 100 % on plain paper and lay it on a sheet")
         return
     if round_id is None:
         raise PlannerError("--round is required (or use --calibration)")
     folder = planning.round_dir(study_dir, round_id)
-    planning.read_manifest(folder)  # a clear error for a round never planned
+    chosen = [c for c in (codes_ or "").split(",") if c.strip()] or None
+    # mistakes in the options are named before the passphrase is asked
+    render.check_options(study, study_dir, planning.read_manifest(folder), only=only, lab=lab,
+                         codes=chosen, sheet=sheet)
     if (folder / seal.KEY_NAME).is_file():
         key = seal.read_key_json(folder)
     else:
         key = seal.open_key(folder, _passphrase(passphrase_file, confirm=False))
-    chosen = [c for c in (codes_ or "").split(",") if c.strip()] or None
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
                                workers=min(2, os.cpu_count() or 1))

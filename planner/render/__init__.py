@@ -27,9 +27,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
+    from planner.render._sheets import Geometry
     from planner.spec import Study
 
-__all__ = ["KINDS", "print_calibration", "print_round"]
+__all__ = ["KINDS", "check_options", "print_calibration", "print_round"]
 
 KINDS = ("labels", "prep", "packing", "runsheets", "forms")
 """The kinds of document ``print_round(only=...)`` accepts."""
@@ -49,6 +50,40 @@ def _check_key(manifest: dict[str, Any], key: dict[str, Any]) -> None:
                         "was changed")
 
 
+def check_options(study: Study, study_dir: Path, manifest: dict[str, Any], *,
+                  only: str | None = None, lab: str | None = None,
+                  codes: Sequence[str] | None = None,
+                  sheet: str | None = None) -> tuple[set[str], Geometry | None]:
+    """Return the kinds of document to print and the label geometry (None without labels).
+
+    Raises PlannerError naming the option (--only, --lab, --codes, --sheet) that is wrong,
+    so that a caller can check before it asks for the passphrase.
+    """
+    from planner.errors import PlannerError, Where
+    from planner.render import _sheets
+
+    if only is not None and only not in KINDS:
+        raise PlannerError(f"{only!r} is not a kind of document; use one of {', '.join(KINDS)}",
+                           Where(field="--only"))
+    if lab is not None and lab not in manifest["labs"]:
+        raise PlannerError(f"{lab!r} is not a laboratory of round {manifest['round']!r}; use "
+                           f"one of {', '.join(manifest['labs'])}", Where(field="--lab"))
+    if codes and only not in (None, "labels"):
+        raise PlannerError("--codes reprints labels; leave out --only or use --only labels",
+                           Where(field="--codes"))
+    wanted = {"labels"} if codes else ({only} if only else set(KINDS))
+    if manifest.get("mode") == "circulate" and lab and "labels" in wanted:
+        if only == "labels" or codes:
+            raise PlannerError("a circulating set's labels are printed once, by the host, one "
+                               "per artefact; leave out --lab", Where(field="--lab"))
+        wanted.discard("labels")
+    geometry = None
+    if "labels" in wanted:
+        geometry = _sheets.load(sheet or study.study.label_sheet, [Path(study_dir) / "sheets"],
+                                field="--sheet" if sheet else "study.label_sheet")
+    return wanted, geometry
+
+
 def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, Any],
                 only: str | None = None, lab: str | None = None,
                 codes: Sequence[str] | None = None, start_at: int = 1,
@@ -64,35 +99,20 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     PlannerError for an unknown kind, laboratory or sheet.
     """
     from planner import plan
-    from planner.errors import PlannerError, Where
-    from planner.render import _sheets, labels, packing_list, prep_sheet, result_form, run_sheet
+    from planner.render import labels, packing_list, prep_sheet, result_form, run_sheet
 
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
     _check_key(manifest, key)
-    if only is not None and only not in KINDS:
-        raise PlannerError(f"{only!r} is not a kind of document; use one of {', '.join(KINDS)}",
-                           Where(field="--only"))
-    if lab is not None and lab not in manifest["labs"]:
-        raise PlannerError(f"{lab!r} is not a laboratory of round {round_id!r}; use one of "
-                           f"{', '.join(manifest['labs'])}", Where(field="--lab"))
-    if codes and only not in (None, "labels"):
-        raise PlannerError("--codes reprints labels; leave out --only or use --only labels",
-                           Where(field="--codes"))
-    wanted = {"labels"} if codes else ({only} if only else set(KINDS))
+    wanted, geometry = check_options(study, study_dir, manifest, only=only, lab=lab,
+                                     codes=codes, sheet=sheet)
     circulating = manifest.get("mode") == "circulate"
-    if circulating and lab and "labels" in wanted:
-        if only == "labels" or codes:
-            raise PlannerError("a circulating set's labels are printed once, by the host, one "
-                               "per artefact; leave out --lab", Where(field="--lab"))
-        wanted.discard("labels")
     paper = study.study.paper
     lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
     title = f"{study.id} round {round_id}"
     out: list[Path] = []
 
-    if "labels" in wanted:
-        geometry = _sheets.load(sheet or study.study.label_sheet, [Path(study_dir) / "sheets"])
+    if geometry is not None:
         if lab:
             items = labels.lab_labels(study, manifest, key, lab)
             target = folder / "labs" / lab

@@ -93,8 +93,11 @@ def names(folders: Iterable[Path] = ()) -> list[str]:
     return sorted(found)
 
 
-def load(name: str, folders: Iterable[Path] = ()) -> Geometry:
-    """Return the geometry called ``name``; raise SpecError naming the known sheets if none."""
+def load(name: str, folders: Iterable[Path] = (), *, field: str = "label_sheet") -> Geometry:
+    """Return the geometry called ``name``; raise SpecError naming the known sheets if none.
+
+    ``field`` is where the name came from (the spec's label_sheet, or --sheet).
+    """
     folders = tuple(folders)
     for folder in (*folders, template_path("sheets")):
         path = Path(folder) / f"{name}.yaml"
@@ -103,7 +106,7 @@ def load(name: str, folders: Iterable[Path] = ()) -> Geometry:
     known = names(folders)
     guess = difflib.get_close_matches(name, known, n=1)
     hint = f"; did you mean {guess[0]!r}?" if guess else f"; known sheets: {', '.join(known)}"
-    raise SpecError(f"no label sheet called {name!r}{hint}", Where(field="label_sheet"))
+    raise SpecError(f"no label sheet called {name!r}{hint}", Where(field=field))
 
 
 def _number(raw: dict[str, Any], section: str, key: str, file: str, *,
