@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from planner.ledger import Ledger
 from tests.conftest import run_cli
 from tests.render.conftest import PASSPHRASE, ROUND, plan_example
@@ -43,3 +45,28 @@ def test_calibration_page_needs_no_round(tmp_path, runner):
                      "--offset-x", "0.5")
     assert result.exit_code == 0, result.output
     assert (study_dir / "calibration-roll-57x32.pdf").is_file()
+
+
+def test_option_mistakes_are_named_before_the_passphrase(tmp_path, monkeypatch):
+    """With no passphrase anywhere, a wrong --sheet or --only is still the one line shown."""
+    import shutil
+
+    from typer.testing import CliRunner
+
+    from planner import calendar, plan, spec
+    from planner.cli import app
+    from planner.ledger import Ledger
+
+    root = Path(__file__).resolve().parents[2]
+    folder = tmp_path / "s"
+    shutil.copytree(root / "examples" / "norrvik-mfr", folder)
+    study = spec.load(folder)
+    result = plan.plan_round(study, round_id="R1", host="kal",
+                             dates=calendar.schedule_round(study, "kal"), secret=bytes(32))
+    with Ledger.open(folder) as ledger:
+        plan.write_round(study, folder, result, ledger, passphrase="a long test passphrase")
+    monkeypatch.delenv("RINGPLAN_PASSPHRASE", raising=False)
+    for args, expected in ((["--sheet", "nope"], "error: --sheet: no label sheet called 'nope'"),
+                           (["--only", "lables"], "error: --only: 'lables' is not a kind")):
+        run = CliRunner().invoke(app, ["print", str(folder), "--round", "R1", *args])
+        assert run.exit_code == 2 and run.stderr.startswith(expected), run.stderr
