@@ -95,18 +95,17 @@ def build_units(study: Study, *, host: str, secret: bytes,
     skeleton: list[tuple[str, str, str, int | None, int | None]] = []
     if d.mode == "circulate":
         skeleton = [(material, "artefact", host, None, None) for material in material_ids]
-        drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken))
-        return tuple(Unit(code, *rest) for code, rest in zip(drawn, skeleton, strict=True))
-    orders = run_orders(study, host=host, secret=secret)
-    for material in material_ids:
-        for lab in study.laboratories:
-            for trial in range(1, d.trials + 1):
-                position = orders[(lab.id, trial)].index(material) + 1
-                skeleton.append((material, "test", lab.id, trial, position))
-        for lab in study.laboratories:
-            skeleton += [(material, "spare", lab.id, None, None)] * d.spares_per_lab
-        skeleton += [(material, "retained", host, None, None)] * d.retained_by_host
-        skeleton += [(material, "homogeneity", host, None, None)] * d.homogeneity_units
+    else:
+        orders = run_orders(study, host=host, secret=secret)
+        for material in material_ids:
+            for lab in study.laboratories:
+                for trial in range(1, d.trials + 1):
+                    position = orders[(lab.id, trial)].index(material) + 1
+                    skeleton.append((material, "test", lab.id, trial, position))
+            for lab in study.laboratories:
+                skeleton += [(material, "spare", lab.id, None, None)] * d.spares_per_lab
+            skeleton += [(material, "retained", host, None, None)] * d.retained_by_host
+            skeleton += [(material, "homogeneity", host, None, None)] * d.homogeneity_units
     drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken))
     return tuple(Unit(code, *rest) for code, rest in zip(drawn, skeleton, strict=True))
 
@@ -190,33 +189,30 @@ def compare_units(expected: Iterable[Unit], found: Iterable[Unit]) -> list[str]:
 
 
 def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
-    """Return the public manifest: per laboratory its codes by trial in run order, no materials."""
-    if plan.route is not None:
-        return _circulating_manifest(study, plan)
-    dates = plan.dates.to_json()
-    trials = study.design.trials
-    runs: dict[str, list[list[Unit]]] = {lab.id: [[] for _ in range(trials)]
-                                         for lab in study.laboratories}
-    spares: dict[str, list[str]] = {lab.id: [] for lab in study.laboratories}
+    """Return the public manifest: per laboratory its codes by trial in run order, no materials.
+
+    A circulating round also carries its route, the host's later stops and the artefacts.
+    """
+    runs = expected_runs(study, host=plan.host, secret=plan.secret, units=plan.units)
+    dates = plan.dates.to_json()["labs"]
+    spares: dict[str, list[str]] = {}
     for u in plan.units:
-        if u.kind == "test" and u.trial is not None:
-            runs[u.lab][u.trial - 1].append(u)
-        elif u.kind == "spare":
-            spares[u.lab].append(u.code)
-    labs: dict[str, Any] = {}
-    for lab in study.laboratories:
-        labs[lab.id] = {
-            "trials": [[u.code for u in sorted(run, key=lambda u: u.position or 0)]
-                       for run in runs[lab.id]],
-            "spares": sorted(spares[lab.id]),
-            **dates["labs"].get(lab.id, {}),
-        }
-    return {
+        if u.kind == "spare":
+            spares.setdefault(u.lab, []).append(u.code)
+    out: dict[str, Any] = {
         **_manifest_head(study, plan),
-        "labs": labs,
-        "host_units": {kind: sorted(u.code for u in plan.units if u.kind == kind)
-                       for kind in ("retained", "homogeneity")},
+        "labs": {lab.id: {"trials": runs[lab.id], "spares": sorted(spares.get(lab.id, [])),
+                          **dates.get(lab.id, {})} for lab in study.laboratories},
     }
+    if plan.route is None:
+        out["host_units"] = {kind: sorted(u.code for u in plan.units if u.kind == kind)
+                             for kind in ("retained", "homogeneity")}
+    else:
+        out["route"] = plan.route.to_json()
+        out["host_visits"] = {s.visit: runs[s.key] for s in plan.route.stations
+                              if s.visit not in (None, "start")}
+        out["artefacts"] = sorted(u.code for u in plan.units)
+    return out
 
 
 def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
@@ -234,30 +230,6 @@ def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
         "run_order": study.design.run_order,
         "trials": study.design.trials,
         "dates": {k: v for k, v in dates.items() if k != "labs"},
-    }
-
-
-def _circulating_manifest(study: Study, plan: RoundPlan) -> dict[str, Any]:
-    """Return the manifest of a circulating set: the route and every stop's run orders."""
-    assert plan.route is not None
-    code_of = {u.material: u.code for u in plan.units}
-    orders = run_orders(study, host=plan.host, secret=plan.secret)
-    dates = plan.dates.to_json()["labs"]
-
-    def trials(key: str) -> list[list[str]]:
-        return [[code_of[m] for m in orders[(key, t)]] for t in range(1, study.design.trials + 1)]
-
-    labs = {}
-    for lab in study.laboratories:
-        labs[lab.id] = {"trials": trials(lab.id), "spares": [], **dates.get(lab.id, {})}
-    visits = {s.visit: trials(s.key) for s in plan.route.stations
-              if s.visit is not None and s.visit != "start"}
-    return {
-        **_manifest_head(study, plan),
-        "labs": labs,
-        "route": plan.route.to_json(),
-        "host_visits": visits,
-        "artefacts": sorted(code_of.values()),
     }
 
 
