@@ -390,14 +390,14 @@ def receive(
                                                "accepted (recorded in the ledger).")] = None,
 ) -> None:
     """Check returned result forms and record them in the ledger and results/."""
-    from planner import codes, intake
+    from planner import codes, returns
     from planner.ledger import Ledger
 
     study = _load(study_dir)
     with Ledger.open(study_dir) as ledger:
-        receipts = intake.receive(study, study_dir, round_id, files, ledger, lab=lab,
-                                  check_only=check_only, after_unseal=after_unseal,
-                                  reason=reason, _pause=_test_pause())
+        receipts = returns.receive(study, study_dir, round_id, files, ledger, lab=lab,
+                                   check_only=check_only, after_unseal=after_unseal,
+                                   reason=reason, _pause=_test_pause())
     for r in receipts:
         counts = f"{r.values} values, {r.failed} without value"
         if r.repeat_of is not None:

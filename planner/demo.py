@@ -193,7 +193,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
     host, fingerprint, the laboratory simulated off, and the paths to open first
     (report, a letter, a run sheet). Raises PlannerError if ``out`` holds files.
     """
-    from planner import audit, evaluate, intake, overview, rotation, spares, spec
+    from planner import audit, evaluate, overview, returns, rotation, spares, spec
     from planner import plan as planning
     from planner import render
     from planner.ledger import Ledger
@@ -253,7 +253,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
                                             day_of=day_of, analyst=analyst), encoding="utf-8")
             forms.append(target)
         clock.set(min(test_end + timedelta(days=1), due))
-        receipts = intake.receive(study, out, ROUND, forms, ledger)
+        receipts = returns.receive(study, out, ROUND, forms, ledger)
         clock.set(due, hour=15)
         audit.unseal_round(study, out, ROUND, ledger, passphrase=passphrase)
         report_dir = evaluate.evaluate_round(study, out, ROUND, ledger, workers=workers)

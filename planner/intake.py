@@ -1,18 +1,10 @@
-"""Returned result forms: check them against their round, and record them.
+"""Returned result forms: check them against their round.
 
 ``check_form`` checks a form as ``planner.forms`` read it against the round's
 manifest and reports every problem at once, each as ``file:line: what is
-wrong``; a form with any problem is not recorded. Spares are issued in
-``planner.spares``, and ``planner.status`` says where a round stands.
-
-Recording is one decision, the ledger commit. The form's bytes are first
-written (temp name, fsync, rename) to the round's hidden staging folder
-``.intake/`` inside the ledger transaction, the commit follows, and only then
-is the file renamed into ``results/<sha256>.<ext>``. A process killed before
-the commit leaves the ledger and ``results/`` as they were (the staged copy is
-removed by the next ``receive``); one killed after the commit but before the
-rename is completed by the next ``receive``, which moves every staged file the
-ledger knows into ``results/``.
+wrong``; a form with any problem is not recorded. Accepted forms are recorded
+by ``planner.returns``, spares are issued in ``planner.spares``, and
+``planner.status`` says where a round stands.
 
 A circulating set (manifest ``mode: circulate``) is one set of artefacts that
 every laboratory measures: each artefact code appears once in every trial (the
@@ -32,17 +24,14 @@ from __future__ import annotations
 
 import difflib
 import math
-import os
 import re
-import secrets
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from planner import circulate, codes, forms, plan
-from planner.errors import CodeError, IntakeError, LedgerError, PlannerError, Where
+from planner.errors import CodeError, IntakeError, PlannerError, Where
 from planner.ledger import ResultRow
 
 if TYPE_CHECKING:
@@ -50,19 +39,15 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = [
-    "RESULTS_DIR",
-    "STAGING_DIR",
-    "Receipt",
+    "Checked",
     "check_form",
     "condense",
+    "describe_slot",
     "expected_codes",
-    "receive",
-    "settle_results",
+    "inspect_form",
     "spare_swaps",
 ]
 
-RESULTS_DIR = "results"
-STAGING_DIR = ".intake"
 _KNOWN_COLUMNS = frozenset(plan.FORM_COLUMNS)
 _NUMBER = {
     "point": re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"),
@@ -79,7 +64,14 @@ _ISO_DATE = re.compile(r"(\d{4}-\d{2}-\d{2})(?:[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)
 # --- checking -------------------------------------------------------------------
 
 @dataclass(frozen=True, slots=True)
-class _Checked:
+class Checked:
+    """What checking one form found; ``rows`` are the rows to record if ``problems`` is empty.
+
+    ``lab`` is the form's submission slot (None if its identity lines are wrong),
+    ``missing`` the expected codes without a row, ``late_rows`` the codes tested
+    after the test window.
+    """
+
     problems: tuple[PlannerError, ...]
     lab: str | None
     rows: tuple[ResultRow, ...]
@@ -133,16 +125,21 @@ def check_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     coordinator says sent it, ``today`` the day it is received (dates after it
     are refused), ``elsewhere`` code -> round for codes of the study's other rounds.
     """
-    return list(_inspect(study, manifest, form, swaps=swaps or {}, unsealed=unsealed, lab=lab,
-                         today=today, elsewhere=elsewhere or {}).problems)
+    return list(inspect_form(study, manifest, form, swaps=swaps or {}, unsealed=unsealed,
+                             lab=lab, today=today, elsewhere=elsewhere or {}).problems)
 
 
-def _inspect(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
-             swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
-             elsewhere: Mapping[str, str]) -> _Checked:
+def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
+                 swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
+                 elsewhere: Mapping[str, str]) -> Checked:
+    """Return what checking a form against its round found: its problems, slot and rows.
+
+    The arguments are those of ``check_form``, all given; ``planner.returns``
+    records the rows of a form without problems.
+    """
     problems = _check_identity(study, manifest, form, lab=lab)
     if problems:
-        return _Checked(tuple(problems), None, (), (), ())
+        return Checked(tuple(problems), None, (), (), ())
     form_lab = form.ident("laboratory")[0]  # type: ignore[index]
     if manifest.get("mode") == "circulate":
         return _inspect_circulating(study, manifest, form, unsealed=unsealed, today=today,
@@ -156,7 +153,7 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
               and (c := codes.compact(str(r.get("code")))) in owners and owners[c][1] == "test"}
     if rows and not mine and len(others) == 1 and form_lab not in others:
         line = form.ident("laboratory")[1]  # type: ignore[index]
-        return _Checked((IntakeError(
+        return Checked((IntakeError(
             f"the form says laboratory {form_lab!r} but its codes are those of laboratory "
             f"{others.pop()!r}; correct the laboratory line or send that laboratory's form",
             form.where(line)),), None, (), (), ())
@@ -212,7 +209,7 @@ def _inspect(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
     missing = tuple(c for c in expected if c not in first_seen)
-    return _Checked(tuple(problems), form_lab, tuple(kept), missing, tuple(late_rows))
+    return Checked(tuple(problems), form_lab, tuple(kept), missing, tuple(late_rows))
 
 
 def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
@@ -288,7 +285,7 @@ def _form_slot(form: forms.Form, lab_id: str) -> str:
     return circulate.station_key(lab_id, found[0].strip().lower() if found else None)
 
 
-def _slot_text(slot: str) -> str:
+def describe_slot(slot: str) -> str:
     """Return a slot as a message names it: "laboratory 'x'", or the host's stop."""
     lab, _, visit = slot.partition("@")
     return f"laboratory {lab!r}" + (f" ({visit} stop)" if visit else "")
@@ -296,7 +293,7 @@ def _slot_text(slot: str) -> str:
 
 def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                          unsealed: bool, today: date | None,
-                         elsewhere: Mapping[str, str]) -> _Checked:
+                         elsewhere: Mapping[str, str]) -> Checked:
     """Check the rows of a circulating set's form: every artefact once in every trial."""
     from planner import audit
 
@@ -352,7 +349,7 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
     missing = tuple(code for code, trial in expected if (code, trial) not in first_seen)
-    return _Checked(tuple(problems), slot, tuple(kept), missing, tuple(late_rows))
+    return Checked(tuple(problems), slot, tuple(kept), missing, tuple(late_rows))
 
 
 def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError], *,
@@ -606,201 +603,6 @@ def _check_date(raw: Any, where: Where, found: list[PlannerError], *, start: dat
                                  f"({today}); check the date", where))
         return None
     return day
-
-
-# --- recording ------------------------------------------------------------------
-
-@dataclass(frozen=True, slots=True)
-class Receipt:
-    """What became of one accepted form; ``version`` is None when only checked or a repeat."""
-
-    file: str
-    lab: str
-    sha256: str
-    version: int | None
-    supersedes: int | None
-    stored: str | None
-    values: int
-    failed: int
-    missing: tuple[str, ...]
-    late_rows: tuple[str, ...]
-    received_late: bool
-    after_unseal: bool
-    repeat_of: int | None
-
-    @property
-    def late(self) -> bool:
-        return self.received_late or bool(self.late_rows)
-
-
-def _results_name(sha256: str, kind: str) -> str:
-    return f"{sha256}.{kind}"
-
-
-def _write_staged(path: Path, data: bytes) -> None:
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
-    try:
-        with open(tmp, "xb") as out:
-            out.write(data)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(tmp, 0o444)  # a received form is never changed
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-
-
-def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[str]:
-    """Finish or undo staged copies left by an interrupted receive; return the names moved in.
-
-    A staged file the ledger records is moved into ``results/``; any other is removed.
-    Call inside a ledger transaction, so no other receive is between stage and commit.
-    """
-    staging = round_folder / STAGING_DIR
-    if not staging.is_dir():
-        return []
-    known = {s.sha256 for s in ledger.submissions(round_id)}
-    moved = []
-    for item in sorted(staging.iterdir()):
-        sha = item.name.split(".")[0]
-        if item.name.endswith(".part") or sha not in known:
-            item.unlink(missing_ok=True)
-            continue
-        target = round_folder / RESULTS_DIR / item.name
-        if target.exists():
-            item.unlink(missing_ok=True)
-        else:
-            target.parent.mkdir(exist_ok=True)
-            os.replace(item, target)
-            moved.append(item.name)
-    return moved
-
-
-def _other_rounds(ledger: Ledger, round_id: str) -> dict[str, str]:
-    return {code: row.round for row in ledger.rounds() if row.round != round_id
-            for code, *_ in ledger.units(row.row)}
-
-
-def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path], ledger: Ledger,
-            *, lab: str | None = None, check_only: bool = False, after_unseal: bool = False,
-            reason: str | None = None,
-            _pause: Callable[[str], None] | None = None) -> list[Receipt]:
-    """Check returned forms and record them; return one Receipt per form.
-
-    Raises IntakeError listing every problem (one line each, ``file:line: ...``)
-    if any form has one; then nothing is recorded. ``check_only`` records
-    nothing either way. Results after the key was opened need ``after_unseal``
-    and a ``reason``. ``_pause`` is a test-only hook called with "before-commit"
-    and "after-commit" so a test can kill the process there.
-    """
-    folder = plan.round_dir(study_dir, round_id)
-    manifest = plan.read_manifest(folder)
-    current = ledger.current_round(round_id)
-    if current is None or current.fingerprint != manifest["fingerprint"]:
-        raise LedgerError(f"round {round_id!r} in the folder does not match the ledger; it was "
-                          "not planned in this study folder", Where(str(folder)))
-    unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
-    if unsealed and not after_unseal:
-        raise IntakeError(f"the key of round {round_id!r} has been opened; results that arrive "
-                          "after unsealing are refused unless you add --after-unseal --reason "
-                          "TEXT (they are then flagged in every output)")
-    if after_unseal and not unsealed:
-        raise IntakeError(f"the key of round {round_id!r} is still sealed; --after-unseal is "
-                          "only for results that arrive after the key was opened")
-    if after_unseal and not (reason and reason.strip()):
-        raise IntakeError("--after-unseal needs --reason TEXT saying why late results are "
-                          "taken; the reason is recorded in the ledger")
-    if not paths:
-        raise IntakeError("no result form given; name one or more returned forms")
-    today = date.fromisoformat(ledger.now()[:10])
-    swaps = spare_swaps(ledger, round_id)
-    elsewhere = _other_rounds(ledger, round_id)
-    problems: list[PlannerError] = []
-    accepted: list[tuple[forms.Form, _Checked]] = []
-    for path in paths:
-        try:
-            form = forms.read_form(path)
-        except IntakeError as exc:
-            problems.append(exc)
-            continue
-        checked = _inspect(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
-                           today=today, elsewhere=elsewhere)
-        problems += checked.problems
-        if not checked.problems:
-            accepted.append((form, checked))
-    by_lab: dict[str, str] = {}
-    for form, checked in accepted:
-        assert checked.lab is not None
-        if checked.lab in by_lab:
-            problems.append(IntakeError(f"a second form of {_slot_text(checked.lab)} (the "
-                                        f"first is {by_lab[checked.lab]}); send one form per "
-                                        "laboratory at a time", Where(form.path)))
-        by_lab[checked.lab] = form.path
-    if problems:
-        raise IntakeError("\n".join(condense(problems)))
-    due = date.fromisoformat(manifest["dates"]["results_due"])
-    plans = []
-    for form, checked in accepted:
-        lab_id = str(checked.lab)
-        history = ledger.submissions(round_id, lab_id)
-        last = history[-1] if history else None
-        plans.append((form, checked, last))
-    receipts: list[Receipt] = []
-    if check_only:
-        return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
-    staging, results = folder / STAGING_DIR, folder / RESULTS_DIR
-    staged: list[Path] = []
-    try:
-        with ledger.transaction():
-            settle_results(folder, ledger, round_id)
-            for form, checked, last in plans:
-                if last is not None and last.sha256 == form.sha256:
-                    receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
-                    continue
-                staging.mkdir(exist_ok=True)
-                target = staging / _results_name(form.sha256, form.kind)
-                if not target.exists():
-                    _write_staged(target, form.data)
-                    staged.append(target)
-                version = ledger.add_submission(
-                    round_id=round_id, lab=str(checked.lab), sha256=form.sha256,
-                    file_name=Path(form.path).name, late=today > due or bool(checked.late_rows),
-                    after_unseal=unsealed, reason=reason if unsealed else None,
-                    rows=checked.rows)
-                ledger.record_event(round_id, "received", {
-                    "lab": checked.lab, "version": version, "sha256": form.sha256})
-                stored = f"{RESULTS_DIR}/{_results_name(form.sha256, form.kind)}"
-                receipts.append(_receipt(form, checked, last, version, stored, today > due,
-                                         unsealed))
-            if _pause is not None:
-                _pause("before-commit")
-    except BaseException:
-        for path in staged:
-            path.unlink(missing_ok=True)
-        raise
-    if _pause is not None:
-        _pause("after-commit")
-    results.mkdir(exist_ok=True)
-    for path in staged:
-        try:
-            os.replace(path, results / path.name)
-        except FileNotFoundError:
-            pass  # another receive settled it into results/ already
-    return receipts
-
-
-def _receipt(form: forms.Form, checked: _Checked, last: Any, version: int | None,
-             stored: str | None, received_late: bool, unsealed: bool) -> Receipt:
-    repeat = last.version if last is not None and last.sha256 == form.sha256 else None
-    return Receipt(
-        file=form.path, lab=str(checked.lab), sha256=form.sha256, version=version,
-        supersedes=last.version if last is not None and repeat is None else None,
-        stored=stored, values=sum(1 for r in checked.rows if r.value is not None),
-        failed=sum(1 for r in checked.rows if r.value is None), missing=checked.missing,
-        late_rows=checked.late_rows, received_late=received_late, after_unseal=unsealed,
-        repeat_of=repeat)
-
 
 
 def _flatten(items: Iterable[Iterable[str]]) -> set[str]:

@@ -53,7 +53,7 @@ CREATE TABLE events (
     detail TEXT NOT NULL
 );
 CREATE INDEX events_round ON events(round, kind);
--- returned result forms (planner.intake), a corrected form is a new version
+-- returned result forms (planner.returns), a corrected form is a new version
 CREATE TABLE submissions (
     id INTEGER PRIMARY KEY,
     round TEXT NOT NULL,

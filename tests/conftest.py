@@ -1,6 +1,6 @@
 """What many test modules share: the example study, a fixed secret, a CLI runner.
 
-And for the modules on returned forms (intake, spares, status): round 2027-1 of the
+And for the modules on returned forms (intake, returns, spares, status): round 2027-1 of the
 example study planned with the fixed secret, and its blank CSV forms filled in by
 editing lines. Expected values are the numbers the tests write into the forms.
 """
@@ -160,6 +160,20 @@ def one_error(result, path, line):
 def receive(runner, study_dir, *files, extra=()):
     """Run ``ringplan receive`` on forms for round ROUND; return the click Result."""
     return run_cli(runner, "receive", study_dir, "--round", ROUND, *files, *extra)
+
+
+def nothing_recorded(study_dir):
+    """Assert no form of round ROUND is in the ledger, results/ or staging; return True."""
+    from planner import plan
+    from planner.ledger import Ledger
+
+    with Ledger.open(study_dir) as ledger:
+        assert ledger.submissions(ROUND) == []
+        assert ledger.events(ROUND, "received") == []
+    folder = plan.round_dir(study_dir, ROUND)
+    for sub in ("results", ".intake"):
+        assert not (folder / sub).exists() or not any((folder / sub).iterdir())
+    return True
 
 
 def mistype(code_text):

@@ -23,7 +23,19 @@ from datetime import UTC, date, datetime, time, timedelta
 import pytest
 from conftest import PASSPHRASE, ROOT, SECRET
 
-from planner import audit, circulate, codes, evaluate, forms, intake, plan, spares, spec, status
+from planner import (
+    audit,
+    circulate,
+    codes,
+    evaluate,
+    forms,
+    intake,
+    plan,
+    returns,
+    spares,
+    spec,
+    status,
+)
 from planner.errors import IntakeError, LedgerError
 from planner.ledger import Ledger
 
@@ -134,7 +146,7 @@ def round_(tmp_path_factory):
                     audit.check_gate(study, ledger, ROUND)
                 except LedgerError as exc:
                     gate_before_end = str(exc)
-            intake.receive(study, folder_root, ROUND, [target], ledger)
+            returns.receive(study, folder_root, ROUND, [target], ledger)
         standing = status.round_status_table(study, folder_root, ROUND, ledger,
                                              today=clock.now.date())
         audit.unseal_round(study, folder_root, ROUND, ledger, passphrase=PASSPHRASE)

@@ -1,0 +1,236 @@
+"""Recording returned result forms: SHA-256 copies, ledger versions, crash-safe staging.
+
+``receive`` checks forms with ``planner.intake`` and, if none has a problem,
+records each as a new version of its laboratory's submission; a form identical
+to the last version recorded changes nothing.
+
+Recording is one decision, the ledger commit. The form's bytes are first
+written (temp name, fsync, rename) to the round's hidden staging folder
+``.intake/`` inside the ledger transaction, the commit follows, and only then
+is the file renamed into ``results/<sha256>.<ext>``. A process killed before
+the commit leaves the ledger and ``results/`` as they were (the staged copy is
+removed by the next ``receive``); one killed after the commit but before the
+rename is completed by the next ``receive``, which moves every staged file the
+ledger knows into ``results/``.
+"""
+
+from __future__ import annotations
+
+import os
+import secrets
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import date
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from planner import forms, plan
+from planner.errors import IntakeError, LedgerError, PlannerError, Where
+from planner.intake import Checked, condense, describe_slot, inspect_form, spare_swaps
+
+if TYPE_CHECKING:
+    from planner.ledger import Ledger
+    from planner.spec import Study
+
+__all__ = [
+    "RESULTS_DIR",
+    "STAGING_DIR",
+    "Receipt",
+    "receive",
+    "settle_results",
+]
+
+RESULTS_DIR = "results"
+STAGING_DIR = ".intake"
+
+
+@dataclass(frozen=True, slots=True)
+class Receipt:
+    """What became of one accepted form; ``version`` is None when only checked or a repeat."""
+
+    file: str
+    lab: str
+    sha256: str
+    version: int | None
+    supersedes: int | None
+    stored: str | None
+    values: int
+    failed: int
+    missing: tuple[str, ...]
+    late_rows: tuple[str, ...]
+    received_late: bool
+    after_unseal: bool
+    repeat_of: int | None
+
+    @property
+    def late(self) -> bool:
+        return self.received_late or bool(self.late_rows)
+
+
+def _results_name(sha256: str, kind: str) -> str:
+    return f"{sha256}.{kind}"
+
+
+def _write_staged(path: Path, data: bytes) -> None:
+    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
+    try:
+        with open(tmp, "xb") as out:
+            out.write(data)
+            out.flush()
+            os.fsync(out.fileno())
+        os.chmod(tmp, 0o444)  # a received form is never changed
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[str]:
+    """Finish or undo staged copies left by an interrupted receive; return the names moved in.
+
+    A staged file the ledger records is moved into ``results/``; any other is removed.
+    Call inside a ledger transaction, so no other receive is between stage and commit.
+    """
+    staging = round_folder / STAGING_DIR
+    if not staging.is_dir():
+        return []
+    known = {s.sha256 for s in ledger.submissions(round_id)}
+    moved = []
+    for item in sorted(staging.iterdir()):
+        sha = item.name.split(".")[0]
+        if item.name.endswith(".part") or sha not in known:
+            item.unlink(missing_ok=True)
+            continue
+        target = round_folder / RESULTS_DIR / item.name
+        if target.exists():
+            item.unlink(missing_ok=True)
+        else:
+            target.parent.mkdir(exist_ok=True)
+            os.replace(item, target)
+            moved.append(item.name)
+    return moved
+
+
+def _other_rounds(ledger: Ledger, round_id: str) -> dict[str, str]:
+    return {code: row.round for row in ledger.rounds() if row.round != round_id
+            for code, *_ in ledger.units(row.row)}
+
+
+def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path], ledger: Ledger,
+            *, lab: str | None = None, check_only: bool = False, after_unseal: bool = False,
+            reason: str | None = None,
+            _pause: Callable[[str], None] | None = None) -> list[Receipt]:
+    """Check returned forms and record them; return one Receipt per form.
+
+    Raises IntakeError listing every problem (one line each, ``file:line: ...``)
+    if any form has one; then nothing is recorded. ``check_only`` records
+    nothing either way. Results after the key was opened need ``after_unseal``
+    and a ``reason``. ``_pause`` is a test-only hook called with "before-commit"
+    and "after-commit" so a test can kill the process there.
+    """
+    folder = plan.round_dir(study_dir, round_id)
+    manifest = plan.read_manifest(folder)
+    current = ledger.current_round(round_id)
+    if current is None or current.fingerprint != manifest["fingerprint"]:
+        raise LedgerError(f"round {round_id!r} in the folder does not match the ledger; it was "
+                          "not planned in this study folder", Where(str(folder)))
+    unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
+    if unsealed and not after_unseal:
+        raise IntakeError(f"the key of round {round_id!r} has been opened; results that arrive "
+                          "after unsealing are refused unless you add --after-unseal --reason "
+                          "TEXT (they are then flagged in every output)")
+    if after_unseal and not unsealed:
+        raise IntakeError(f"the key of round {round_id!r} is still sealed; --after-unseal is "
+                          "only for results that arrive after the key was opened")
+    if after_unseal and not (reason and reason.strip()):
+        raise IntakeError("--after-unseal needs --reason TEXT saying why late results are "
+                          "taken; the reason is recorded in the ledger")
+    if not paths:
+        raise IntakeError("no result form given; name one or more returned forms")
+    today = date.fromisoformat(ledger.now()[:10])
+    swaps = spare_swaps(ledger, round_id)
+    elsewhere = _other_rounds(ledger, round_id)
+    problems: list[PlannerError] = []
+    accepted: list[tuple[forms.Form, Checked]] = []
+    for path in paths:
+        try:
+            form = forms.read_form(path)
+        except IntakeError as exc:
+            problems.append(exc)
+            continue
+        checked = inspect_form(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
+                               today=today, elsewhere=elsewhere)
+        problems += checked.problems
+        if not checked.problems:
+            accepted.append((form, checked))
+    by_lab: dict[str, str] = {}
+    for form, checked in accepted:
+        assert checked.lab is not None
+        if checked.lab in by_lab:
+            problems.append(IntakeError(f"a second form of {describe_slot(checked.lab)} (the "
+                                        f"first is {by_lab[checked.lab]}); send one form per "
+                                        "laboratory at a time", Where(form.path)))
+        by_lab[checked.lab] = form.path
+    if problems:
+        raise IntakeError("\n".join(condense(problems)))
+    due = date.fromisoformat(manifest["dates"]["results_due"])
+    plans = []
+    for form, checked in accepted:
+        lab_id = str(checked.lab)
+        history = ledger.submissions(round_id, lab_id)
+        last = history[-1] if history else None
+        plans.append((form, checked, last))
+    receipts: list[Receipt] = []
+    if check_only:
+        return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
+    staging, results = folder / STAGING_DIR, folder / RESULTS_DIR
+    staged: list[Path] = []
+    try:
+        with ledger.transaction():
+            settle_results(folder, ledger, round_id)
+            for form, checked, last in plans:
+                if last is not None and last.sha256 == form.sha256:
+                    receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
+                    continue
+                staging.mkdir(exist_ok=True)
+                target = staging / _results_name(form.sha256, form.kind)
+                if not target.exists():
+                    _write_staged(target, form.data)
+                    staged.append(target)
+                version = ledger.add_submission(
+                    round_id=round_id, lab=str(checked.lab), sha256=form.sha256,
+                    file_name=Path(form.path).name, late=today > due or bool(checked.late_rows),
+                    after_unseal=unsealed, reason=reason if unsealed else None,
+                    rows=checked.rows)
+                ledger.record_event(round_id, "received", {
+                    "lab": checked.lab, "version": version, "sha256": form.sha256})
+                stored = f"{RESULTS_DIR}/{_results_name(form.sha256, form.kind)}"
+                receipts.append(_receipt(form, checked, last, version, stored, today > due,
+                                         unsealed))
+            if _pause is not None:
+                _pause("before-commit")
+    except BaseException:
+        for path in staged:
+            path.unlink(missing_ok=True)
+        raise
+    if _pause is not None:
+        _pause("after-commit")
+    results.mkdir(exist_ok=True)
+    for path in staged:
+        try:
+            os.replace(path, results / path.name)
+        except FileNotFoundError:
+            pass  # another receive settled it into results/ already
+    return receipts
+
+
+def _receipt(form: forms.Form, checked: Checked, last: Any, version: int | None,
+             stored: str | None, received_late: bool, unsealed: bool) -> Receipt:
+    repeat = last.version if last is not None and last.sha256 == form.sha256 else None
+    return Receipt(
+        file=form.path, lab=str(checked.lab), sha256=form.sha256, version=version,
+        supersedes=last.version if last is not None and repeat is None else None,
+        stored=stored, values=sum(1 for r in checked.rows if r.value is not None),
+        failed=sum(1 for r in checked.rows if r.value is None), missing=checked.missing,
+        late_rows=checked.late_rows, received_late=received_late, after_unseal=unsealed,
+        repeat_of=repeat)
