@@ -69,6 +69,9 @@ def _rows_flowable(record: Mapping[str, Any], width: float, height: float) -> An
                 c.drawString(0, mid - font / 3, _layout.fit_text(lab, _layout.FONT, font,
                                                                  left - 4))
                 c.setStrokeColor(HexColor(_layout.RULE))
+                if k:  # a hairline between rows, so a large z stays visibly in its own row
+                    c.setLineWidth(0.2)
+                    c.line(0, y_top, width, y_top)
                 c.setLineWidth(0.3)
                 c.line(left, mid, left + plot_w, mid)
                 c.setDash(1, 2)
