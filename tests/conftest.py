@@ -12,6 +12,13 @@ from pathlib import Path
 
 import pytest
 
+# CI machines are shared and slow at times: hypothesis's per-example deadline would then
+# fail a correct test, so the suite runs without it (examples stay as many as before).
+from hypothesis import settings as _hypothesis_settings
+
+_hypothesis_settings.register_profile("ringplan", deadline=None)
+_hypothesis_settings.load_profile("ringplan")
+
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLE = ROOT / "examples" / "norrvik-mfr"
 SECRET = bytes(range(32))
