@@ -514,18 +514,30 @@ def analyze(
     tolerance: Annotated[float | None, typer.Option(
         help="Tolerance width, for gauge R&R as % of tolerance.")] = None,
     sigma_pt: Annotated[float | None, typer.Option(
-        "--sigma-pt", help="Standard deviation for proficiency assessment (default: the "
-        "robust SD of the results).")] = None,
+        "--sigma-pt", help="Standard deviation for proficiency assessment, fixed (default: "
+        "the robust SD of the results, with bands from 8 laboratories on).")] = None,
+    sigma_pt_percent: Annotated[float | None, typer.Option(
+        "--sigma-pt-percent", help="sigma_pt as this percentage of the assigned value.")] = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Run the round statistics on any long-format CSV, without a study."""
-    from planner import stats
+    import math
 
-    for name, v in (("--tolerance", tolerance), ("--sigma-pt", sigma_pt)):
-        if v is not None and not v > 0:
-            raise PlannerError(f"{name} {v!r} must be above 0")
+    from planner import stats
+    from planner.stats import iso13528
+
+    for name, v in (("--tolerance", tolerance), ("--sigma-pt", sigma_pt),
+                    ("--sigma-pt-percent", sigma_pt_percent)):
+        if v is not None and not (math.isfinite(v) and v > 0):
+            raise PlannerError(f"{name} {v!r} must be a number above 0")
+    if sigma_pt is not None and sigma_pt_percent is not None:
+        raise PlannerError("give --sigma-pt or --sigma-pt-percent, not both")
+    if sigma_pt_percent is not None and sigma_pt_percent > 100:
+        raise PlannerError(f"--sigma-pt-percent {sigma_pt_percent!r} must be at most 100")
+    policy = (iso13528.SigmaPt("percent", percent=sigma_pt_percent)
+              if sigma_pt_percent is not None else sigma_pt)
     rows = stats.read_long_csv(file)
-    result = stats.evaluate_table(rows, tolerance=tolerance, sigma_pt=sigma_pt)
+    result = stats.evaluate_table(rows, tolerance=tolerance, sigma_pt=policy)
     if as_json:
         _print_json(result)
     else:

@@ -34,21 +34,23 @@ import io
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from planner import circulate, codes, draw, plan, seal
 from planner.errors import DataError, LedgerError, Where
+from planner.results import Unblinded
 
 if TYPE_CHECKING:
     from planner.ledger import Ledger
-    from planner.spec import Study
+    from planner.spec import SigmaPtPolicy, Study
+    from planner.stats.iso13528 import SigmaPt
 
 __all__ = [
     "Unblinded", "unblind", "participant_codes", "results_csv", "round_statistics",
     "evaluate_round", "REPORT_DIR", "RESULTS_NAME", "STATISTICS_NAME", "REPORT_NAME",
     "FLAGS", "letter_name", "drift_check", "DRIFT_FACTOR", "DRIFT_SOURCE", "accepted_results",
+    "sigma_policy",
 ]
 
 REPORT_DIR = "report"
@@ -67,19 +69,6 @@ DRIFT_SOURCE = (
     "later stop may differ from its mean at the start by at most 0.3 sigma_pt; where it does "
     "not, the widened limit 0.3 sigma_pt + 2 sqrt(u1^2 + u2^2) allows for the uncertainty of "
     "the two means, u = s / sqrt(n) of each stop's results.")
-
-
-@dataclass(frozen=True, slots=True)
-class Unblinded:
-    """One unblinded result; ``value`` is None when the test failed and no value was given."""
-
-    material: str
-    lab: str
-    trial: int
-    code: str
-    value: float | None
-    uncertainty: float | None
-    flags: tuple[str, ...]
 
 
 def _field(record: Any, name: str, default: Any = None) -> Any:
@@ -262,7 +251,8 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
               "uncertainty": r.uncertainty} for r in rows if r.value is not None]
     if not table:
         raise DataError("no accepted result of this round has a value; nothing to evaluate")
-    options = {"tolerance": ev.tolerance, "sigma_pt": ev.sigma_pt, "assigned": ev.assigned_value,
+    policies = {m.id: sigma_policy(ev.sigma_pt_for(m.id)) for m in study.materials}
+    options = {"tolerance": ev.tolerance, "sigma_pt": policies, "assigned": ev.assigned_value,
                "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha}
     full = stats.evaluate_table(table, **options)  # type: ignore[arg-type]
     if ev.assigned_value == "consensus":
@@ -294,7 +284,8 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         "organiser": study.study.organiser, "fingerprint": seal.fingerprint(seal.canonical(
             dict(key))),
         "trials": study.design.trials,
-        "settings": {"tolerance": ev.tolerance, "sigma_pt": ev.sigma_pt,
+        "settings": {"tolerance": ev.tolerance,
+                     "sigma_pt": {m: pol.describe() for m, pol in policies.items()},
                      "assigned_value": ev.assigned_value, "reference_lab": ev.reference_lab,
                      "pool_alpha": ev.pool_alpha, "excluded_for_second_consensus": [host]},
         "results": {"count": len(table), "per_lab": per_lab, "missing": list(missing),
@@ -311,6 +302,21 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         out["drift"] = drift_check({"start": start, **visits}, sigma, materials=materials,
                                    codes_of=artefacts, host=host)
     return out
+
+
+def sigma_policy(policy: SigmaPtPolicy) -> SigmaPt:
+    """Return the statistics' sigma_pt policy for a policy of the study spec."""
+    from planner.stats.iso13528 import SigmaPt
+
+    if policy.value is not None:
+        return SigmaPt("fixed", value=policy.value)
+    if policy.percent is not None:
+        return SigmaPt("percent", percent=policy.percent)
+    if policy.precision is not None:
+        return SigmaPt("precision", sigma_R=policy.precision.sigma_R,
+                       sigma_r=policy.precision.sigma_r)
+    assert policy.participants is not None
+    return SigmaPt("participants", min_participants=policy.participants.min_participants)
 
 
 def _visit_summary(values: Sequence[float]) -> dict[str, Any]:

@@ -15,13 +15,15 @@ from pathlib import Path
 from typing import Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import (BaseModel, ConfigDict, Field, ValidationError, field_validator,
+                      model_validator)
 
 from planner.errors import PlannerError, SpecError, Where
 
 __all__ = [
     "Study", "StudyInfo", "Lab", "Contact", "Blackout", "Material", "Hazard",
-    "Design", "Schedule", "Transit", "Evaluation", "PastRound",
+    "Design", "Schedule", "Transit", "Evaluation", "SigmaPtPolicy", "PrecisionStudy",
+    "Participants", "MaterialEvaluation", "PastRound",
     "load", "parse", "SPEC_NAME",
 ]
 
@@ -115,12 +117,80 @@ class Schedule(_Model):
     transit: tuple[Transit, ...] = ()
 
 
+class PrecisionStudy(_Model):
+    """sigma_R and sigma_r of the method from a collaborative precision study (ISO 5725-2)."""
+
+    sigma_R: float = Field(gt=0)
+    sigma_r: float = Field(gt=0)
+
+
+class Participants(_Model):
+    min_participants: int = Field(default=8, ge=3, le=1000)
+
+
+_POLICIES = ("value", "percent", "precision", "participants")
+
+
+def _policy_shorthand(raw: Any) -> Any:
+    """Read ``sigma_pt: 0.5`` as a fixed value and ``sigma_pt: participants`` as that policy."""
+    if isinstance(raw, bool):
+        return raw
+    if isinstance(raw, (int, float)):
+        return {"value": raw}
+    if isinstance(raw, str) and raw.strip() == "participants":
+        return {"participants": {}}
+    if isinstance(raw, dict) and raw.get("participants", 0) in (None, True):
+        return {**raw, "participants": {}}
+    return raw
+
+
+class SigmaPtPolicy(_Model):
+    """How sigma_pt is set: exactly one of value, percent, precision or participants."""
+
+    value: float | None = Field(default=None, gt=0)
+    percent: float | None = Field(default=None, gt=0, le=100)
+    precision: PrecisionStudy | None = None
+    participants: Participants | None = None
+
+    @model_validator(mode="after")
+    def _one(self) -> SigmaPtPolicy:
+        given = [k for k in _POLICIES if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(f"give exactly one of {', '.join(_POLICIES)}"
+                             + (f" (found {', '.join(given)})" if given else ""))
+        return self
+
+    @property
+    def kind(self) -> str:
+        return {"value": "fixed"}.get(self._key, self._key)
+
+    @property
+    def _key(self) -> str:
+        return next(k for k in _POLICIES if getattr(self, k) is not None)
+
+
+class MaterialEvaluation(_Model):
+    sigma_pt: SigmaPtPolicy | None = None
+
+    _shorthand = field_validator("sigma_pt", mode="before")(
+        lambda cls, raw: _policy_shorthand(raw))
+
+
 class Evaluation(_Model):
     tolerance: float | None = Field(default=None, gt=0)
-    sigma_pt: float | None = Field(default=None, gt=0)
+    sigma_pt: SigmaPtPolicy = SigmaPtPolicy(participants=Participants())
     assigned_value: Literal["consensus", "reference"] = "consensus"
     reference_lab: str | None = None
     pool_alpha: float = Field(default=0.25, gt=0, lt=1)
+    by_material: dict[str, MaterialEvaluation] = {}
+
+    _shorthand = field_validator("sigma_pt", mode="before")(
+        lambda cls, raw: _policy_shorthand(raw))
+
+    def sigma_pt_for(self, material: str) -> SigmaPtPolicy:
+        """Return the sigma_pt policy of a material: its own, else the study's."""
+        own = self.by_material.get(material)
+        return own.sigma_pt if own is not None and own.sigma_pt is not None else self.sigma_pt
 
 
 class PastRound(_Model):
@@ -331,6 +401,8 @@ def _message(err: Any, raw: Any) -> str:
         return f"expected a list, got {value!r}"
     if kind == "string_type":
         return f"expected text, got {value!r}"
+    if kind == "value_error":
+        return str(ctx.get("error", err.get("msg", kind)))
     return str(err.get("msg", kind)).lower()
 
 
@@ -371,6 +443,23 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
     if ev.assigned_value == "reference" and ev.reference_lab is None:
         out.append((("evaluation", "reference_lab"),
                     "is required when assigned_value is 'reference'; name the reference laboratory"))
+    material_ids = [m.id for m in study.materials]
+    for mat in ev.by_material:
+        if mat not in material_ids:
+            guess = difflib.get_close_matches(mat, material_ids, n=1)
+            hint = (f"; did you mean {guess[0]!r}?" if guess
+                    else f"; known materials: {', '.join(material_ids)}")
+            out.append((("evaluation", "by_material", mat),
+                        f"{mat!r} is not a material of this study{hint}"))
+    policies = [(("evaluation", "sigma_pt"), ev.sigma_pt)] + [
+        (("evaluation", "by_material", mat, "sigma_pt"), own.sigma_pt)
+        for mat, own in ev.by_material.items() if own.sigma_pt is not None]
+    for loc, pol in policies:
+        if pol.precision is not None and pol.precision.sigma_R < pol.precision.sigma_r:
+            out.append((loc + ("precision", "sigma_R"),
+                        f"{pol.precision.sigma_R!r} is smaller than sigma_r "
+                        f"{pol.precision.sigma_r!r}; reproducibility includes repeatability, "
+                        "so sigma_R >= sigma_r"))
     seen_rounds: dict[str, int] = {}
     for i, past in enumerate(study.history):
         if past.host not in lab_ids:

@@ -108,4 +108,4 @@ def test_bad_csv_is_one_line_and_exit_2(tmp_path, runner, text, expected):
 def test_negative_sigma_pt_is_refused(small, runner):
     res = run_cli(runner, "analyze", small, "--sigma-pt", "-1")
     assert res.exit_code == 2
-    assert res.stderr.strip() == "error: --sigma-pt -1.0 must be above 0"
+    assert res.stderr.strip() == "error: --sigma-pt -1.0 must be a number above 0"

@@ -32,7 +32,10 @@ def test_the_biased_laboratory_shows_in_the_scores(built):
     assert biased != built["host"]
     bands = {lab: [s["scores"][m]["labs"][lab]["band"] for m in s["materials"]]
              for lab in s["labs"]}
-    assert bands[biased].count("unsatisfactory") >= 4
+    # sigma_pt is 5 % of the assigned value (the example's policy); 15 % high is about 3
+    # sigma_pt, less the pull of the biased laboratory on a 5-laboratory consensus.
+    assert all(b in ("questionable", "unsatisfactory") for b in bands[biased])
+    assert all(s["scores"][m]["banded"] for m in s["materials"])
     assert all(b == "satisfactory" for lab, bs in bands.items() if lab != biased for b in bs)
 
 

@@ -25,7 +25,7 @@ from planner import codes
 from planner.render import _layout
 
 if TYPE_CHECKING:
-    from planner.evaluate import Unblinded
+    from planner.results import Unblinded
 
 __all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "anonymous_view"]
 
@@ -63,7 +63,7 @@ def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
     out: dict[str, Any] = {"codes": sorted(codes_of.values()), "materials": {}}
     for m in statistics["materials"]:
         sc = statistics["scores"].get(m, {})
-        if "labs" not in sc:
+        if "labs" not in sc or not sc.get("banded"):
             continue
         zp = bool(sc.get("use_z_prime"))
         out["materials"][m] = {
@@ -136,15 +136,10 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
             "marked <b>prepared in-house</b>. The assigned values are also given without your "
             "results.", st["body"]))
     mine = {m: s["scores"].get(m, {}).get("labs", {}).get(to.lab) for m in s["materials"]}
-    counted = [e.get("band") for e in mine.values() if e]
-    outside = [m for m, e in mine.items() if e and e.get("band") in ("questionable",
-                                                                     "unsatisfactory")]
-    verdict = (f"{counted.count('satisfactory')} of {len(counted)} scores satisfactory"
-               + (f"; outside the satisfactory band: {', '.join(outside)}" if outside else ""))
-    story += [Paragraph("Your scores", st["h2"]), Paragraph(esc(verdict) + ".", st["body"]),
-              Spacer(1, 2 * _MM)]
+    story += [Paragraph("Your scores", st["h2"]),
+              Paragraph(esc(_verdict(s, mine)), st["body"]), Spacer(1, 2 * _MM)]
     has_en = any(e and e.get("En") is not None for e in mine.values())
-    head = ["material", "x_pt", "u(x_pt)", "sigma_pt", "your mean", "score"] + (
+    head = ["material", "x_pt", "u(x_pt)", "sigma_pt", "your mean", "D%", "score"] + (
         ["En"] if has_en else []) + ["band"]
     data: list[list[Any]] = [head]
     cells = []
@@ -152,22 +147,30 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         sc = s["scores"].get(m, {})
         e = mine.get(m)
         if not e:
-            data.append([m, n(sc.get("assigned_value")), "-", "-", "no result", "-"]
+            data.append([m, n(sc.get("assigned_value")), "-", "-", "no result", "-", "-"]
                         + (["-"] if has_en else []) + ["-"])
             continue
         zp = bool(sc.get("use_z_prime"))
         score = e.get("z_prime") if zp else e.get("z")
+        dp = e.get("D_percent")
+        if e.get("reference"):
+            shown, band = "reference", "reference"
+        elif sc.get("banded"):
+            shown, band = f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}", e.get("band") or "-"
+        else:
+            shown, band = "-", "no band"
         row = [m, n(sc.get("assigned_value")), n(sc.get("u_assigned_value"), 3),
                n(sc.get("sigma_pt"), 3), n(e.get("mean")),
-               f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}"]
+               (f"{dp:+.1f}".replace(".", ",") if comma else f"{dp:+.1f}") if dp is not None
+               else "-", shown]
         if has_en:
             row.append(n(e.get("En"), 3))
-        row.append(e.get("band") or "-")
+        row.append(band)
         data.append(row)
         cells.append((len(head) - 1, len(data) - 1, e.get("band")))
         if has_en and e.get("en_band") == "unsatisfactory":
             cells.append((len(head) - 2, len(data) - 1, "unsatisfactory"))
-    story.append(table(data, [70, 56, 50, 50, 60, 66] + ([44] if has_en else []) + [80],
+    story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
                        bands(cells)))
     story.append(Paragraph(esc(_method_note(s, in_house, n)), st["small"]))
 
@@ -257,16 +260,50 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     return story
 
 
+def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any]) -> str:
+    """Return the sentences that sum up a laboratory's scores, saying why a band is missing."""
+    scored = {m: e for m, e in mine.items() if e and not e.get("reference")}
+    banded = {m: e for m, e in scored.items() if s["scores"][m].get("banded")}
+    unbanded = [m for m in scored if m not in banded]
+    parts = []
+    if any(e and e.get("reference") for e in mine.values()):
+        refs = [m for m, e in mine.items() if e and e.get("reference")]
+        parts.append("Your laboratory is the reference: its results are the assigned values "
+                     f"({', '.join(refs)}), so it is not scored against them.")
+    if banded:
+        bands = [e.get("band") for e in banded.values()]
+        outside = [m for m, e in banded.items()
+                   if e.get("band") in ("questionable", "unsatisfactory")]
+        parts.append(f"{bands.count('satisfactory')} of {len(banded)} scores satisfactory"
+                     + (f"; outside the satisfactory band: {', '.join(outside)}" if outside
+                        else "") + ".")
+    if unbanded:
+        reasons = list(dict.fromkeys(str(s["scores"][m].get("no_band")) for m in unbanded))
+        lead = ("No score of this round carries a band" if not banded
+                else f"No band for {', '.join(unbanded)}")
+        parts.append(f"{lead}: {'; '.join(reasons)}. Your difference from the assigned value "
+                     "(D%) is given instead; read it against the precision of your method.")
+    if not scored and not parts:
+        parts.append("No result of your laboratory was evaluated in this round.")
+    return " ".join(parts)
+
+
 def _method_note(s: Mapping[str, Any], in_house: bool, n: Any) -> str:
     st = s["settings"]
     if st["assigned_value"] == "reference":
-        text = "x_pt is the mean result of the reference laboratory."
+        text = ("x_pt is the mean result of the reference laboratory, which is not scored "
+                "against itself.")
     else:
         text = "x_pt is the robust mean of all participants' means (Algorithm A, ISO 13528)."
-    if st.get("sigma_pt") is None:
-        text += " sigma_pt is the robust standard deviation of the participants' means."
-    text += (" z' is used where u(x_pt) > 0.3 sigma_pt. |score| <= 2 satisfactory, 2 to 3 "
-             "questionable, >= 3 unsatisfactory; |En| <= 1 satisfactory (U with k = 2).")
+    policies = st.get("sigma_pt") or {}
+    kinds = list(dict.fromkeys(policies.values()))
+    if len(kinds) == 1:
+        text += f" sigma_pt: {kinds[0]}."
+    elif kinds:
+        text += " sigma_pt: " + "; ".join(f"{m}: {v}" for m, v in policies.items()) + "."
+    text += (" D% = 100 (your mean - x_pt) / x_pt. z' is used where u(x_pt) > 0.3 sigma_pt. "
+             "|score| <= 2 satisfactory, 2 to 3 questionable, >= 3 unsatisfactory; |En| <= 1 "
+             "satisfactory (U with k = 2).")
     diffs = []
     for m in s["materials"]:
         wh = s["scores"].get(m, {}).get("without_host") or {}

@@ -30,9 +30,10 @@ from planner import codes
 from planner.render import _layout
 
 if TYPE_CHECKING:
-    from planner.evaluate import Unblinded
+    from planner.results import Unblinded
 
-__all__ = ["render", "DETAIL_LABS", "fmt", "score_of", "spread", "summary_lines"]
+__all__ = ["render", "DETAIL_LABS", "fmt", "score_of", "spread", "summary_lines",
+           "largest_differences", "sigma_pt_text"]
 
 DETAIL_LABS = 60
 """Largest round whose per-laboratory tables are printed; bigger rounds show the matrix."""
@@ -95,14 +96,31 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
                 items.append(f"En = {fmt(e['En'], 3)}")
             if items:
                 bad.setdefault(lab, {})[m] = items
+    banded = [m for m in statistics["materials"]
+              if statistics["scores"].get(m, {}).get("banded")]
+    reasons: dict[str, list[str]] = {}
+    for m in statistics["materials"]:
+        why = statistics["scores"].get(m, {}).get("no_band")
+        if why:
+            reasons.setdefault(why, []).append(m)
+    for why, mats in reasons.items():
+        which = ("any material" if len(mats) == len(statistics["materials"])
+                 else ", ".join(mats))
+        out.append(f"no bands for {which}: {why}")
+    largest = largest_differences(statistics, [m for ms in reasons.values() for m in ms])
+    if largest:
+        out.append("largest difference from the assigned value of each laboratory (no band): "
+                   + "; ".join(largest))
     if bad:
         for lab, by_m in bad.items():
             mark = " (host, in-house)" if lab == host else ""
             out.append(f"{lab}{mark}: outside the satisfactory band on {len(by_m)} of "
                        f"{len(statistics['materials'])} materials: "
                        + "; ".join(f"{m} ({', '.join(items)})" for m, items in by_m.items()))
-    else:
-        out.append("every laboratory is in the satisfactory band on every material")
+    elif banded:
+        scope = ("every material" if len(banded) == len(statistics["materials"])
+                 else "every material with bands (" + ", ".join(banded) + ")")
+        out.append(f"every laboratory is in the satisfactory band on {scope}")
     tests = []
     for m in statistics["materials"]:
         pr = statistics["precision"].get(m, {})
@@ -156,6 +174,19 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
         labs = sorted({d["lab"] for d in missing})
         out.append(f"{len(missing)} test result(s) missing, from {', '.join(labs)}")
     return out
+
+
+def largest_differences(statistics: Mapping[str, Any], materials: Sequence[str]) -> list[str]:
+    """Return, per laboratory, its largest relative difference D% over ``materials``, as text."""
+    worst: dict[str, tuple[float, str]] = {}
+    for m in materials:
+        for lab, e in statistics["scores"].get(m, {}).get("labs", {}).items():
+            d = e.get("D_percent")
+            if d is not None and not e.get("reference") and (
+                    lab not in worst or abs(d) > abs(worst[lab][0])):
+                worst[lab] = (d, m)
+    ordered = sorted(worst.items(), key=lambda kv: -abs(kv[1][0]))
+    return [f"{lab} {d:+.1f} % ({m})" for lab, (d, m) in ordered]
 
 
 def _worst_drift(entry: Mapping[str, Any]) -> str:
@@ -239,13 +270,14 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
         sc = s["scores"].get(m, {})
         pr = s["precision"].get(m, {})
         bands = [v.get("band") for v in sc.get("labs", {}).values()]
+        counts = ([bands.count(b) for b in ("satisfactory", "questionable", "unsatisfactory")]
+                  if sc.get("banded") else ["-", "-", "-"])
+        score = ((("z'" if sc.get("use_z_prime") else "z") if sc.get("banded") else "D only")
+                 if "labs" in sc else "-")
         rows.append([m, len(sc.get("labs", {})) or "-", fmt(sc.get("assigned_value")),
-                     fmt(sc.get("u_assigned_value"), 3), fmt(sc.get("sigma_pt"), 3),
-                     ("z'" if sc.get("use_z_prime") else "z") if "labs" in sc else "-",
-                     fmt(pr.get("s_r"), 3), fmt(pr.get("s_R"), 3),
-                     bands.count("satisfactory"), bands.count("questionable"),
-                     bands.count("unsatisfactory")])
-    story.append(d.table(rows, [62, 26, 46, 44, 46, 30, 42, 42, 36, 36, 44]))
+                     fmt(sc.get("u_assigned_value"), 3), fmt(sc.get("sigma_pt"), 3), score,
+                     fmt(pr.get("s_r"), 3), fmt(pr.get("s_R"), 3), *counts])
+    story.append(d.table(rows, [62, 26, 46, 44, 46, 36, 42, 42, 36, 36, 44]))
     story.append(d.p(_assigned_text(s), "small"))
     story += _without_host_table(d, s)
     return story
@@ -261,19 +293,27 @@ def _flag_line(s: Mapping[str, Any]) -> str:
 def _assigned_text(s: Mapping[str, Any]) -> str:
     st = s["settings"]
     if st["assigned_value"] == "reference":
-        text = (f"x_pt is the mean result of the reference laboratory {st['reference_lab']}; "
-                "u(x_pt) from its stated uncertainty or the scatter of its results.")
+        text = (f"x_pt is the mean result of the reference laboratory {st['reference_lab']}, "
+                "which is not scored against itself; u(x_pt) from its stated uncertainty or the "
+                "scatter of its results.")
     else:
         text = ("x_pt is the robust mean of the laboratory means (Algorithm A, ISO 13528 "
                 "Annex C); u(x_pt) = 1.25 s*/sqrt(p).")
-    if st.get("sigma_pt") is not None:
-        text += f" sigma_pt = {fmt(st['sigma_pt'])} as set in the study."
-    else:
-        text += " sigma_pt is the robust standard deviation s* of the laboratory means."
+    text += " " + sigma_pt_text(st.get("sigma_pt") or {})
     text += (" z' replaces z where u(x_pt) > 0.3 sigma_pt. Bands: |score| <= 2 satisfactory, "
              "2 < |score| < 3 questionable, |score| >= 3 unsatisfactory; |En| <= 1 "
-             "satisfactory.")
+             "satisfactory. D = mean - x_pt, D% = 100 D / x_pt.")
     return _layout.escape(text)
+
+
+def sigma_pt_text(policies: Mapping[str, str]) -> str:
+    """Return one sentence saying where sigma_pt comes from, per material where they differ."""
+    kinds = list(dict.fromkeys(policies.values()))
+    if not kinds:
+        return ""
+    if len(kinds) == 1:
+        return f"sigma_pt: {kinds[0]}."
+    return "sigma_pt: " + "; ".join(f"{m}: {v}" for m, v in policies.items()) + "."
 
 
 def _without_host_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
@@ -392,12 +432,15 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     rows_high = min(len(s["labs"]), 12) * 5.2 * _MM
     out: list[Any] = [CondPageBreak(30 * _MM + rows_high), d.p("Scores by laboratory", "h2"),
                       d.p("The score that decides the band of each material (z, or z' where "
-                          "marked in the heading); amber: questionable, red: unsatisfactory.",
+                          "marked in the heading); amber: questionable, red: unsatisfactory. "
+                          "A material marked D% has no band (see the summary): its column "
+                          "gives the difference from the assigned value in per cent.",
                           "small")]
     chunk = 10  # materials per table, so that the columns stay readable
     for start in range(0, len(mats), chunk):
         part = mats[start:start + chunk]
         head = ["laboratory"] + [m + ("'" if s["scores"].get(m, {}).get("use_z_prime") else "")
+                                 + ("" if s["scores"].get(m, {}).get("banded") else " D%")
                                  for m in part]
         rows: list[list[Any]] = [head]
         cells = []
@@ -405,9 +448,17 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
             row: list[Any] = [lab + (" (in-house)" if lab == host else "")]
             for j, m in enumerate(part, start=1):
                 sc = s["scores"].get(m, {})
-                z, _ = score_of(sc, lab)
-                row.append(f"{z:.2f}" if z is not None else "-")
-                cells.append((j, i, sc.get("labs", {}).get(lab, {}).get("band")))
+                entry = sc.get("labs", {}).get(lab, {})
+                if entry.get("reference"):
+                    row.append("ref.")
+                    continue
+                if sc.get("banded"):
+                    z, _ = score_of(sc, lab)
+                    row.append(f"{z:.2f}" if z is not None else "-")
+                    cells.append((j, i, entry.get("band")))
+                else:
+                    dp = entry.get("D_percent")
+                    row.append(f"{dp:+.1f} %" if dp is not None else "-")
             rows.append(row)
         lab_w = 80.0
         out.append(d.table(rows, [lab_w] + [min(46.0, (d.width - lab_w) / len(part))] * len(part),
@@ -433,7 +484,8 @@ def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
     lows = [spreads.get((m, lab), (None, None))[0] for lab in labs]
     highs = [spreads.get((m, lab), (None, None))[1] for lab in labs]
     x_pt, sig = sc.get("assigned_value"), sc.get("sigma_pt")
-    band = (x_pt - 2 * sig, x_pt + 2 * sig) if x_pt is not None and sig else None
+    banded = bool(sc.get("banded"))
+    band = (x_pt - 2 * sig, x_pt + 2 * sig) if banded and x_pt is not None and sig else None
     hl = [lab == host for lab in labs]
     facts = (f"x_pt = {fmt(x_pt)} {s['unit']}, u(x_pt) = {fmt(sc.get('u_assigned_value'), 3)}, "
              f"sigma_pt = {fmt(sig, 3)} ({sc.get('sigma_pt_source', '')}); {sc.get('method', '')}; "
@@ -442,18 +494,21 @@ def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
         facts += (f" s_r = {fmt(pr['s_r'], 3)}, s_R = {fmt(pr['s_R'], 3)}, r = {fmt(pr['r'], 3)},"
                   f" R = {fmt(pr['R'], 3)}.")
     notes = list(sc.get("notes", ()))
+    if not banded:
+        notes.insert(0, f"no band: {sc.get('no_band')}")
     out.append(d.p(_layout.escape(facts + (" " + "; ".join(notes) if notes else "")), "small"))
     single = all(v is not None and spreads.get((m, lab), (0, 0))[0] == spreads.get((m, lab),
                  (0, 0))[1] for lab, v in zip(labs, means))
     whisker = "mean ± U" if single else "lowest to highest result"
     chart_w = d.width
-    out.append(KeepTogether([
-        _charts.MeansChart(labs, means, lows, highs, centre=x_pt, band=band, highlight=hl,
-                           width=chart_w, height=120,
-                           title=f"Laboratory means ({whisker}), x_pt and x_pt ± 2 sigma_pt "
-                                 f"[{s['unit']}]; the host in-house in colour"),
-        _z_chart(sc, labs, hl, chart_w, 105),
-    ]))
+    means_title = (f"Laboratory means ({whisker}), x_pt" + (" and x_pt ± 2 sigma_pt"
+                                                             if band else "")
+                   + f" [{s['unit']}]; the host in-house in colour")
+    charts = [_charts.MeansChart(labs, means, lows, highs, centre=x_pt, band=band, highlight=hl,
+                                 width=chart_w, height=120, title=means_title)]
+    if banded:
+        charts.append(_z_chart(sc, labs, hl, chart_w, 105))
+    out.append(KeepTogether(charts))
     if len(labs) <= DETAIL_LABS:
         out.append(_detail_table(d, sc, pr, labs, host))
     return out
@@ -477,8 +532,8 @@ def _z_chart(sc: Mapping[str, Any], labs: Sequence[str], hl: Sequence[bool], wid
 def _detail_table(d: _Doc, sc: Mapping[str, Any], pr: Mapping[str, Any], labs: Sequence[str],
                   host: str) -> Any:
     has_en = any(sc["labs"][lab].get("En") is not None for lab in labs)
-    head = ["laboratory", "n", "mean", "sd", "h", "k", "z", "z'"] + (["En"] if has_en else []) + [
-        "band"]
+    head = ["laboratory", "n", "mean", "sd", "h", "k", "D", "D%", "z", "z'"] + (
+        ["En"] if has_en else []) + ["band"]
     rows: list[list[Any]] = [head]
     cells = []
     cellinfo = pr.get("cells", {}) if "skipped" not in pr else {}
@@ -488,15 +543,17 @@ def _detail_table(d: _Doc, sc: Mapping[str, Any], pr: Mapping[str, Any], labs: S
                fmt(cellinfo.get(lab, {}).get("sd"), 3),
                fmt(pr.get("mandel_h", {}).get(lab), 3) if cellinfo else "-",
                fmt(pr.get("mandel_k", {}).get(lab), 3) if cellinfo else "-",
+               fmt(e.get("D"), 3),
+               f"{e['D_percent']:+.1f}" if e.get("D_percent") is not None else "-",
                fmt(e.get("z"), 3), fmt(e.get("z_prime"), 3)]
         if has_en:
             row.append(fmt(e.get("En"), 3))
-        row.append(e.get("band") or "-")
+        row.append("reference" if e.get("reference") else (e.get("band") or "-"))
         rows.append(row)
         cells.append((len(head) - 1, i, e.get("band")))
         if has_en and e.get("en_band") == "unsatisfactory":
             cells.append((len(head) - 2, i, "unsatisfactory"))
-    widths = [90, 22, 52, 44, 40, 40, 42, 42] + ([42] if has_en else []) + [72]
+    widths = [88, 20, 50, 42, 36, 36, 42, 36, 40, 40] + ([40] if has_en else []) + [70]
     return d.table(rows, widths, extra=_band_cells(cells), size=7.5)
 
 

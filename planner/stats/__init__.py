@@ -22,8 +22,11 @@ returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}`
                          range_check{d4, ucl, flagged[{part, operator, range}]}
     precision[material]  s_r, s_L, s_R, r, R, cells{lab: {n, mean, sd}}, mandel_h, mandel_k,
                          indicators{h_5, h_1, k_5, k_1}, cochran{...}, grubbs{...}, notes
-    scores[material]     assigned_value, u_assigned_value, robust_sd, sigma_pt, method,
-                         use_z_prime, labs{lab: {mean, n, z, z_prime, En, band, en_band}}
+    scores[material]     assigned_value, u_assigned_value, robust_sd, sigma_pt,
+                         sigma_pt_source, sigma_pt_policy, method, use_z_prime, banded,
+                         no_band (why there is no band, else None), resolution,
+                         labs{lab: {mean, n, D, D_percent, z, z_prime, En, band, en_band}}
+                         (the reference laboratory: reference true, no scores)
 
 The gauge study treats every material as a part and every laboratory as an operator;
 it needs the same number (2 or more) of results in every material x laboratory cell and
@@ -39,11 +42,14 @@ import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields, is_dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from planner.errors import DataError, Where
 
-__all__ = ["Row", "read_long_csv", "evaluate_table", "summary_text"]
+if TYPE_CHECKING:
+    from planner.stats.iso13528 import SigmaPt
+
+__all__ = ["Row", "read_long_csv", "evaluate_table", "check_reference", "summary_text"]
 
 _REQUIRED = ("material", "lab", "trial", "value")
 
@@ -100,6 +106,11 @@ def read_long_csv(path: str | Path) -> list[Row]:
         if len(fields_) < width:
             raise DataError(f"expected at least {width} fields, found {len(fields_)}",
                             Where(name, line))
+        if len(fields_) > len(header) and any(f.strip() for f in fields_[len(header):]):
+            raise DataError(f"the line has {len(fields_)} fields but the header has "
+                            f"{len(header)}; a decimal comma splits a number in two: write "
+                            "10.5, not 10,5 (or put the value in double quotes)",
+                            Where(name, line))
         material, lab, trial = (fields_[pos[c]].strip() for c in ("material", "lab", "trial"))
         for col, val in (("material", material), ("lab", lab), ("trial", trial)):
             if not val:
@@ -133,7 +144,20 @@ def _number(text: str, where: Where) -> float:
                         "e.g. 12.5", where) from None
     if not math.isfinite(v):
         raise DataError(f"{s!r} is not a finite number", where)
+    _check_magnitude(v, where, s)
     return v
+
+
+# Squares of differences of values beyond this overflow, and below it underflow, in the
+# sums of squares; no measurement result needs more than this range.
+_LARGEST, _SMALLEST = 1e100, 1e-100
+
+
+def _check_magnitude(v: float, where: Where, text: str | None = None) -> None:
+    if abs(v) > _LARGEST or (v != 0 and abs(v) < _SMALLEST):
+        raise DataError(f"{text or repr(v)} is outside the range the statistics can square "
+                        f"without overflow ({_SMALLEST:g} to {_LARGEST:g} in size); "
+                        "express the results in a larger or smaller unit", where)
 
 
 def _get(row: Any, name: str) -> Any:
@@ -144,17 +168,20 @@ def _get(row: Any, name: str) -> Any:
 
 def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                    tolerance: float | None = None,
-                   sigma_pt: float | Mapping[str, float] | None = None,
+                   sigma_pt: float | SigmaPt | Mapping[str, float | SigmaPt] | None = None,
                    assigned: str = "consensus", reference_lab: str | None = None,
                    pool_alpha: float = 0.25,
                    exclude_labs_for_consensus: Sequence[str] = ()) -> dict[str, Any]:
     """Return every statistic the table allows as a JSON-ready dict (floats, None for NaN).
 
     Keys: materials, labs, anova, grr_anova, grr_range, precision, scores (see the module
-    docstring). ``sigma_pt`` is one value for all materials or a mapping by material
-    (missing materials use the robust SD). Raises DataError for an empty table, a row
-    without a field or with a non-finite value, a repeated material/lab/trial, an unknown
-    ``assigned`` method or a ``reference_lab`` that reported nothing.
+    docstring). ``sigma_pt`` is a policy (``iso13528.SigmaPt``) or a fixed value for all
+    materials, or a mapping of either by material; a material without one uses the
+    participants' robust SD. Raises DataError for an empty table, a row without a field
+    or with a non-finite value, a repeated material/lab/trial, an unknown ``assigned``
+    method or ``assigned="reference"`` without a ``reference_lab``. A reference
+    laboratory without results on a material leaves that material's scores skipped
+    with the reason; ``check_reference`` refuses a name that is not in the table at all.
     """
     import numpy as np
 
@@ -165,14 +192,9 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
     if assigned not in ("consensus", "reference"):
         raise DataError(f"assigned value method {assigned!r} is unknown; "
                         "use 'consensus' or 'reference'")
-    if assigned == "reference":
-        if reference_lab is None:
-            raise DataError("assigned value 'reference' needs a reference laboratory")
-        if str(reference_lab) not in labs:
-            import difflib
-            near = difflib.get_close_matches(str(reference_lab), labs, n=1)
-            hint = f"; did you mean {near[0]!r}?" if near else ""
-            raise DataError(f"reference laboratory {reference_lab!r} has no results{hint}")
+    if assigned == "reference" and reference_lab is None:
+        raise DataError("assigned value 'reference' needs a reference laboratory; name one, "
+                        "or use the consensus of participants")
     mat_arr = np.asarray(mat_codes, dtype=np.intp)
     lab_arr = np.asarray(lab_codes, dtype=np.intp)
     x = np.asarray(values, dtype=np.float64)
@@ -205,19 +227,33 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                                exclude_labs=exclude_labs_for_consensus)
         out["scores"][material] = _plain_scores(sc)
 
-    cube = gauge_rr.arrange_cells(x, mat_codes, lab_codes)
+    cube = gauge_rr.arrange_cells(x, [materials[i] for i in mat_codes],
+                                  [labs[i] for i in lab_codes])
     if isinstance(cube, Skipped):
         out["grr_anova"] = out["grr_range"] = {"skipped": cube.reason}
     else:
         y, p_lab, o_lab = cube
         study = gauge_rr.evaluate(y, tolerance=tolerance, pool_alpha=pool_alpha,
-                                  parts=[materials[i] for i in p_lab],  # type: ignore[index]
-                                  operators=[labs[i] for i in o_lab])  # type: ignore[index]
+                                  parts=p_lab, operators=o_lab)
         out["grr_anova"] = _plain(study.anova)
         out["grr_range"] = _plain(study.range)
     out["sources"] = {"anova": anova.SOURCE, "gauge_rr": gauge_rr.SOURCE,
                       "iso5725_2": iso5725_2.SOURCE, "iso13528": iso13528.SOURCE}
     return out
+
+
+def check_reference(rows: Sequence[Row], reference_lab: str) -> None:
+    """Raise DataError when ``reference_lab`` has no result in ``rows``, naming the others."""
+    labs = list(dict.fromkeys(r.lab for r in rows))
+    if reference_lab in labs:
+        return
+    import difflib
+
+    near = difflib.get_close_matches(reference_lab, labs, n=1)
+    hint = (f"did you mean {near[0]!r}? " if near else "") + (
+        f"the laboratories are {', '.join(labs[:8])}{', ...' if len(labs) > 8 else ''}")
+    raise DataError(f"reference laboratory {reference_lab!r} has no result; {hint}; or leave "
+                    "out the reference to use the consensus of participants")
 
 
 def _columns(rows: Iterable[Any]) -> tuple[list[str], list[str], list[int], list[int],
@@ -241,7 +277,8 @@ def _columns(rows: Iterable[Any]) -> tuple[list[str], list[str], list[int], list
         else:
             got = tuple(_get(row, f) for f in _REQUIRED)
             unc = _get(row, "uncertainty")
-        if not (type(got[3]) is float and math.isfinite(got[3]) and all(got[:3])):
+        if not (type(got[3]) is float and _SMALLEST <= abs(got[3]) <= _LARGEST
+                and all(got[:3])):
             _check_row(row, i, got)
         material, lab, trial = str(got[0]), str(got[1]), str(got[2])
         value = float(got[3])
@@ -281,6 +318,7 @@ def _check_row(row: Any, i: int, got: tuple[Any, ...]) -> None:
         raise DataError(f"value {got[3]!r} is not a number", where) from None
     if not math.isfinite(value):
         raise DataError(f"value {got[3]!r} is not a finite number", where)
+    _check_magnitude(value, where)
 
 
 def _plain(obj: Any) -> Any:
@@ -343,6 +381,7 @@ def summary_text(result: Mapping[str, Any]) -> str:
     table = [head]
     skipped: list[str] = []
     flags: list[list[str]] = []
+    unbanded: dict[str, list[str]] = {}
     for m in mats:
         sc = result["scores"].get(m, {})
         pr = result["precision"].get(m, {})
@@ -352,12 +391,16 @@ def summary_text(result: Mapping[str, Any]) -> str:
             skipped.append(f"precision {m}: {pr['skipped']}")
         n_labs = len(sc["labs"]) if "labs" in sc else pr.get("p", "-")
         bands = [s["band"] for s in sc.get("labs", {}).values()]
+        if sc.get("no_band"):
+            unbanded.setdefault(sc["no_band"], []).append(str(m))
         table.append([str(m), str(n_labs), _g(sc.get("assigned_value")),
                       _g(sc.get("u_assigned_value")), _g(sc.get("sigma_pt")),
                       _g(pr.get("s_r")), _g(pr.get("s_R")), _g(pr.get("r")), _g(pr.get("R")),
-                      ("z'" if sc.get("use_z_prime") else "z") if "labs" in sc else "-",
-                      str(bands.count("satisfactory")), str(bands.count("questionable")),
-                      str(bands.count("unsatisfactory"))])
+                      (("z'" if sc.get("use_z_prime") else "z") if sc.get("banded") else
+                       "D only") if "labs" in sc else "-",
+                      *([str(bands.count(b)) for b in ("satisfactory", "questionable",
+                                                        "unsatisfactory")]
+                        if sc.get("banded") else ["-", "-", "-"])])
         for lab, s in sc.get("labs", {}).items():
             score = s["z_prime"] if sc.get("use_z_prime") else s["z"]
             name = "z'" if sc.get("use_z_prime") else "z"
@@ -402,6 +445,17 @@ def summary_text(result: Mapping[str, Any]) -> str:
         out.extend("  " + ln for ln in _align(flags)[:_MAX_FLAGS])
         if len(flags) > _MAX_FLAGS:
             out.append(f"  ... and {len(flags) - _MAX_FLAGS} more (see the full result)")
+    for reason, where in unbanded.items():
+        out.append("")
+        out.append(f"no bands for {', '.join(where)}: {reason}.")
+        out.append("difference of each laboratory from the assigned value, D (D%):")
+        for m in where[:_MAX_FLAGS]:
+            labs_m = result["scores"][m]["labs"]
+            out.append(f"  {m}: " + ", ".join(
+                f"{lab} {_signed(e.get('D'))}"
+                + (f" ({_signed(e.get('D_percent'), 2)} %)" if e.get("D_percent") is not None
+                   else "") + (" reference" if e.get("reference") else "")
+                for lab, e in list(labs_m.items())[:_MAX_FLAGS]))
     if skipped:
         out.append("")
         out.append("not computed")
@@ -418,6 +472,10 @@ def _g(v: Any, digits: int = 4) -> str:
     if isinstance(v, float):
         return f"{v:.{digits}g}"
     return str(v)
+
+
+def _signed(v: Any, digits: int = 3) -> str:
+    return "-" if v is None else f"{v:+.{digits}g}"
 
 
 def _align(table: list[list[str]]) -> list[str]:

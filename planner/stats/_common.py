@@ -12,10 +12,10 @@ from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
     import numpy as np
-    from numpy.typing import NDArray
+    from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["Skipped", "factorize", "classify_large", "classify_small", "majority",
-           "t_isf", "f_isf", "f_sf"]
+__all__ = ["Skipped", "Units", "to_units", "factorize", "classify_large", "classify_small",
+           "majority", "t_isf", "f_isf", "f_sf"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -23,6 +23,97 @@ class Skipped:
     """A method that could not be applied to the data, with a one-line reason."""
 
     reason: str
+
+
+@dataclass(frozen=True, slots=True)
+class Units:
+    """Results written as steps of their reporting resolution, counted from one of them.
+
+    ``u`` holds (x - origin) / step. When ``exact`` is True every result was a whole
+    number of steps, so ``u`` holds exact integers: sums of them are exact, means of
+    equal decimal results are equal floats, and a shift of all results by a multiple
+    of the step (or a scaling by a power of ten) leaves ``u`` bit for bit the same.
+    When it is False (more digits than a float holds exactly), ``u`` is x - origin,
+    the values centred on a data value, with step 1.
+    """
+
+    u: NDArray[np.float64]
+    origin: float
+    exact: bool
+    decimals: int = 0  # step = 10**-decimals when exact
+    origin_steps: float = 0.0  # origin / step, a whole number when exact
+
+    @property
+    def step(self) -> float:
+        """Return the reporting step (1.0 when the values are not on a decimal grid)."""
+        if not self.exact:
+            return 1.0
+        return 1.0 / 10.0 ** self.decimals if self.decimals > 0 else 10.0 ** -self.decimals
+
+    def value(self, u: float) -> float:
+        """Return the result value of a location ``u`` given in steps."""
+        if not self.exact:
+            return self.origin + u
+        return self.scale(self.origin_steps + u)
+
+    def scale(self, s: float) -> float:
+        """Return a spread (an SD, a difference) given in steps in the results' unit."""
+        if not self.exact:
+            return s
+        # Dividing by 10^d is correctly rounded; multiplying by 0.1 would not be.
+        return s / 10.0 ** self.decimals if self.decimals > 0 else s * 10.0 ** -self.decimals
+
+    def steps(self, v: float) -> float:
+        """Return a spread given in the results' unit as steps (the inverse of ``scale``)."""
+        if not self.exact:
+            return v
+        return v * 10.0 ** self.decimals if self.decimals > 0 else v / 10.0 ** -self.decimals
+
+    @property
+    def rounding_sd(self) -> float:
+        """Return the SD in steps that rounding to the step alone gives, 0 if unknown.
+
+        Rounding to a step d spreads a result uniformly over +-d/2, whose SD is
+        d/sqrt(12), i.e. 1/sqrt(12) steps.
+        """
+        return 1.0 / math.sqrt(12.0) if self.exact else 0.0
+
+
+_MAX_EXACT = 2.0 ** 52  # |x| / step below this: steps are whole numbers a float holds exactly
+
+
+def to_units(values: ArrayLike) -> Units:
+    """Return ``values`` as steps of their reporting resolution (see ``Units``).
+
+    The step is the finest decimal digit any value shows in its shortest decimal form
+    (``repr``): 12.3 and 12.35 give 0.01, 120 and 130 give 10. A trailing zero a
+    laboratory typed (12.30) does not survive the float, so its step reads as 0.1.
+    """
+    from decimal import Decimal
+
+    import numpy as np
+
+    x = np.asarray(values, dtype=np.float64).ravel()
+    if x.size == 0:
+        return Units(u=x.copy(), origin=0.0, exact=False)
+    origin = float(np.sort(x)[(x.size - 1) // 2])
+    nonzero = [float(v) for v in np.unique(x) if v != 0.0]
+    exponent = min((int(Decimal(repr(v)).normalize().as_tuple().exponent) for v in nonzero),
+                   default=0)
+    if -300 < exponent < 300:
+        d = -exponent
+        if d > 0:
+            scale = 10.0 ** d
+            k = np.rint(x * scale)
+            back = k / scale
+        else:
+            scale = 10.0 ** -d
+            k = np.rint(x / scale)
+            back = k * scale
+        if np.abs(k).max() < _MAX_EXACT and np.array_equal(back, x):
+            k0 = float(np.rint(origin * scale) if d > 0 else np.rint(origin / scale))
+            return Units(u=k - k0, origin=origin, exact=True, decimals=d, origin_steps=k0)
+    return Units(u=x - origin, origin=origin, exact=False)
 
 
 def factorize(labels: Iterable[Hashable]) -> tuple[NDArray[np.intp], list[Hashable]]:

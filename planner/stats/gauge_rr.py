@@ -25,7 +25,7 @@ from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from planner.stats._common import Skipped, f_sf, factorize
+from planner.stats._common import Skipped, f_sf, factorize, to_units
 
 if TYPE_CHECKING:
     import numpy as np
@@ -189,7 +189,10 @@ def evaluate_anova(cube: ArrayLike, *, tolerance: float | None = None,
     if isinstance(y, Skipped):
         return y
     p, o, r = y.shape
-    d = y - y.flat[0]  # centre on a data value; see anova.py
+    # In steps of the reporting resolution from a data value (see _common.to_units):
+    # sums of whole steps are exact and nothing depends on where the results lie.
+    units = to_units(y)
+    d = units.u.reshape(y.shape)
     grand = d.mean()
     mp = d.mean(axis=(1, 2))
     mo = d.mean(axis=(0, 2))
@@ -240,21 +243,32 @@ def evaluate_anova(cube: ArrayLike, *, tolerance: float | None = None,
     variance = {"repeatability": v_e, "reproducibility": v_o + v_po, "operator": v_o,
                 "interaction": v_po, "grr": v_e + v_o + v_po, "part": v_p}
     variance["total"] = variance["grr"] + v_p
-    sd = {k: math.sqrt(v) for k, v in variance.items()}
-    total_v, total_sd = variance["total"], sd["total"]
+    sd_steps = {k: math.sqrt(v) for k, v in variance.items()}
+    total_v = variance["total"]
+    sd = {k: units.scale(v) for k, v in sd_steps.items()}
+    total_sd = sd["total"]
     pct_contribution = {k: _pct(variance[k], total_v) for k in _COMPONENTS}
-    pct_study = {k: _pct(sd[k], total_sd) for k in _COMPONENTS}
+    pct_study = {k: _pct(sd_steps[k], sd_steps["total"]) for k in _COMPONENTS}
     pct_tol = None
     if tolerance is not None:
         pct_tol = {k: _pct(multiplier * sd[k], tolerance) for k in _COMPONENTS + ("total",)}
+
+    def sq(v: float) -> float:
+        return units.scale(units.scale(v))
+
+    def in_values(rows: Mapping[str, Mapping[str, float]]) -> dict[str, dict[str, float]]:
+        return {name: {**r, "ss": sq(r["ss"]), "ms": sq(r["ms"])} for name, r in rows.items()}
+
     return GaugeAnova(
-        model="pooled" if pooled else "full", pool_alpha=pool_alpha, table=table,
-        pooled_table=pooled_table, variance=variance,
+        model="pooled" if pooled else "full", pool_alpha=pool_alpha, table=in_values(table),
+        pooled_table=in_values(pooled_table) if pooled_table else None,
+        variance={k: sq(v) for k, v in variance.items()},
         repeatability_sd=sd["repeatability"], reproducibility_sd=sd["reproducibility"],
         operator_sd=sd["operator"], interaction_sd=sd["interaction"], grr_sd=sd["grr"],
         part_sd=sd["part"], total_sd=total_sd, pct_contribution=pct_contribution,
         pct_study_variation=pct_study, pct_tolerance=pct_tol, multiplier=multiplier,
-        tolerance=tolerance, ndc=_ndc(sd["part"], sd["grr"]), parts=p, operators=o, trials=r)
+        tolerance=tolerance, ndc=_ndc(sd_steps["part"], sd_steps["grr"]), parts=p, operators=o,
+        trials=r)
 
 
 def evaluate_range(cube: ArrayLike, *, tolerance: float | None = None,
@@ -277,12 +291,15 @@ def evaluate_range(cube: ArrayLike, *, tolerance: float | None = None,
                            f"{what}, found {count}: see the ANOVA gauge study instead")
     part_labels = [str(v) for v in (parts if parts is not None else range(1, n + 1))]
     op_labels = [str(v) for v in (operators if operators is not None else range(1, k + 1))]
-    ranges = y.max(axis=2) - y.min(axis=2)          # parts x appraisers
+    units = to_units(y)  # steps from a data value: nothing depends on where results lie
+    u = units.u.reshape(y.shape)
+    sc = units.scale
+    ranges = u.max(axis=2) - u.min(axis=2)          # parts x appraisers
     r_bar = ranges.mean(axis=0)                      # per appraiser
     r_bar_bar = float(r_bar.mean())
-    x_bar = y.mean(axis=(0, 2))                      # appraiser averages
+    x_bar = u.mean(axis=(0, 2))                      # appraiser averages
     x_diff = float(x_bar.max() - x_bar.min())
-    part_means = y.mean(axis=(1, 2))
+    part_means = u.mean(axis=(1, 2))
     r_p = float(part_means.max() - part_means.min())
     k1, k2, k3 = K1[r], K2[k], K3[n]
     ev = r_bar_bar * k1
@@ -292,19 +309,22 @@ def evaluate_range(cube: ArrayLike, *, tolerance: float | None = None,
     pv = r_p * k3
     tv = math.hypot(grr, pv)
     ucl = D4[r] * r_bar_bar
-    flagged = [{"part": part_labels[i], "operator": op_labels[j], "range": float(ranges[i, j])}
-               for i, j in zip(*np.nonzero(ranges > ucl))]
+    flagged = [{"part": part_labels[i], "operator": op_labels[j], "range": sc(float(ranges[i, j]))}
+               for i, j in zip(*np.nonzero(ranges > ucl * (1 + 1e-9)))]
     pct_tol = None
     if tolerance is not None:
-        pct_tol = {"ev": _pct(multiplier * ev, tolerance), "av": _pct(multiplier * av, tolerance),
-                   "grr": _pct(multiplier * grr, tolerance), "pv": _pct(multiplier * pv, tolerance)}
+        pct_tol = {"ev": _pct(multiplier * sc(ev), tolerance),
+                   "av": _pct(multiplier * sc(av), tolerance),
+                   "grr": _pct(multiplier * sc(grr), tolerance),
+                   "pv": _pct(multiplier * sc(pv), tolerance)}
     return RangeMethod(
-        ev=ev, av=av, grr=grr, pv=pv, tv=tv, pct_ev=_pct(ev, tv), pct_av=_pct(av, tv),
-        pct_grr=_pct(grr, tv), pct_pv=_pct(pv, tv), pct_tolerance=pct_tol,
-        ndc=_ndc(pv, grr), r_bar_bar=r_bar_bar, x_diff=x_diff, r_p=r_p, k1=k1, k2=k2, k3=k3,
-        appraiser_means=dict(zip(op_labels, x_bar.tolist())),
-        appraiser_r_bar=dict(zip(op_labels, r_bar.tolist())),
-        range_check={"d4": D4[r], "ucl": ucl, "flagged": flagged})
+        ev=sc(ev), av=sc(av), grr=sc(grr), pv=sc(pv), tv=sc(tv), pct_ev=_pct(ev, tv),
+        pct_av=_pct(av, tv), pct_grr=_pct(grr, tv), pct_pv=_pct(pv, tv), pct_tolerance=pct_tol,
+        ndc=_ndc(pv, grr), r_bar_bar=sc(r_bar_bar), x_diff=sc(x_diff), r_p=sc(r_p), k1=k1,
+        k2=k2, k3=k3,
+        appraiser_means={lab: units.value(v) for lab, v in zip(op_labels, x_bar.tolist())},
+        appraiser_r_bar={lab: sc(v) for lab, v in zip(op_labels, r_bar.tolist())},
+        range_check={"d4": D4[r], "ucl": sc(ucl), "flagged": flagged})
 
 
 def _pct(part: float, whole: float | None) -> float:

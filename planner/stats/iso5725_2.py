@@ -24,7 +24,7 @@ from functools import lru_cache
 from typing import TYPE_CHECKING
 
 from planner.stats._common import (Skipped, classify_large, classify_small, f_isf, factorize,
-                                   majority, t_isf)
+                                   majority, t_isf, to_units)
 
 if TYPE_CHECKING:
     import numpy as np
@@ -43,6 +43,7 @@ SOURCE = ("ISO 5725-2:1994 (with Cor 1:2002; 2nd ed. 2019), Accuracy (trueness a
 
 # Factor 2.8 ~ 1.96 * sqrt(2) for the 95 % limits (ISO 5725-6:1994 §4.1.4, from memory).
 _LIMIT_FACTOR = 2.8
+_GRUBBS_P3 = 1.155  # printed single Grubbs value for 3 laboratories, 5 % and 1 %
 
 
 @dataclass(frozen=True, slots=True)
@@ -88,8 +89,10 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable]) -> Precision | Skipped
     if x.size == p:
         return Skipped("one result per laboratory: repeatability (s_r) needs replicates")
     names = [str(v) for v in labels]
-    centre = float(x[0])  # centre on a data value; see anova.py
-    d = x - centre
+    # Work in steps of the reporting resolution, counted from a data value: sums of
+    # whole steps are exact, and no statistic depends on where the results lie.
+    units = to_units(x)
+    d = units.u
     n = np.bincount(codes, minlength=p)
     nf = n.astype(np.float64)
     dmean = np.bincount(codes, weights=d, minlength=p) / nf
@@ -97,21 +100,20 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable]) -> Precision | Skipped
     ss_cell = np.bincount(codes, weights=e * e, minlength=p)
     with np.errstate(invalid="ignore", divide="ignore"):
         var = np.where(n >= 2, ss_cell / (nf - 1.0), np.nan)
-    sd = np.sqrt(var)
-    means = centre + dmean
 
     # General formulas (T1..T5). (T2 T3 - T1^2)/T3 is written as sum n_i (y_i - m)^2,
     # the same quantity without the cancellation of the textbook form.
     t3 = float(n.sum())
     t4 = float((nf * nf).sum())
     t5 = math.fsum(ss_cell.tolist())
-    dm = math.fsum((nf * dmean).tolist()) / t3
+    dm = math.fsum(d.tolist()) / t3  # the general mean m = T1/T3 (§7.4.5)
     between = math.fsum((nf * (dmean - dm) ** 2).tolist())
     s_r2 = t5 / (t3 - p)
     s_d2 = between / (p - 1)
     s_L2 = max(0.0, (s_d2 - s_r2) * t3 * (p - 1) / (t3 * t3 - t4))
     s_r, s_L = math.sqrt(s_r2), math.sqrt(s_L2)
     s_R = math.sqrt(s_L2 + s_r2)
+    sc = units.scale
 
     notes: list[str] = []
     with_sd = n >= 2
@@ -120,7 +122,7 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable]) -> Precision | Skipped
         notes.append(f"unbalanced cells (n from {int(n.min())} to {int(n.max())}): Mandel k "
                      f"and Cochran use n = {n_test}, the count of most cells (ISO 5725-2 §7.3.3)")
 
-    h = _mandel_h(means - centre)
+    h = _mandel_h(dmean, dm)
     k_vals = _mandel_k(var)
     p_k = int(with_sd.sum())
     indicators = {
@@ -129,27 +131,31 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable]) -> Precision | Skipped
         "k_5": mandel_k_indicator(p_k, n_test, 0.05) if p_k >= 2 else None,
         "k_1": mandel_k_indicator(p_k, n_test, 0.01) if p_k >= 2 else None,
     }
-    cells = {name: {"n": int(n[i]), "mean": float(means[i]),
-                    "sd": (float(sd[i]) if with_sd[i] else None)} for i, name in enumerate(names)}
+    cells = {name: {"n": int(n[i]), "mean": units.value(float(dmean[i])),
+                    "sd": (sc(math.sqrt(float(var[i]))) if with_sd[i] else None)}
+             for i, name in enumerate(names)}
     return Precision(
-        p=p, n_for_tests=n_test, mean=centre + dm, s_r=s_r, s_L=s_L, s_R=s_R,
-        r=_LIMIT_FACTOR * s_r, R=_LIMIT_FACTOR * s_R, cells=cells,
+        p=p, n_for_tests=n_test, mean=units.value(dm), s_r=sc(s_r), s_L=sc(s_L), s_R=sc(s_R),
+        r=_LIMIT_FACTOR * sc(s_r), R=_LIMIT_FACTOR * sc(s_R), cells=cells,
         mandel_h=dict(zip(names, _nones(h))), mandel_k=dict(zip(names, _nones(k_vals))),
         indicators=indicators, cochran=_cochran(var, names, n_test, notes),
-        grubbs=_grubbs(means - centre, names, notes), notes=tuple(notes))
-
+        grubbs=_grubbs(dmean, names, notes), notes=tuple(notes))
 
 def _nones(a: NDArray[np.float64]) -> list[float | None]:
     return [v if math.isfinite(v) else None for v in a.tolist()]
 
 
-def _mandel_h(dmeans: NDArray[np.float64]) -> NDArray[np.float64]:
+def _mandel_h(means: NDArray[np.float64], general: float) -> NDArray[np.float64]:
+    # ISO 5725-2:1994 §7.3.1, equation (6) (clause from memory): h_i = (y_i - m) / sqrt(sum (y_j - m)^2 / (p-1))
+    # with m the general mean T1/T3 of §7.4.5, the mean of all results; with equal cell
+    # sizes that is the plain mean of the cell means.
     import numpy as np
 
-    s = float(np.std(dmeans, ddof=1))
+    dev = means - general
+    s = math.sqrt(math.fsum((dev * dev).tolist()) / (means.size - 1))
     if not s > 0:
-        return np.full(dmeans.shape, np.nan)
-    return (dmeans - dmeans.mean()) / s
+        return np.full(means.shape, np.nan)
+    return dev / s
 
 
 def _mandel_k(var: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -206,6 +212,9 @@ def _grubbs(dmeans: NDArray[np.float64], names: list[str],
     # ISO 5725-2 §7.3.4 [from memory]: the double test is read only when the single test
     # finds no outlier at either end.
     out["double_applies"] = "outlier" not in (c_hi, c_lo)
+    if p == 3:
+        notes.append("with 3 laboratories Grubbs' test cannot flag: the largest G three means "
+                     "can give, 2/sqrt(3) = 1.1547, is below the published critical value 1.155")
     if p < 4:
         return out
     d5, d1 = grubbs_double_critical(p, 0.05), grubbs_double_critical(p, 0.01)
@@ -260,6 +269,14 @@ def grubbs_single_critical(p: int, alpha: float) -> float:
 
     G_c = ((p-1)/sqrt(p)) sqrt(t^2/(p-2+t^2)), t the upper alpha/(2p) quantile of t, p-2 df.
     """
+    if p == 3:
+        # The published tables print 1.155 at both levels (ISO 5725-2 Table 5 as
+        # remembered; D. Harvey, Analytical Chemistry 2.0, App. 7). The exact values
+        # (1.1543, 1.1547) lie a hair below the largest G three values can give,
+        # 2/sqrt(3) = 1.15470, which two tied means reach: the exact value would call a
+        # tie an outlier. We follow the printed table, so with 3 laboratories Grubbs'
+        # test never flags.
+        return _GRUBBS_P3
     t = t_isf(alpha / (2 * p), p - 2)
     return (p - 1) / math.sqrt(p) * math.sqrt(t * t / (p - 2 + t * t))
 

@@ -93,8 +93,10 @@ def test_bad_tables_raise_data_errors():
     with pytest.raises(DataError, match="no results"):
         stats.evaluate_table([])
     with pytest.raises(DataError, match="did you mean 'L1'"):
+        stats.check_reference([stats.Row("M", "L1", "1", 1.0)], "L11")
+    with pytest.raises(DataError, match="needs a reference laboratory"):
         stats.evaluate_table([{"material": "M", "lab": "L1", "trial": 1, "value": 1.0}],
-                             assigned="reference", reference_lab="L11")
+                             assigned="reference")
     with pytest.raises(DataError, match="not a finite number"):
         stats.evaluate_table([{"material": "M", "lab": "L1", "trial": 1, "value": float("nan")}])
     with pytest.raises(DataError, match="no 'lab'"):

@@ -122,7 +122,9 @@ def test_scores_and_bands_on_a_hand_example():
     assert s["D"]["En"] == pytest.approx(0.3 / math.sqrt(0.1 ** 2 + 0.2 ** 2))
     assert s["D"]["en_band"] == "unsatisfactory"  # 1.34
     assert s["B"]["En"] is None  # no U reported
-    assert s["R"]["En"] == 0.0 and s["R"]["en_band"] == "satisfactory"
+    # The reference laboratory is not scored against its own result.
+    assert s["R"]["reference"] is True
+    assert (s["R"]["z"], s["R"]["En"], s["R"]["band"], s["R"]["en_band"]) == (None,) * 4
 
 
 @pytest.mark.parametrize("score, band", [(2.0, "satisfactory"), (-2.0, "satisfactory"),
