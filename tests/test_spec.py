@@ -59,6 +59,27 @@ CASES = [
      "design.run_order: 'latin' is not allowed; use one of 'random' or 'balanced'", "run_order"),
     ("receive-before-history", lambda s: s.replace("receive_by: 2027-01-19", "receive_by: 2026-09-01"),
      "schedule.receive_by: 2026-09-01 is not after the last past round", "receive_by"),
+    ("sigma-pt-two-policies", lambda s: s.replace("sigma_pt: {percent: 5}",
+                                                  "sigma_pt: {percent: 5, value: 0.2}"),
+     "evaluation.sigma_pt: give exactly one of value, percent, precision, participants "
+     "(found value, percent)", "sigma_pt: {percent: 5, value"),
+    ("sigma-pt-unknown-policy", lambda s: s.replace("sigma_pt: {percent: 5}",
+                                                    "sigma_pt: {percnt: 5}"),
+     "evaluation.sigma_pt.percnt: unknown key 'percnt'; did you mean 'percent'?", "percnt"),
+    ("sigma-pt-negative", lambda s: s.replace("sigma_pt: {percent: 5}", "sigma_pt: -0.2"),
+     "evaluation.sigma_pt.value: -0.2 is out of range; it must be > 0", "sigma_pt: -0.2"),
+    ("sigma-pt-precision-upside-down", lambda s: s.replace(
+        "sigma_pt: {percent: 5}", "sigma_pt: {precision: {sigma_R: 0.1, sigma_r: 0.3}}"),
+     "evaluation.sigma_pt.precision.sigma_R: 0.1 is smaller than sigma_r 0.3", "sigma_R: 0.1"),
+    ("sigma-pt-tiny-minimum", lambda s: s.replace(
+        "sigma_pt: {percent: 5}", "sigma_pt: {participants: {min_participants: 2}}"),
+     "evaluation.sigma_pt.participants.min_participants: 2 is out of range; it must be >= 3",
+     "min_participants"),
+    ("sigma-pt-unknown-material", lambda s: s.replace(
+        "  sigma_pt: {percent: 5}", "  sigma_pt: {percent: 5}\n  by_material:\n"
+        "    PP-H21: {sigma_pt: 0.4}"),
+     "evaluation.by_material.PP-H21: 'PP-H21' is not a material of this study; did you mean "
+     "'PP-H12'?", "PP-H21"),
 ]
 
 

@@ -279,10 +279,12 @@ def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any]) -> str:
                         else "") + ".")
     if unbanded:
         reasons = list(dict.fromkeys(str(s["scores"][m].get("no_band")) for m in unbanded))
-        lead = ("No score of this round carries a band" if not banded
-                else f"No band for {', '.join(unbanded)}")
+        lead = ("No z score of this round carries a band" if not banded
+                else f"No z score band for {', '.join(unbanded)}")
         parts.append(f"{lead}: {'; '.join(reasons)}. Your difference from the assigned value "
-                     "(D%) is given instead; read it against the precision of your method.")
+                     "(D%) is given instead; read it against the precision of your method."
+                     + (" En, which rests on the uncertainties stated, keeps its band."
+                        if any(e.get("En") is not None for e in scored.values()) else ""))
     if not scored and not parts:
         parts.append("No result of your laboratory was evaluated in this round.")
     return " ".join(parts)

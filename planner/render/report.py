@@ -106,7 +106,7 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
     for why, mats in reasons.items():
         which = ("any material" if len(mats) == len(statistics["materials"])
                  else ", ".join(mats))
-        out.append(f"no bands for {which}: {why}")
+        out.append(f"no z-score bands for {which}: {why}")
     largest = largest_differences(statistics, [m for ms in reasons.values() for m in ms])
     if largest:
         out.append("largest difference from the assigned value of each laboratory (no band): "

@@ -447,7 +447,7 @@ def summary_text(result: Mapping[str, Any]) -> str:
             out.append(f"  ... and {len(flags) - _MAX_FLAGS} more (see the full result)")
     for reason, where in unbanded.items():
         out.append("")
-        out.append(f"no bands for {', '.join(where)}: {reason}.")
+        out.append(f"no z-score bands for {', '.join(where)}: {reason}.")
         out.append("difference of each laboratory from the assigned value, D (D%):")
         for m in where[:_MAX_FLAGS]:
             labs_m = result["scores"][m]["labs"]
