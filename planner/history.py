@@ -61,11 +61,14 @@ def _material_entry(scores: Mapping[str, Any], lab: str) -> dict[str, Any] | Non
     entry = scores.get("labs", {}).get(lab)
     if not entry:
         return None
+    if entry.get("reference"):
+        return None  # the reference laboratory is the assigned value, not scored
     use_prime = bool(scores.get("use_z_prime"))
     z = entry.get("z_prime") if use_prime else entry.get("z")
-    if z is None:
-        return None
     mean, assigned = entry.get("mean"), scores.get("assigned_value")
+    if z is None and (mean is None or assigned is None):
+        return None
+    # A round without bands (too few participants) still tells the bias, not the z.
     bias = mean - assigned if mean is not None and assigned is not None else None
     bias_pct = 100.0 * bias / assigned if bias is not None and assigned else None
     return {"z": z, "score": "z'" if use_prime else "z", "bias": bias, "bias_pct": bias_pct}
@@ -113,7 +116,7 @@ def collect(study_dir: Path, *, labs: Sequence[str] = ()) -> dict[str, Any]:
                     materials[m] = got
             if not materials and r["host"] != lab:
                 continue
-            zs = [e["z"] for e in materials.values()]
+            zs = [e["z"] for e in materials.values() if e["z"] is not None]
             per_round[r["round"]] = {
                 "hosted": r["host"] == lab,
                 "materials": materials,

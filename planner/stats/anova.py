@@ -2,8 +2,9 @@
 
 The classical fixed-effects ANOVA table: between-group and within-group sums of
 squares, degrees of freedom, mean squares, F and its p-value. The sums are taken
-about a data value first (the data of a ring trial often share many leading
-digits) and added with ``math.fsum``; with ``exact=True`` every value is read as
+in steps of the data's decimal resolution counted from a data value (the data of
+a ring trial often share many leading digits; see ``_common.to_units``) and added
+with ``math.fsum``; with ``exact=True`` every value is read as
 the decimal number its shortest ``repr`` shows and the table is computed in exact
 rational arithmetic. Verified against the NIST StRD ANOVA datasets.
 """
@@ -16,7 +17,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import TYPE_CHECKING
 
-from planner.stats._common import f_sf, factorize
+from planner.stats._common import f_sf, factorize, to_units
 
 if TYPE_CHECKING:
     import numpy as np
@@ -86,10 +87,10 @@ def _sums_float(x: NDArray[np.float64], codes: NDArray[np.intp],
                 k: int) -> tuple[float, float, float]:
     import numpy as np
 
-    # Centre on a data value: the differences of nearby floats are exact (Sterbenz),
-    # so the constant leading digits no longer cost precision.
-    centre = float(x[0])
-    d = x - centre
+    # In steps of the reporting resolution from a data value (``_common.to_units``):
+    # whole steps add up exactly, and the constant leading digits cost no precision.
+    units = to_units(x)
+    d = units.u
     n = np.bincount(codes, minlength=k).astype(np.float64)
     m = np.bincount(codes, weights=d, minlength=k) / n
     e = d - m[codes]
@@ -98,7 +99,8 @@ def _sums_float(x: NDArray[np.float64], codes: NDArray[np.intp],
     ssw = math.fsum((e * e).tolist()) - math.fsum((left * left / n).tolist())
     grand = math.fsum(d.tolist()) / x.size
     ssb = math.fsum((n * (m - grand) ** 2).tolist())
-    return ssb, max(ssw, 0.0), centre + grand
+    return (units.scale(units.scale(ssb)), units.scale(units.scale(max(ssw, 0.0))),
+            units.value(grand))
 
 
 def _sums_exact(x: NDArray[np.float64], codes: NDArray[np.intp],
