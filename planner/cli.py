@@ -518,6 +518,9 @@ def analyze(
         "the robust SD of the results, with bands from 8 laboratories on).")] = None,
     sigma_pt_percent: Annotated[float | None, typer.Option(
         "--sigma-pt-percent", help="sigma_pt as this percentage of the assigned value.")] = None,
+    reference_lab: Annotated[str | None, typer.Option(
+        "--reference-lab", help="The laboratory whose mean is the assigned value (default: "
+        "the consensus of all, with bands from 5 laboratories on).")] = None,
     as_json: JsonOpt = False,
 ) -> None:
     """Run the round statistics on any long-format CSV, without a study."""
@@ -537,7 +540,11 @@ def analyze(
     policy = (iso13528.SigmaPt("percent", percent=sigma_pt_percent)
               if sigma_pt_percent is not None else sigma_pt)
     rows = stats.read_long_csv(file)
-    result = stats.evaluate_table(rows, tolerance=tolerance, sigma_pt=policy)
+    if reference_lab is not None:
+        stats.check_reference(rows, reference_lab)
+    result = stats.evaluate_table(
+        rows, tolerance=tolerance, sigma_pt=policy, reference_lab=reference_lab,
+        assigned="reference" if reference_lab is not None else "consensus")
     if as_json:
         _print_json(result)
     else:

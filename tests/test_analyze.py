@@ -60,13 +60,25 @@ def test_json_has_the_structure_of_statistics_json(small, runner):
 
 
 def test_sigma_pt_gives_z_by_its_definition(small, runner):
-    res = run_cli(runner, "analyze", small, "--json", "--sigma-pt", "0.5")
+    # Three laboratories: a consensus of 3 supports no band, so the assigned value is the
+    # reference laboratory l1's mean (10.2).
+    res = run_cli(runner, "analyze", small, "--json", "--sigma-pt", "0.5",
+                  "--reference-lab", "l1")
     out = json.loads(res.stdout)
     sc = out["scores"]["A"]
-    assert sc["sigma_pt"] == 0.5
+    assert sc["sigma_pt"] == 0.5 and sc["assigned_value"] == pytest.approx(10.2, rel=1e-12)
     # z = (x - x_pt) / sigma_pt on the laboratory mean (ISO 13528 §9; arithmetic here)
     mean_l2 = np.mean([10.6, 10.5])
-    assert sc["labs"]["l2"]["z"] == pytest.approx((mean_l2 - sc["assigned_value"]) / 0.5)
+    assert sc["labs"]["l2"]["z"] == pytest.approx((mean_l2 - 10.2) / 0.5)
+    assert sc["labs"]["l1"]["reference"] is True and sc["labs"]["l1"]["z"] is None
+
+
+def test_a_consensus_of_three_gives_no_band_and_says_why(small, runner):
+    res = run_cli(runner, "analyze", small, "--sigma-pt", "0.5")
+    assert res.exit_code == 0
+    text = " ".join(res.stdout.split())
+    assert "no z-score bands for A, B: the assigned value is the consensus of only 3" in text
+    assert "name a reference laboratory" in text
 
 
 def test_table_on_screen(small, runner):

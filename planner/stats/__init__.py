@@ -318,7 +318,8 @@ def _check_row(row: Any, i: int, got: tuple[Any, ...]) -> None:
         raise DataError(f"value {got[3]!r} is not a number", where) from None
     if not math.isfinite(value):
         raise DataError(f"value {got[3]!r} is not a finite number", where)
-    _check_magnitude(value, where)
+    _check_magnitude(value, where, f"the value {value!r} of material {got[0]!r}, lab "
+                                   f"{got[1]!r}, trial {got[2]!r}")
 
 
 def _plain(obj: Any) -> Any:

@@ -17,12 +17,14 @@ sigma_pt follows a policy (``SigmaPt``), the approaches of ISO 13528:2022 clause
 §8.4), the precision of a previous collaborative study (§8.5: sigma_pt^2 = sigma_R^2 -
 (1 - 1/n) sigma_r^2 for a laboratory mean of n results), or the participants' robust
 SD (§8.6). ISO 13528:2022 §5.4 treats small numbers of participants (title confirmed;
-its advice from memory: estimates from few participants are unreliable, prefer a
-sigma_pt from outside the round). With Algorithm A, four or fewer participants can
-never reach |z| = 2 against their own robust SD (tests/stats/test_iso13528.py shows
-it), and below ``MIN_PARTICIPANTS`` its power to find a biased laboratory is poor
-(tests/benchmarks/bench_verdicts.py); so a participants' sigma_pt from fewer than
-``MIN_PARTICIPANTS`` carries no band, and the result says why.
+its advice from memory: estimates from few participants are unreliable, prefer values
+from outside the round). With Algorithm A, four or fewer participants can never reach
+|z| = 2 against their own robust SD, nor |z'| = 2 against their own consensus whatever
+sigma_pt is (see ``MIN_CONSENSUS``), and below ``MIN_PARTICIPANTS`` the robust SD finds
+a biased laboratory far less often than a fixed sigma_pt does
+(tests/benchmarks/bench_verdicts.py). So a consensus of fewer than ``MIN_CONSENSUS``
+participants, or a participants' sigma_pt from fewer than ``MIN_PARTICIPANTS``, gives
+no z or E_n band, and the result says why.
 
 Our choices, documented:
 
@@ -60,7 +62,7 @@ if TYPE_CHECKING:
     import numpy as np
     from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["SOURCE", "MIN_PARTICIPANTS", "SigmaPt", "RobustEstimate", "Scores", "algorithm_a",
+__all__ = ["SOURCE", "MIN_PARTICIPANTS", "MIN_CONSENSUS", "SigmaPt", "RobustEstimate", "Scores", "algorithm_a",
            "evaluate", "band_z", "band_en"]
 
 SOURCE = ("ISO 13528:2015 (2nd ed.) and ISO 13528:2022 (3rd ed.), Statistical methods for use "
@@ -73,9 +75,21 @@ MIN_PARTICIPANTS = 8
 
 Eight is the lower end of the 8-15 laboratories ISO 5725-1:1994 §6.3.4 gives as
 practical for a precision experiment (as cited by ISO/TR 21074:2016). The simulation in
-tests/benchmarks/bench_verdicts.py backs it: against the participants' own robust SD,
-4 participants never flag a laboratory 4 sigma_pt off, 5 do so about half as often as
-a fixed sigma_pt would, and from 8 the rate comes within reach of a fixed sigma_pt.
+tests/benchmarks/bench_verdicts.py backs it: a laboratory 4 sigma_pt off is flagged
+against the participants' own robust SD in 14 % of 5-laboratory rounds where a fixed
+sigma_pt flags it in 52 %, and in 69 % of 8-laboratory rounds against 89 %.
+"""
+
+MIN_CONSENSUS = 5
+"""Fewest participants whose Algorithm A consensus may serve as the assigned value with bands.
+
+With p - 1 equal values and one far away, a winsorizing step multiplies s* by
+1.134 x 1.5 x sqrt(p) / (p - 1), which is 1 or more for p <= 4: s* then grows with the
+far value, which is never set aside, and pulls x* and u(x_pt) after it. Against such a
+consensus a laboratory any distance off never gets past |z'| = 1.41 with 3 participants
+or 2.12 with 4, whatever sigma_pt is (tests/stats/test_verdicts.py,
+tests/benchmarks/bench_verdicts.py). Smaller rounds need a reference laboratory for the
+assigned value.
 """
 
 # Algorithm A constants: 1.483 ~ 1/Phi^-1(0.75); 1.134 ~ 1/SD of a standard normal
@@ -345,6 +359,13 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
     x_pt_value = units.value(x_pt)
     sig, no_band = _sigma(policy, units, robust, p=p, x_pt=x_pt_value,
                           n=majority(n.astype(int).tolist()))
+    weak_consensus = assigned == "consensus" and p < MIN_CONSENSUS
+    if weak_consensus:
+        no_band = (f"the assigned value is the consensus of only {p} participants, and "
+                   f"Algorithm A cannot set a stray result aside among fewer than "
+                   f"{MIN_CONSENSUS}, so a laboratory any distance off could look "
+                   "satisfactory; name a reference laboratory for the assigned value to have "
+                   "bands")
     sig_source = policy.describe()
     if sig is not None and sig < units.rounding_sd * (1 - _SLACK):
         no_band = (f"sigma_pt = {units.scale(sig):.3g} is smaller than the spread that "
@@ -360,7 +381,7 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
     nan = np.full(p_all, np.nan)
     z = dev / sig if banded and sig else nan
     zp = dev / math.sqrt(sig * sig + u_pt * u_pt) if use_zp else nan  # type: ignore[operator]
-    if u_pt is not None:
+    if u_pt is not None and not weak_consensus:
         with np.errstate(invalid="ignore", divide="ignore"):
             en = dev / np.sqrt(lab_u ** 2 + (2.0 * u_pt) ** 2)
     else:

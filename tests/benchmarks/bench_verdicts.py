@@ -11,7 +11,8 @@ band of questionable or unsatisfactory (|score| > 2), "unsat" is unsatisfactory
 A round without bands (participants' SD below the minimum) counts as not flagged; its
 share is reported as "no band". False flags are the share of unbiased laboratories
 flagged, in rounds with no biased laboratory ("false 0σ") and among the others when one
-laboratory is 4 sigma_pt off ("false @4σ").
+laboratory is 4 sigma_pt off ("false @4σ"); "z' used" is the share of rounds whose bands
+come from z'.
 
 Data are hierarchical, so that the precision policy is tested as it is meant: each
 laboratory reports n = 2 results, lab effect N(0, sigma_L^2) plus repeats N(0, sigma_r^2),
@@ -21,10 +22,15 @@ precision policy gets sigma_R^2 = sigma_L^2 + sigma_r^2, so that sqrt(sigma_R^2 
 decimals (step 1e-4 sigma_pt, so they act as continuous). Every policy scores the same
 simulated rounds, so differences between policies are not sampling noise of the data.
 
-A second table gives, for p = 2..8, the largest |z| (and |z'|) of any laboratory against
-the participants' own robust SD when one laboratory (single result) sits 10, 100 or 1e4
-sigma away from the others (N(0, 1)), over a few hundred draws: it shows whether a small
-round can flag anyone at all.
+The last policy, "fixed, reference lab", takes the mean of an unbiased laboratory as the
+assigned value (the set-up planner advises below 5 laboratories); the reference
+laboratory is not scored, so its false-flag rates count p - 1 (or p - 2) laboratories.
+
+A second table gives, for p = 2..8, the largest |z| of any laboratory against the
+participants' own robust SD, and the largest |z'| against their consensus with a fixed
+sigma_pt, when one laboratory (single result) sits 10, 100 or 1e4 sigma away from the
+others (N(0, 1)), over a few hundred draws, computed from Algorithm A directly: it shows
+whether a small round could flag anyone at all without planner's gates.
 
 Run from the repository root: ``python tests/benchmarks/bench_verdicts.py [--reps N]
 [--seed S]``. The default (2000 replications per cell, 200 000 calls of ``evaluate``)
@@ -39,8 +45,14 @@ import math
 import sys
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+
+if TYPE_CHECKING:
+    from numpy.random import Generator
+
+    from planner.stats.iso13528 import SigmaPt
 
 LEVEL, SIGMA_PT, N_REP, SIGMA_r = 100.0, 1.0, 2, 0.5
 SIGMA_L = math.sqrt(SIGMA_PT ** 2 - SIGMA_r ** 2 / N_REP)
@@ -51,20 +63,26 @@ BIASES = (0, 2, 3, 4)
 FLAGGED = ("questionable", "unsatisfactory")
 
 
-def policies() -> dict[str, object]:
+REFERENCE = "L01"  # an unbiased laboratory, the assigned value of the "reference" rows
+
+
+def policies() -> dict[str, tuple[SigmaPt, str]]:
+    """Return name -> (sigma_pt policy, assigned value: "consensus" or "reference")."""
     from planner.stats.iso13528 import SigmaPt
 
     return {
-        "fixed": SigmaPt("fixed", value=SIGMA_PT),
-        "percent": SigmaPt("percent", percent=100.0 * SIGMA_PT / LEVEL),
-        "precision": SigmaPt("precision", sigma_R=SIGMA_R, sigma_r=SIGMA_r),
-        "participants (min 8)": SigmaPt("participants"),
-        "participants (no min)": SigmaPt("participants", min_participants=2),
+        "fixed": (SigmaPt("fixed", value=SIGMA_PT), "consensus"),
+        "percent": (SigmaPt("percent", percent=100.0 * SIGMA_PT / LEVEL), "consensus"),
+        "precision": (SigmaPt("precision", sigma_R=SIGMA_R, sigma_r=SIGMA_r), "consensus"),
+        "participants (min 8)": (SigmaPt("participants"), "consensus"),
+        "participants (no min)": (SigmaPt("participants", min_participants=2), "consensus"),
+        "fixed, reference lab": (SigmaPt("fixed", value=SIGMA_PT), "reference"),
     }
 
 
-def simulate(p: int, bias: float, reps: int, rng, pols: dict[str, object]) -> dict[str, list[int]]:  # type: ignore[no-untyped-def]
-    """Return per policy [biased flagged, biased unsat, others flagged, no band] counts."""
+def simulate(p: int, bias: float, reps: int, rng: Generator,
+             pols: dict[str, tuple[SigmaPt, str]]) -> dict[str, list[int]]:
+    """Return per policy [biased flagged, biased unsat, others flagged, no band, z'] counts."""
     import numpy as np
 
     from planner.stats.iso13528 import evaluate
@@ -75,11 +93,12 @@ def simulate(p: int, bias: float, reps: int, rng, pols: dict[str, object]) -> di
     # Lab 0 carries the bias even when bias is 0, so it is one more unbiased lab then.
     effect[:, 0, 0] += bias * SIGMA_PT
     data = np.round(LEVEL + effect + rng.normal(0.0, SIGMA_r, (reps, p, N_REP)), DECIMALS)
-    counts = {name: [0, 0, 0, 0] for name in pols}
+    counts = {name: [0, 0, 0, 0, 0] for name in pols}
     for r in range(reps):
         values = data[r].ravel()
-        for name, pol in pols.items():
-            s = evaluate(values, labs, sigma_pt=pol)
+        for name, (pol, assigned) in pols.items():
+            s = evaluate(values, labs, sigma_pt=pol, assigned=assigned,
+                         reference_lab=REFERENCE if assigned == "reference" else None)
             c = counts[name]
             if not s.banded:  # type: ignore[union-attr]
                 c[3] += 1
@@ -88,28 +107,32 @@ def simulate(p: int, bias: float, reps: int, rng, pols: dict[str, object]) -> di
             c[0] += bands[0] in FLAGGED
             c[1] += bands[0] == "unsatisfactory"
             c[2] += sum(b in FLAGGED for b in bands[1:])
+            c[4] += s.use_z_prime  # type: ignore[union-attr]
     return counts
 
 
-def max_scores(p: int, distance: float, draws: int, rng) -> tuple[float, float]:  # type: ignore[no-untyped-def]
-    """Return the largest |z| and |z'| of any lab, one lab ``distance`` sigma from the rest."""
+def max_scores(p: int, distance: float, draws: int, rng: Generator) -> tuple[float, float]:
+    """Return the largest |z| against the participants' robust SD and the largest |z'|
+    against their consensus with a fixed sigma_pt, one lab ``distance`` sigma from the rest.
+
+    Computed from ``algorithm_a`` directly, so that the gates of ``evaluate`` (no band
+    below MIN_CONSENSUS or MIN_PARTICIPANTS) do not hide what the scores would be.
+    """
     import numpy as np
 
-    from planner.stats.iso13528 import SigmaPt, evaluate
+    from planner.stats.iso13528 import algorithm_a
 
-    pol = SigmaPt("participants", min_participants=2)
-    names = [f"L{i}" for i in range(p)]
     top_z = top_zp = 0.0
     for _ in range(draws):
-        x = LEVEL + rng.normal(0.0, SIGMA_PT, p)
+        x = np.round(LEVEL + rng.normal(0.0, SIGMA_PT, p), DECIMALS)
         x[0] += distance * SIGMA_PT
-        s = evaluate(np.round(x, DECIMALS), names, sigma_pt=pol)
-        if not s.banded:  # type: ignore[union-attr]
+        est = algorithm_a(x)
+        if not est.s > 0:
             continue
-        for nm in names:
-            entry = s.labs[nm]  # type: ignore[union-attr]
-            top_z = max(top_z, abs(entry["z"] or 0.0))
-            top_zp = max(top_zp, abs(entry["z_prime"] or 0.0))
+        dev = np.abs(x - est.x)
+        u_pt = 1.25 * est.s / math.sqrt(p)  # ISO 13528 §7.7.3 (from memory)
+        top_z = max(top_z, float(dev.max()) / est.s)
+        top_zp = max(top_zp, float(dev.max()) / math.hypot(SIGMA_PT, u_pt))
     return top_z, top_zp
 
 
@@ -141,9 +164,11 @@ def main() -> None:
     print("flag = questionable or unsatisfactory (|score| > 2), unsat = |score| >= 3, score ="
           " z or z'; no-band rounds count as not flagged")
     head = (f"{'p':>3} | " + " | ".join(f"{b}σ flag unsat" for b in BIASES[1:])
-            + " | false 0σ false @4σ | no band")
+            + " | false 0σ false @4σ | no band z' used")
     for name in pols:
-        print(f"\n{name}: {pols[name].describe()}")  # type: ignore[attr-defined]
+        print(f"\n{name}: {pols[name][0].describe()}; assigned value: "
+              + ("consensus (Algorithm A)" if pols[name][1] == "consensus"
+                 else f"the unbiased laboratory {REFERENCE}"))
         print(head)
         print("-" * len(head))
         for p in PS:
@@ -153,13 +178,17 @@ def main() -> None:
                 cells.append(f"{pct(c[0], args.reps):>7} {pct(c[1], args.reps):>5}")
             none, four = res[p, 0][name], res[p, 4][name]
             # With no biased lab every lab is an unbiased one; with one at 4σ, p - 1 are.
-            false0 = pct(none[0] + none[2], args.reps * p)
-            false4 = pct(four[2], args.reps * (p - 1))
-            nob = pct(sum(res[p, b][name][3] for b in BIASES), args.reps * len(BIASES))
-            print(f"{p:>3} | " + " | ".join(cells) + f" | {false0:>8} {false4:>9} | {nob:>7}")
+            ref = pols[name][1] == "reference"  # the reference laboratory is not scored
+            false0 = pct(none[0] + none[2], args.reps * (p - ref))
+            false4 = pct(four[2], args.reps * (p - 1 - ref))
+            nob, zp = (pct(sum(res[p, b][name][k] for b in BIASES), args.reps * len(BIASES))
+                       for k in (3, 4))
+            print(f"{p:>3} | " + " | ".join(cells)
+                  + f" | {false0:>8} {false4:>9} | {nob:>7} {zp:>7}")
 
-    print(f"\nlargest |z| and |z'| of any lab against the participants' own robust SD (no "
-          f"minimum), one lab d sigma from p - 1 others drawn N(0, 1), {args.draws} draws each")
+    print(f"\nlargest |z| of any lab against the participants' own robust SD, and |z'| against "
+          f"their consensus with a fixed sigma_pt = 1 (no gates), one lab d sigma from p - 1 "
+          f"others drawn N(0, 1), {args.draws} draws each")
     distances = (10.0, 100.0, 1e4)
     head = f"{'p':>3} | " + " | ".join(f"d = {d:<6g} |z|   |z'|" for d in distances)
     print(head)
