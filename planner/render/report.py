@@ -432,10 +432,11 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     rows_high = min(len(s["labs"]), 12) * 5.2 * _MM
     out: list[Any] = [CondPageBreak(30 * _MM + rows_high), d.p("Scores by laboratory", "h2"),
                       d.p("The score that decides the band of each material (z, or z' where "
-                          "marked in the heading); amber: questionable, red: unsatisfactory. "
-                          "A material marked D% has no band (see the summary): its column "
-                          "gives the difference from the assigned value in per cent.",
-                          "small")]
+                          "marked in the heading); amber: questionable, red: unsatisfactory."
+                          + (" A material marked D% has no band (see the summary): its "
+                             "column gives the difference from the assigned value in per cent."
+                             if any(not s["scores"].get(m, {}).get("banded") for m in mats)
+                             else ""), "small")]
     chunk = 10  # materials per table, so that the columns stay readable
     for start in range(0, len(mats), chunk):
         part = mats[start:start + chunk]
