@@ -6,6 +6,11 @@ the ledger (or when forced with a recorded reason) and checks that its SHA-256
 equals the fingerprint published before shipping. ``verify_round`` rebuilds
 the round from the spec and the key's secret and names every unit that differs,
 so anyone can check that the key was not edited after the results came in.
+
+``check_fingerprint`` is the one place a key meets its fingerprint. It trusts
+the fingerprint the ledger recorded at planning, and the manifest's must agree;
+``key.fingerprint`` is a copy for ``sha256sum`` that anyone can rewrite, so no
+check reads it. ``read_key`` and ``open_key`` hand out only keys that passed.
 """
 
 from __future__ import annotations
@@ -24,7 +29,8 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict",
-           "report_slots", "round_slots", "slot_runs", "split_slot"]
+           "report_slots", "round_slots", "slot_runs", "split_slot", "check_fingerprint",
+           "read_key", "open_key"]
 
 
 def split_slot(slot: str) -> tuple[str, str | None]:
@@ -93,13 +99,71 @@ def check_gate(study: Study, ledger: Ledger, round_id: str, *, force: bool = Fal
     return missing
 
 
+def _short(print_: str) -> str:
+    return f"{print_[:16]}..."
+
+
+def check_fingerprint(folder: Path, ledger: Ledger, round_id: str, key_json: bytes, *,
+                      source: str = seal.KEY_NAME) -> str:
+    """Return the round's fingerprint once the SHA-256 of ``key_json`` equals both the one the
+    ledger recorded at planning and the manifest's.
+
+    ``source`` is the file the key came from: key.json, or key.sealed for a key decrypted
+    in memory (pass its canonical JSON). Raises LedgerError when the round is not in the
+    ledger, else SealError naming the two that differ: the key and the ledger (at the key's
+    file) or the manifest and the ledger (at manifest.json).
+    """
+    current = ledger.current_round(round_id)
+    if current is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder")
+    # The ledger's copy is the reference: the manifest and key.fingerprint are plain files
+    # beside the key, and whoever can rewrite the key can rewrite them too.
+    planned = current.fingerprint
+    published = str(plan.read_manifest(folder).get("fingerprint"))
+    actual = seal.fingerprint(key_json)
+    if actual != planned:
+        if published == actual:
+            also = f"; {plan.MANIFEST_NAME} was rewritten to match the key"
+        elif published != planned:
+            also = f"; {plan.MANIFEST_NAME} holds a third one, {_short(published)}"
+        else:
+            also = ""
+        what = ("its SHA-256" if source == seal.KEY_NAME
+                else "the SHA-256 of the key decrypted from it")
+        raise SealError(f"{what} {_short(actual)} does not equal the fingerprint recorded in the "
+                        f"ledger at planning, {_short(planned)}{also}; this is not the key "
+                        "fixed before shipping", Where(str(folder / source)))
+    if published != planned:
+        raise SealError(f"its fingerprint {_short(published)} does not equal the one recorded "
+                        f"in the ledger at planning, {_short(planned)}, which the key matches; "
+                        "the manifest was changed", Where(str(folder / plan.MANIFEST_NAME)))
+    return planned
+
+
+def read_key(folder: Path, ledger: Ledger, round_id: str) -> dict[str, Any]:
+    """Return the decoded key.json of an unsealed round once ``check_fingerprint`` passed it;
+    raise SealError while the key is sealed or when it does not match."""
+    key_json = seal.read_key_json(folder)
+    check_fingerprint(folder, ledger, round_id, key_json)
+    return dict(json.loads(key_json))
+
+
+def open_key(folder: Path, ledger: Ledger, round_id: str, *, passphrase: str) -> dict[str, Any]:
+    """Return the key decrypted in memory from key.sealed once ``check_fingerprint`` passed its
+    canonical JSON; raise SealError if it cannot be opened or does not match."""
+    key = seal.open_key(folder, passphrase)
+    check_fingerprint(folder, ledger, round_id, seal.canonical(key), source=seal.SEALED_NAME)
+    return key
+
+
 def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
                  passphrase: str, force: bool = False, reason: str | None = None) -> Path:
     """Decrypt the key, write key.json (owner-only) and record the event; return its path.
 
     Raises LedgerError while results are missing (unless ``force`` with a
     ``reason``) and SealError for a wrong passphrase, a damaged file or a key
-    that does not match its fingerprint.
+    that does not match its fingerprint (``check_fingerprint``).
     """
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
@@ -110,44 +174,63 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
         raise SealError(f"the sealed key belongs to study {key.get('study')!r} round "
                         f"{key.get('round')!r}, not to this round", Where(str(folder)))
     key_json = seal.canonical(key)
-    if seal.fingerprint(key_json) != manifest["fingerprint"]:
-        raise SealError("the key does not match the fingerprint in the manifest",
-                        Where(str(folder / plan.MANIFEST_NAME)))
+    planned = check_fingerprint(folder, ledger, round_id, key_json, source=seal.SEALED_NAME)
     target = folder / seal.KEY_NAME
     seal.write_private(target, key_json)
     with ledger.transaction():
         ledger.record_event(round_id, "unsealed", {
-            "fingerprint": manifest["fingerprint"], "forced": bool(force and missing),
+            "fingerprint": planned, "forced": bool(force and missing),
             "reason": reason if force and missing else None, "missing": missing})
     return target
 
 
 @dataclass(frozen=True, slots=True)
 class Verdict:
-    fingerprint_ok: bool
+    """What ``verify_round`` found: one line per fingerprint the key disagrees with (the
+    ledger's, the manifest's, the one given), how many units it checked, and one line per
+    unit or run order that differs from the rebuild."""
+
+    fingerprint_findings: tuple[str, ...]
     units_checked: int
     differences: tuple[str, ...]
+
+    @property
+    def fingerprint_ok(self) -> bool:
+        return not self.fingerprint_findings
 
     @property
     def ok(self) -> bool:
         return self.fingerprint_ok and not self.differences
 
 
-def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger) -> Verdict:
-    """Check key.json against the fingerprint and rebuild the round from its secret.
+def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
+                 fingerprint: str | None = None) -> Verdict:
+    """Check key.json against the fingerprints and rebuild the round from its secret.
 
-    Returns a Verdict listing every unit whose code, material, kind,
-    laboratory, trial or position differs between the key and the rebuild.
+    Returns a Verdict with the findings of ``check_fingerprint``, a finding when
+    key.json differs from ``fingerprint`` (one a participant copied from its packing
+    list; spaces and case are ignored), and every unit whose code, material, kind,
+    laboratory, trial or position differs between the key and the rebuild. Raises
+    SealError while the key is sealed or for a malformed ``fingerprint``, LedgerError
+    for a round that is not in the ledger.
     """
+    given = None if fingerprint is None else seal.validate_fingerprint(fingerprint)
     folder = plan.round_dir(study_dir, round_id)
     path = folder / seal.KEY_NAME
-    try:
-        key_json = path.read_bytes()
-    except OSError:
-        raise SealError("the key has not been unsealed yet; run 'ringplan unseal' first",
-                        Where(str(path))) from None
+    key_json = seal.read_key_json(folder)
     manifest = plan.read_manifest(folder)
-    fingerprint_ok = seal.fingerprint(key_json) == manifest["fingerprint"]
+    findings: list[str] = []
+    try:
+        check_fingerprint(folder, ledger, round_id, key_json)
+    except SealError as exc:
+        # In an audit a disagreement is a finding to list, not a reason to stop looking.
+        findings.append(str(exc))
+    actual = seal.fingerprint(key_json)
+    if given is not None and actual != given:
+        findings.append(str(SealError(
+            f"its SHA-256 {_short(actual)} differs from the fingerprint given, {_short(given)}; "
+            "if it was copied right, this is not the key the packing list was printed for",
+            Where(str(path)))))
     try:
         key = json.loads(key_json)
         secret = bytes.fromhex(key["secret"])
@@ -164,4 +247,4 @@ def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger) -
         if published.get(slot) != runs:
             differences.append(f"manifest.json: the run orders of {slot!r} differ from the ones "
                                "the secret gives")
-    return Verdict(fingerprint_ok, len(found), tuple(differences))
+    return Verdict(tuple(findings), len(found), tuple(differences))

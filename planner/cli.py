@@ -113,6 +113,13 @@ def _load(study_dir: Path) -> Any:
     return spec.load(study_dir)
 
 
+def _round_study(study_dir: Path, round_id: str, ledger: Any) -> Any:
+    """Return the study as the round was planned (frozen), not today's study.yaml."""
+    from planner import plan
+
+    return plan.round_study(study_dir, round_id, ledger)
+
+
 # --- commands ------------------------------------------------------------------
 
 @app.command()
@@ -200,9 +207,17 @@ def history_command(
 ) -> None:
     """Show each laboratory's scores over the evaluated rounds and the host effect."""
     from planner import history
+    from planner.ledger import LEDGER_NAME, Ledger
 
     study = _load(study_dir)
-    record = history.collect(study_dir, labs=[lab.id for lab in study.laboratories])
+    labs = [lab.id for lab in study.laboratories]
+    folder = Path(study_dir)
+    if (folder / LEDGER_NAME).exists() or any(folder.glob("rounds/*/manifest.json")) or any(
+            folder.glob("rounds/*/report/statistics.json")):
+        with Ledger.open(study_dir, create=False) as ledger:
+            record = history.collect(study_dir, ledger, labs=labs)
+    else:
+        record = history.collect(study_dir, None, labs=labs)  # nothing planned, nothing to read
     if pdf:
         from planner.render import history as history_page
 
@@ -324,32 +339,44 @@ def unseal(
     from planner import audit
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    with Ledger.open(study_dir) as ledger:
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
         audit.check_gate(study, ledger, round_id, force=force, reason=reason)
         passphrase = _passphrase(passphrase_file, confirm=False)
         path = audit.unseal_round(study, study_dir, round_id, ledger, passphrase=passphrase,
                                   force=force, reason=reason)
-    typer.echo(f"wrote {path}; its SHA-256 equals key.fingerprint")
+    typer.echo(f"wrote {path}; its SHA-256 equals the fingerprint recorded in the ledger at "
+               "planning and printed on every packing list")
 
 
 @app.command()
 @_command
-def verify(study_dir: StudyDir, round_id: RoundOpt) -> None:
-    """Check key.json against the fingerprint and rebuild the round from its secret."""
-    from planner import audit
+def verify(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    fingerprint: Annotated[str | None, typer.Option(
+        help="The round fingerprint as printed on your packing list (spaces and case do not "
+        "matter); key.json must have this SHA-256.")] = None,
+) -> None:
+    """Check key.json against the fingerprints and rebuild the round from its secret."""
+    from planner import audit, seal
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    with Ledger.open(study_dir) as ledger:
-        verdict = audit.verify_round(study, study_dir, round_id, ledger)
-    if not verdict.fingerprint_ok:
-        _fail("key.json: its SHA-256 does not equal the fingerprint published before shipping")
+    if fingerprint is not None:
+        # a mistyped fingerprint is named before anything is opened
+        fingerprint = seal.validate_fingerprint(fingerprint, field="--fingerprint")
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
+        verdict = audit.verify_round(study, study_dir, round_id, ledger, fingerprint=fingerprint)
+    for line in verdict.fingerprint_findings:
+        _fail(line)
     for line in verdict.differences:
         _fail(line)
     if not verdict.ok:
         raise typer.Exit(1)
-    typer.echo(f"round {round_id}: fingerprint matches and all {verdict.units_checked} units "
+    given = " and the one given" if fingerprint is not None else ""
+    typer.echo(f"round {round_id}: key.json matches the fingerprint recorded in the ledger at "
+               f"planning, the manifest's{given}, and all {verdict.units_checked} units "
                "rebuild from the secret exactly")
 
 
@@ -393,8 +420,8 @@ def receive(
     from planner import codes, returns
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    with Ledger.open(study_dir) as ledger:
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
         receipts = returns.receive(study, study_dir, round_id, files, ledger, lab=lab,
                                    check_only=check_only, after_unseal=after_unseal,
                                    reason=reason, _pause=_test_pause())
@@ -409,7 +436,8 @@ def receive(
         else:
             newer = f" (supersedes version {r.supersedes})" if r.supersedes else ""
             typer.echo(f"{r.lab}: recorded version {r.version}{newer} from {r.file}: {counts}; "
-                       f"stored as {r.stored}")
+                       f"stored as {r.stored}; receipt {r.receipt} (ledger head "
+                       f"{r.chain_head})")
         if r.after_unseal:
             typer.echo(f"  AFTER UNSEAL: received after the key was opened ({reason})")
         if r.received_late:
@@ -431,8 +459,8 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
     from planner import status as standing
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    with Ledger.open(study_dir) as ledger:
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
         info = standing.round_status_table(study, study_dir, round_id, ledger,
                                            today=date.today())
     if as_json:
@@ -449,6 +477,8 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
                                    (f"spares:{r['spares_issued']}", r["spares_issued"])) if on)]
          for r in info.rows]))
     con.print("empty: rows without a value (remark given); missing: codes with no row yet")
+    for line in standing.describe_key(info.key):
+        con.print(line, markup=False)
     if info.unsealed:
         con.print("the key has been opened")
     elif info.may_open:
@@ -467,14 +497,16 @@ def spare(
     passphrase_file: PassFile = None,
 ) -> None:
     """Tell a laboratory which of its spare codes replaces a damaged or failed unit."""
-    from planner import codes, seal, spares
+    from planner import audit, codes, spares
     from planner import plan as planning
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    passphrase = _passphrase(passphrase_file, confirm=False)
-    key = seal.open_key(planning.round_dir(study_dir, round_id), passphrase)
-    with Ledger.open(study_dir) as ledger:
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
+        passphrase = _passphrase(passphrase_file, confirm=False)
+        # checked against the fingerprint the ledger recorded at planning
+        key = audit.open_key(planning.round_dir(study_dir, round_id), ledger, round_id,
+                             passphrase=passphrase)
         swap = spares.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
                                   key=key)
     typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
@@ -490,8 +522,8 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
     from planner import stats
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
-    with Ledger.open(study_dir) as ledger:
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
         folder = evaluation.evaluate_round(study, study_dir, round_id, ledger,
                                            workers=min(2, os.cpu_count() or 1))
     result = json.loads((folder / evaluation.STATISTICS_NAME).read_text(encoding="utf-8"))
@@ -504,6 +536,33 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
         typer.echo(f"drift of artefact {material} between the host's stops: {check['verdict']}")
     typer.echo(f"\nwrote {folder}: {evaluation.REPORT_NAME}, {evaluation.STATISTICS_NAME}, "
                f"{evaluation.RESULTS_NAME} and {len(study.laboratories)} letters")
+
+
+@app.command()
+@_command
+def chain(
+    study_dir: StudyDir,
+    link: Annotated[int | None, typer.Option(
+        help="Show this link of the chain (the number on a receipt or letter).")] = None,
+) -> None:
+    """Check the ledger's chain and show its head, to compare with a receipt or a letter."""
+    from planner.ledger import Ledger
+
+    with Ledger.open(study_dir, create=False) as ledger:
+        heads = ledger.heads()
+    if link is not None:
+        if not 1 <= link <= len(heads):
+            raise PlannerError(f"--link {link} does not exist; the chain has links 1 to "
+                               f"{len(heads)}")
+        h = heads[link - 1]
+        typer.echo(f"link {h.seq}, recorded {h.at}: {h.head}")
+        return
+    if not heads:
+        typer.echo("the ledger's chain is empty: nothing has been recorded yet")
+        return
+    h = heads[-1]
+    typer.echo(f"ledger intact: schema, guards and all {len(heads)} links of the chain check")
+    typer.echo(f"head: link {h.seq}, recorded {h.at}: {h.head}")
 
 
 @app.command()
@@ -600,14 +659,13 @@ def print_documents(
     passphrase_file: PassFile = None,
 ) -> None:
     """Print the labels, prep sheet, packing lists, run sheets and result forms of a round."""
+    from planner import audit, render, seal
     from planner import plan as planning
-    from planner import render, seal
     from planner.ledger import Ledger
 
-    study = _load(study_dir)
     offset = (offset_x, offset_y)
     if calibration:
-        name = sheet or study.study.label_sheet
+        name = sheet or _load(study_dir).study.label_sheet
         from planner.render import _sheets
 
         geometry = _sheets.load(name, [study_dir / "sheets"], field="--sheet")
@@ -617,18 +675,24 @@ def print_documents(
     if round_id is None:
         raise PlannerError("--round is required (or use --calibration)")
     folder = planning.round_dir(study_dir, round_id)
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
     chosen = [c for c in (codes_ or "").split(",") if c.strip()] or None
     # mistakes in the options are named before the passphrase is asked
     render.check_options(study, study_dir, planning.read_manifest(folder), only=only, lab=lab,
                          codes=chosen, sheet=sheet)
-    if (folder / seal.KEY_NAME).is_file():
-        key = seal.read_key_json(folder)
-    else:
-        key = seal.open_key(folder, _passphrase(passphrase_file, confirm=False))
+    # the key must match the fingerprint recorded in the ledger, so that no document is
+    # printed with a fingerprint someone wrote into the manifest afterwards
+    with Ledger.open(study_dir, create=False) as ledger:
+        if (folder / seal.KEY_NAME).is_file():
+            key = audit.read_key(folder, ledger, round_id)
+        else:
+            key = audit.open_key(folder, ledger, round_id,
+                                 passphrase=_passphrase(passphrase_file, confirm=False))
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
                                workers=min(2, os.cpu_count() or 1))
-    with Ledger.open(study_dir) as ledger, ledger.transaction():
+    with Ledger.open(study_dir, create=False) as ledger, ledger.transaction():
         ledger.record_event(round_id, "printed", {
             "documents": [p.relative_to(folder).as_posix() for p in paths],
             "only": only, "lab": lab, "codes": chosen, "start_at": start_at,

@@ -225,7 +225,8 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
         clock.set(prepare - timedelta(days=1))
         printed = render.print_round(study, out, ROUND, key=key, workers=workers)
         with ledger.transaction():
-            ledger.record_event(ROUND, "printed", {"documents": len(printed)})
+            ledger.record_event(ROUND, "printed", {
+                "documents": [p.relative_to(folder).as_posix() for p in printed]})
 
         biased = next(lab for lab in BIASED if lab != host)
         values = _simulate(study, result.units, seed=seed, biased=biased)

@@ -11,7 +11,8 @@ it), and writes into ``rounds/<round>/report/``:
                        material, lab, trial, code, value, uncertainty, flags);
                        ``ringplan analyze`` reads it as it is
 - ``statistics.json``  everything computed, the same structure ``ringplan
-                       analyze --json`` prints plus the round's identity
+                       analyze --json`` prints plus the round's identity and
+                       ``opening``: how the key was opened, as the ledger shows it
 - ``report.pdf``       for the coordinator, with the laboratories' ids
 - ``letter-<lab>.pdf`` one per laboratory: its own results and scores, the
                        others only under participant codes drawn anew each round
@@ -30,6 +31,7 @@ the test unit).
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 import math
@@ -235,13 +237,17 @@ def _without_host(full: Mapping[str, Any], alt: Mapping[str, Any], host: str,
 
 def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
                      missing: Sequence[Mapping[str, Any]] = (),
-                     visits: Mapping[str, Sequence[Unblinded]] | None = None) -> dict[str, Any]:
+                     visits: Mapping[str, Sequence[Unblinded]] | None = None,
+                     opening: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Return the statistics.json content of a round: the stats of every method and the identity.
 
     The host is left out of a second consensus; ``scores.<material>.without_host`` holds
     that consensus and its difference from the full one. ``visits`` (a circulating set)
     are the host's results of its later stops by visit; with them ``drift`` holds the
-    drift check of ``drift_check``. Raises DataError when no result has a value.
+    drift check of ``drift_check``. ``opening`` is the ledger's record of the key
+    (``status.read_key_history``); ``opening`` in the result holds of it ``at``, ``forced``,
+    ``reason``, ``missing``, ``early_decryptions``, ``first_result_at`` and
+    ``received_after``, and is None without it. Raises DataError when no result has a value.
     """
     from planner import stats
 
@@ -291,6 +297,7 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         "results": {"count": len(table), "per_lab": per_lab, "missing": list(missing),
                     "flags": flags},
         "participants": participant_codes(secret, [lab.id for lab in study.laboratories]),
+        "opening": _opening(opening),
     }
     out = {**head, **full}
     if visits is not None:
@@ -302,6 +309,17 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         out["drift"] = drift_check({"start": start, **visits}, sigma, materials=materials,
                                    codes_of=artefacts, host=host)
     return out
+
+
+def _opening(record: Mapping[str, Any] | None) -> dict[str, Any] | None:
+    """Return the part of the ledger's record of the key that statistics.json keeps."""
+    if record is None or not record.get("opened"):
+        return None
+    return {"at": record["at"], "forced": bool(record["forced"]), "reason": record["reason"],
+            "missing": list(record["missing"]),
+            "early_decryptions": [dict(e) for e in record["early_decryptions"]],
+            "first_result_at": record["first_result_at"],
+            "received_after": list(record["received_after"])}
 
 
 def sigma_policy(policy: SigmaPtPolicy) -> SigmaPt:
@@ -483,11 +501,15 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
                    workers: int = 2, results: Iterable[Any] | None = None) -> Path:
     """Unblind and evaluate an unsealed round; write report/ and record 'evaluated'; return report/.
 
+    The 'evaluated' event holds the SHA-256 of the statistics.json written
+    (``statistics_sha256``): history reads no other.
+
     ``results`` are the accepted results (default: read from the intake records).
     Raises LedgerError when the round was not planned here or its key is still sealed,
     SealError when key.json does not match the published fingerprint, DataError when
     the results cannot be joined to the key.
     """
+    from planner import status as standing
     from planner.render import letter, report
 
     folder = plan.round_dir(study_dir, round_id)
@@ -498,11 +520,15 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     if status not in ("unsealed", "evaluated"):
         raise LedgerError(f"round {round_id!r} is {status}, its key is still sealed; run "
                           "'ringplan unseal' once every laboratory has reported")
-    key = seal.read_key_json(folder)
+    from planner import audit
+
+    # The fingerprint recorded in the ledger at planning decides, not key.fingerprint.
+    key = audit.read_key(folder, ledger, round_id)
     if key.get("round") != round_id or key.get("study") != study.id:
         raise LedgerError(f"key.json belongs to study {key.get('study')!r} round "
                           f"{key.get('round')!r}, not to this round", Where(str(folder)))
     manifest = plan.read_manifest(folder)
+    opening = standing.read_key_history(ledger, round_id)
     accepted = (list(results) if results is not None else
                 accepted_results(study, ledger, round_id, manifest=manifest))
     if manifest.get("mode") == "circulate":
@@ -515,16 +541,19 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
         own = [r for r in accepted if _field(r, "visit") in (None, "", "start")]
         rows = _ordered(unblind(key, own), study)
         visits = {v: _ordered(unblind(key, rs), study) for v, rs in later.items()}
-        statistics = round_statistics(study, key, rows, visits=visits,
+        statistics = round_statistics(study, key, rows, visits=visits, opening=opening,
                                       missing=_missing_circulating(manifest, key, accepted))
     else:
         rows = _ordered(unblind(key, accepted), study)
-        statistics = round_statistics(study, key, rows, missing=_missing(key, rows))
+        statistics = round_statistics(study, key, rows, missing=_missing(key, rows),
+                                      opening=opening)
     out = folder / REPORT_DIR
     out.mkdir(parents=True, exist_ok=True)
     _write_text(out / RESULTS_NAME, results_csv(rows))
     _write_text(out / STATISTICS_NAME,
                 json.dumps(statistics, indent=1, ensure_ascii=False, allow_nan=False) + "\n")
+    # The bytes as they lie on disk, so that history can tell this file from an edited one.
+    written = hashlib.sha256((out / STATISTICS_NAME).read_bytes()).hexdigest()
     paper = study.study.paper
     report.render(out / REPORT_NAME, statistics, rows, paper=paper)
     addressees = [letter.Addressee(lab.id, lab.name, tuple(lab.address), lab.contact.name,
@@ -534,5 +563,6 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     with ledger.transaction():
         ledger.record_event(round_id, "evaluated", {
             "fingerprint": statistics["fingerprint"], "results": statistics["results"]["count"],
-            "missing": len(statistics["results"]["missing"]), "report": str(out.name)})
+            "missing": len(statistics["results"]["missing"]), "report": str(out.name),
+            "statistics_sha256": written})
     return out

@@ -29,7 +29,7 @@ __all__ = ["IDENTITY_KEYS", "Form", "FormRow", "cell_text", "read_form"]
 
 IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
 """Identity lines a returned form must carry."""
-_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit")
+_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit", "submission token")
 
 _XLSX_MAGIC = b"PK\x03\x04"
 _OLD_XLS_MAGIC = b"\xd0\xcf\x11\xe0"
@@ -207,7 +207,7 @@ def _read_xlsx(name: str, data: bytes) -> Form:
             found = _identity_line(str(filled[0]))
             if found is None and len(filled) >= 2:
                 key = str(filled[0]).strip().rstrip(":").strip().lower()
-                if key in IDENTITY_KEYS or key == "visit":
+                if key in IDENTITY_KEYS or key in ("visit", "submission token"):
                     found = (key, str(filled[1]).strip())
             if found:
                 identity.append((*found, number))

@@ -3,7 +3,10 @@
 ``collect`` reads every evaluated round of a study folder (the rounds whose
 ``report/statistics.json`` exists) and returns, per laboratory and round, its
 score and bias for each material, the round's host, and the host-effect
-estimate of ``estimate_host_effect``.
+estimate of ``estimate_host_effect``. It reads only evaluations the ledger
+recorded: a statistics.json is used when the round's last "evaluated" event
+holds its SHA-256, so a file edited afterwards, or put into a round folder the
+ledger never evaluated, is refused rather than quietly averaged in.
 
 Per material the score is the one the round's performance band is read from
 (z, or z' when the round used z'), against the consensus of all laboratories
@@ -22,13 +25,17 @@ description, not a test. With fewer than ``MIN_ROUNDS`` rounds on either side
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from planner.errors import DataError, Where
+
+if TYPE_CHECKING:
+    from planner.ledger import Ledger
 
 __all__ = ["HISTORY_FORMAT", "MIN_ROUNDS", "collect", "estimate_host_effect"]
 
@@ -74,7 +81,32 @@ def _material_entry(scores: Mapping[str, Any], lab: str) -> dict[str, Any] | Non
     return {"z": z, "score": "z'" if use_prime else "z", "bias": bias, "bias_pct": bias_pct}
 
 
-def _round_of(folder: Path) -> dict[str, Any]:
+def _check_recorded(path: Path, round_id: str, ledger: Ledger) -> None:
+    """Raise DataError unless the ledger's last evaluation of the round wrote this very file."""
+    recorded = None
+    for e in ledger.events(round_id):
+        if e.kind == "planned":
+            recorded = None  # a round planned again starts afresh
+        elif e.kind == "evaluated":
+            recorded = e
+    if recorded is None:
+        raise DataError(f"the ledger records no evaluation of round {round_id!r}, so "
+                        "'ringplan evaluate' did not write this file here; remove it, or "
+                        "evaluate the round", Where(str(path)))
+    want = recorded.detail.get("statistics_sha256")
+    if not want:
+        raise DataError(f"the ledger's evaluation of round {round_id!r} holds no SHA-256 of "
+                        "its statistics (an older ringplan wrote it); run 'ringplan evaluate' "
+                        "for the round again", Where(str(path)))
+    found = hashlib.sha256(path.read_bytes()).hexdigest()
+    if found != want:
+        raise DataError(f"the file was changed after round {round_id!r} was evaluated: its "
+                        f"SHA-256 is {found[:16]}..., the ledger recorded {str(want)[:16]}...; "
+                        "run 'ringplan evaluate' for the round again", Where(str(path)))
+
+
+def _round_of(folder: Path, ledger: Ledger) -> dict[str, Any]:
+    _check_recorded(folder / _STATISTICS, folder.name, ledger)
     stats = _read_json(folder / _STATISTICS)
     manifest_path = folder / _MANIFEST
     manifest = _read_json(manifest_path) if manifest_path.is_file() else {}
@@ -88,16 +120,23 @@ def _round_of(folder: Path) -> dict[str, Any]:
     }
 
 
-def collect(study_dir: Path, *, labs: Sequence[str] = ()) -> dict[str, Any]:
+def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = ()
+            ) -> dict[str, Any]:
     """Return the study's record: evaluated rounds, per laboratory and round the scores, host effect.
 
-    ``labs`` gives the order of laboratories (the spec's); others found follow
-    in order of appearance. Rounds come in order of their test start date,
-    then id. Raise DataError if a statistics file cannot be read.
+    ``ledger`` is the study's ledger (None only where no round folder holds statistics:
+    a statistics file without a ledger is refused). ``labs`` gives the order of laboratories (the
+    spec's); others found follow in order of appearance. Rounds come in order of their
+    test start date, then id. Raise DataError if a statistics file cannot be read, or
+    is not the one the ledger's last evaluation of its round recorded (edited since, or
+    in a folder of a round the ledger never evaluated).
     """
     base = Path(study_dir) / "rounds"
     folders = sorted(p for p in base.iterdir() if (p / _STATISTICS).is_file()) if base.is_dir() else []
-    rounds = sorted((_round_of(f) for f in folders),
+    if folders and ledger is None:
+        raise DataError("round folders hold statistics, but there is no ledger to show they "
+                        "were evaluated here", Where(str(folders[0] / _STATISTICS)))
+    rounds = sorted((_round_of(f, ledger) for f in folders if ledger is not None),
                     key=lambda r: (r["date"] is None, r["date"] or "", r["round"]))
     order = list(dict.fromkeys(labs))
     for r in rounds:

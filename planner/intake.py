@@ -30,7 +30,7 @@ from dataclasses import dataclass
 from datetime import date, datetime
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, forms, plan
+from planner import circulate, codes, forms, plan, tokens
 from planner.errors import CodeError, IntakeError, PlannerError, Where
 from planner.ledger import ResultRow
 
@@ -131,17 +131,23 @@ def check_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
 
 def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                  swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
-                 elsewhere: Mapping[str, str]) -> Checked:
+                 elsewhere: Mapping[str, str],
+                 token_digests: Mapping[str, str] | None = None) -> Checked:
     """Return what checking a form against its round found: its problems, slot and rows.
 
     The arguments are those of ``check_form``, all given; ``planner.returns``
-    records the rows of a form without problems.
+    records the rows of a form without problems. ``token_digests`` (laboratory ->
+    SHA-256 of its submission token, from the ledger) makes the form's token line
+    required and checked; None for a round planned before there were tokens.
     """
     problems = _check_identity(study, manifest, form, lab=lab)
     if problems:
         return Checked(tuple(problems), None, (), (), ())
     form_lab = form.ident("laboratory")[0]  # type: ignore[index]
+    token = _check_token(form, token_digests) if token_digests is not None else []
     if manifest.get("mode") == "circulate":
+        if token:
+            return Checked(tuple(token), None, (), (), ())
         return _inspect_circulating(study, manifest, form, unsealed=unsealed, today=today,
                                     elsewhere=elsewhere)
     expected = expected_codes(manifest, form_lab, swaps)
@@ -157,6 +163,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
             f"the form says laboratory {form_lab!r} but its codes are those of laboratory "
             f"{others.pop()!r}; correct the laboratory line or send that laboratory's form",
             form.where(line)),), None, (), (), ())
+    if token:  # after the codes: a slip in the laboratory line is told as that
+        return Checked(tuple(token), None, (), (), ())
     problems += _check_columns(form)
     decimal = study.lab(form_lab).decimal
     dates = manifest["dates"]
@@ -253,6 +261,22 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form,
                                f"{study.study.unit!r}; report the results in "
                                f"{study.study.unit!r}", form.where(unit_at)))
     return out
+
+
+def _check_token(form: forms.Form, digests: Mapping[str, str]) -> list[PlannerError]:
+    """Return the problem of a form's submission token: missing, or not its laboratory's."""
+    lab_id, lab_at = form.ident("laboratory")  # type: ignore[misc]
+    found = form.ident("submission token")
+    if found is None:
+        return [IntakeError("the form has no '# submission token: ...' line; send the result "
+                            f"form that 'ringplan plan' wrote for {lab_id!r}, with its first "
+                            "lines unchanged", form.where(1))]
+    token, line = found
+    if tokens.digest(token) != digests.get(lab_id):
+        return [IntakeError(f"the submission token is not that of laboratory {lab_id!r}; a "
+                            "form is recorded only with its own laboratory's token (printed on "
+                            "its run sheet and form)", form.where(line))]
+    return []
 
 
 def _check_visit(manifest: Mapping[str, Any], form: forms.Form, lab_id: str) -> list[PlannerError]:

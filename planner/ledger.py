@@ -1,26 +1,42 @@
-"""The study's ledger: one SQLite file, append-only, with a versioned schema.
+"""The study's ledger: one SQLite file, append-only, hash-chained, with a versioned schema.
 
 Rows are never updated or deleted: a re-planned round is a new ``rounds`` row
 that supersedes the older one, a corrected result form is a new submission
 version, and everything that happens to a round is an ``events`` row. The
 ledger never holds which material a code belongs to; that lives only in the
 sealed key.
+
+Triggers refuse UPDATE and DELETE, but anyone with the sqlite3 shell can drop a
+trigger, so the rows are also chained: every transaction that adds rows appends
+one ``chain`` link holding the rowid ranges it added per table, the SHA-256 of
+those rows (canonical JSON), and a head = SHA-256 of the previous head, the
+link's number, time, ranges and digest. Opening the ledger checks the schema,
+the guards and the whole chain, and refuses with one line naming what was
+altered: a changed row (its range's digest differs), a deleted row (the same),
+an added row (outside every link), a removed link (the numbers skip or the
+heads no longer follow). A rewrite of the whole chain from the altered row on
+still reads as consistent here, which is why the head goes out of the
+coordinator's hands: onto each laboratory's receipt when its form is recorded,
+and onto the letters. A later ledger whose chain no longer passes through a
+head a laboratory holds has been rewritten.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import sqlite3
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
 from planner.errors import LedgerError, Where
 
-__all__ = ["Ledger", "RoundRow", "Event", "Submission", "ResultRow", "LEDGER_NAME",
+__all__ = ["Ledger", "RoundRow", "Event", "Submission", "ResultRow", "ChainHead", "LEDGER_NAME",
            "SCHEMA_VERSION", "STATUS_ORDER"]
 
 LEDGER_NAME = "ledger.sqlite"
@@ -92,11 +108,26 @@ def _append_only(*tables: str) -> str:
         for t in tables for verb, done in (("UPDATE", "changed"), ("DELETE", "deleted")))
 
 
+_CHAINED = ("rounds", "units", "events", "submissions", "result_rows")
+
+_CHAIN = """
+CREATE TABLE chain (
+    seq INTEGER PRIMARY KEY,
+    at TEXT NOT NULL,
+    covers TEXT NOT NULL,
+    digest TEXT NOT NULL,
+    prev TEXT NOT NULL,
+    head TEXT NOT NULL
+);
+"""
+
 # Each entry brings the schema from version i to i + 1; never edit one that has shipped.
 _MIGRATIONS: tuple[str, ...] = (
-    _TABLES + _append_only("rounds", "units", "events", "submissions", "result_rows"),
+    _TABLES + _append_only(*_CHAINED),
+    _CHAIN + _append_only("chain"),
 )
 SCHEMA_VERSION = len(_MIGRATIONS)
+_GENESIS = "0" * 64
 
 # The life of a round; an event of one of these kinds moves it forward.
 STATUS_ORDER = ("planned", "printed", "received", "unsealed", "evaluated")
@@ -141,6 +172,18 @@ class ResultRow:
 
 
 @dataclass(frozen=True, slots=True)
+class ChainHead:
+    """The newest link of the ledger's chain: its number, time and head (64 hex digits)."""
+
+    seq: int
+    at: str
+    head: str
+
+    def __str__(self) -> str:
+        return f"{self.seq}:{self.head}"
+
+
+@dataclass(frozen=True, slots=True)
 class Event:
     round: str
     kind: str
@@ -158,14 +201,39 @@ class Ledger:
     def __init__(self, path: Path, *, clock: Callable[[], datetime] = _utc_now) -> None:
         self.path = path
         self._clock = clock
-        self.db = sqlite3.connect(path, isolation_level=None)
-        self.db.execute("PRAGMA foreign_keys = ON")
-        self._migrate()
+        self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
+        try:
+            self.db.execute("PRAGMA foreign_keys = ON")
+            self._migrate()
+            self.check()
+        except BaseException:
+            self.db.close()
+            raise
 
     @classmethod
-    def open(cls, study_dir: Path, *, clock: Callable[[], datetime] = _utc_now) -> Ledger:
-        """Open (or create) the ledger of a study folder."""
-        return cls(Path(study_dir) / LEDGER_NAME, clock=clock)
+    def open(cls, study_dir: Path, *, clock: Callable[[], datetime] = _utc_now,
+             create: bool = True) -> Ledger:
+        """Open the ledger of a study folder; create it only when ``create`` and no round exists.
+
+        Raises LedgerError when the file is missing but the folder holds planned rounds
+        (the ledger was lost or removed), when it is missing and ``create`` is False,
+        and when its schema, guards or chain were altered (see ``check``).
+        """
+        folder = Path(study_dir)
+        path = folder / LEDGER_NAME
+        if not path.exists():
+            rounds = folder / "rounds"
+            planned = sorted(p.name for p in rounds.iterdir()
+                             if (p / "manifest.json").is_file()) if rounds.is_dir() else []
+            if planned:
+                raise LedgerError(f"the ledger is missing, but the folder holds planned rounds "
+                                  f"({', '.join(planned[:3])}); restore {LEDGER_NAME} from a "
+                                  "backup, a new one would have no record of them",
+                                  Where(str(path)))
+            if not create:
+                raise LedgerError("no ledger here yet: no round has been planned in this "
+                                  "study folder ('ringplan plan' starts one)", Where(str(path)))
+        return cls(path, clock=clock)
 
     def __enter__(self) -> Ledger:
         return self
@@ -190,6 +258,8 @@ class Ledger:
             raise LedgerError(f"the ledger has schema version {version}, newer than this "
                               f"ringplan knows ({SCHEMA_VERSION}); upgrade ringplan",
                               Where(str(self.path)))
+        # Version 2 brings the chain: its commit (see ``transaction``) links the rows the
+        # ledger held before, as the first link.
         for i in range(version, SCHEMA_VERSION):
             with self.transaction():
                 for statement in _split_sql(_MIGRATIONS[i]):
@@ -198,15 +268,140 @@ class Ledger:
 
     @contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
-        """Run a block in one transaction: all of it is recorded, or nothing."""
-        self.db.execute("BEGIN IMMEDIATE")
+        """Run a block in one transaction: all of it is recorded, or nothing.
+
+        The rows the block added are chained (one link) before the commit.
+        """
+        try:
+            self.db.execute("BEGIN IMMEDIATE")
+        except sqlite3.OperationalError as exc:
+            raise LedgerError(f"the ledger is busy ({exc}); another ringplan command is "
+                              "writing to it, try again when it has finished",
+                              Where(str(self.path))) from None
         try:
             yield self.db
+            if self._has_chain():
+                self._link()
         except BaseException:
             self.db.execute("ROLLBACK")
             raise
         else:
             self.db.execute("COMMIT")
+
+    # --- the chain -----------------------------------------------------------
+
+    def _writing(self) -> None:
+        # A row written outside a transaction would miss its chain link and read as tampering.
+        if not self.db.in_transaction:
+            raise RuntimeError("ledger rows are written inside Ledger.transaction() only")
+
+    def _has_chain(self) -> bool:
+        return self.db.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' "
+                               "AND name = 'chain'").fetchone() is not None
+
+    def _rows_digest(self, covers: dict[str, list[int]]) -> str:
+        digest = hashlib.sha256()
+        for table in _CHAINED:
+            if table not in covers:
+                continue
+            lo, hi = covers[table]
+            rows = self.db.execute(f"SELECT rowid, * FROM {table} WHERE rowid BETWEEN ? AND ? "
+                                   "ORDER BY rowid", (lo, hi)).fetchall()
+            digest.update(json.dumps([table, rows], separators=(",", ":"),
+                                     ensure_ascii=False).encode("utf-8"))
+        return digest.hexdigest()
+
+    def _links(self) -> list[tuple[int, str, str, str, str, str]]:
+        return self.db.execute(
+            "SELECT seq, at, covers, digest, prev, head FROM chain ORDER BY seq").fetchall()
+
+    def _upto(self) -> dict[str, int]:
+        upto = {t: 0 for t in _CHAINED}
+        for _, _, covers, _, _, _ in self._links():
+            for table, (_, hi) in json.loads(covers).items():
+                upto[table] = max(upto[table], hi)
+        return upto
+
+    def _link(self) -> None:
+        """Append a chain link for the rows added since the last one (none: no link)."""
+        upto = self._upto()
+        covers: dict[str, list[int]] = {}
+        for table in _CHAINED:
+            (hi,) = self.db.execute(f"SELECT COALESCE(MAX(rowid), 0) FROM {table}").fetchone()
+            if hi > upto[table]:
+                covers[table] = [upto[table] + 1, int(hi)]
+        if not covers:
+            return
+        last = self.db.execute("SELECT seq, head FROM chain ORDER BY seq DESC LIMIT 1").fetchone()
+        seq, prev = (last[0] + 1, last[1]) if last else (1, _GENESIS)
+        at = self.now()
+        covers_text = json.dumps(covers, sort_keys=True, separators=(",", ":"))
+        digest = self._rows_digest(covers)
+        self.db.execute("INSERT INTO chain (seq, at, covers, digest, prev, head) "
+                        "VALUES (?, ?, ?, ?, ?, ?)",
+                        (seq, at, covers_text, digest, prev,
+                         _head(prev, seq, at, covers_text, digest)))
+
+    def head(self) -> ChainHead:
+        """Return the newest link of the chain (number 0 and the genesis head when empty)."""
+        last = self.db.execute("SELECT seq, at, head FROM chain ORDER BY seq DESC LIMIT 1"
+                               ).fetchone()
+        return ChainHead(*last) if last else ChainHead(0, "", _GENESIS)
+
+    def heads(self) -> list[ChainHead]:
+        """Return every link of the chain, oldest first."""
+        return [ChainHead(seq, at, head) for seq, at, _, _, _, head in self._links()]
+
+    def check(self) -> None:
+        """Check the schema, the guards and the chain; raise LedgerError naming what was altered."""
+        where = Where(str(self.path))
+        expected = _expected_schema()
+        found = {(kind, name): sql for kind, name, sql in self.db.execute(
+            "SELECT type, name, sql FROM sqlite_master WHERE type IN ('table', 'trigger', "
+            "'index') AND name NOT LIKE 'sqlite_%'")}
+        for (kind, name), sql in expected.items():
+            if (kind, name) not in found:
+                what = "guard" if kind == "trigger" else kind
+                raise LedgerError(f"the ledger was altered outside ringplan: its {what} "
+                                  f"{name!r} is missing; restore {LEDGER_NAME} from a backup",
+                                  where)
+            if _normal(found[(kind, name)]) != _normal(sql):
+                raise LedgerError(f"the ledger was altered outside ringplan: the definition of "
+                                  f"its {kind} {name!r} was changed; restore {LEDGER_NAME} from "
+                                  "a backup", where)
+        extra = sorted(name for kind, name in found if (kind, name) not in expected)
+        if extra:
+            raise LedgerError(f"the ledger was altered outside ringplan: it has {extra[0]!r}, "
+                              f"which ringplan never made; restore {LEDGER_NAME} from a backup",
+                              where)
+        prev, last, upto = _GENESIS, 0, {t: 0 for t in _CHAINED}
+        for seq, at, covers_text, digest, link_prev, head in self._links():
+            if seq != last + 1 or link_prev != prev:
+                raise LedgerError(f"the ledger was altered outside ringplan: its chain breaks "
+                                  f"before link {seq} (a link was removed or rewritten); "
+                                  f"restore {LEDGER_NAME} from a backup", where)
+            covers = json.loads(covers_text)
+            for table, (lo, hi) in covers.items():
+                if lo != upto[table] + 1:
+                    raise LedgerError(f"the ledger was altered outside ringplan: link {seq} "
+                                      f"does not follow on in table {table}", where)
+                upto[table] = hi
+            if _head(prev, seq, at, covers_text, digest) != head:
+                raise LedgerError(f"the ledger was altered outside ringplan: link {seq} of its "
+                                  "chain was rewritten", where)
+            if self._rows_digest(covers) != digest:
+                spans = ", ".join(f"{t} rows {lo}-{hi}" for t, (lo, hi) in covers.items())
+                raise LedgerError(f"the ledger was altered outside ringplan: rows recorded at "
+                                  f"{at} (chain link {seq}: {spans}) were changed or deleted "
+                                  f"since; restore {LEDGER_NAME} from a backup", where)
+            prev, last = head, seq
+        for table in _CHAINED:
+            (hi,) = self.db.execute(f"SELECT COALESCE(MAX(rowid), 0) FROM {table}").fetchone()
+            if hi > upto[table]:
+                raise LedgerError(f"the ledger was altered outside ringplan: table {table} has "
+                                  f"rows that no ringplan command recorded (from rowid "
+                                  f"{upto[table] + 1}); restore {LEDGER_NAME} from a backup",
+                                  where)
 
     # --- rounds and units --------------------------------------------------
 
@@ -217,6 +412,7 @@ class Ledger:
 
         Call inside ``transaction()``; raises LedgerError if a code was issued before.
         """
+        self._writing()
         cur = self.db.execute(
             "INSERT INTO rounds (study, round, host, fingerprint, dates, planned_at, replaces) "
             "VALUES (?, ?, ?, ?, ?, ?, ?)",
@@ -268,6 +464,7 @@ class Ledger:
 
         Call inside ``transaction()``; the time received is the ledger clock's.
         """
+        self._writing()
         (last,) = self.db.execute("SELECT COALESCE(MAX(version), 0) FROM submissions "
                                   "WHERE round = ? AND lab = ?", (round_id, lab)).fetchone()
         cur = self.db.execute(
@@ -305,6 +502,7 @@ class Ledger:
 
     def record_event(self, round_id: str, kind: str, detail: dict[str, Any] | None = None) -> None:
         """Append an event (printed, received, unsealed, spare-swap, ...) to a round's history."""
+        self._writing()
         self.db.execute("INSERT INTO events (round, kind, at, detail) VALUES (?, ?, ?, ?)",
                         (round_id, kind, self.now(), json.dumps(detail or {}, sort_keys=True)))
 
@@ -332,6 +530,30 @@ class Ledger:
             if step in kinds:
                 status = step
         return status
+
+
+def _head(prev: str, seq: int, at: str, covers: str, digest: str) -> str:
+    text = f"ringplan-ledger-chain/1\n{prev}\n{seq}\n{at}\n{covers}\n{digest}"
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _normal(sql: str | None) -> str:
+    return " ".join((sql or "").split())
+
+
+@lru_cache(maxsize=1)
+def _expected_schema() -> dict[tuple[str, str], str]:
+    """Return (type, name) -> SQL of the tables, indexes and guards the migrations make."""
+    db = sqlite3.connect(":memory:")
+    try:
+        for migration in _MIGRATIONS:
+            for statement in _split_sql(migration):
+                db.execute(statement)
+        return {(kind, name): sql for kind, name, sql in db.execute(
+            "SELECT type, name, sql FROM sqlite_master WHERE type IN ('table', 'trigger', "
+            "'index') AND name NOT LIKE 'sqlite_%'")}
+    finally:
+        db.close()
 
 
 def _round(rec: tuple[Any, ...]) -> RoundRow:

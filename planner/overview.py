@@ -21,12 +21,17 @@ __all__ = ["past_rounds", "summarize"]
 def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, date]]:
     """Return (round, host, date) of every earlier round: the spec's history, then the ledger's."""
     out = [(p.round, p.host, p.date) for p in study.history]
-    if study_dir is None or not (Path(study_dir) / "ledger.sqlite").exists():
+    if study_dir is None:
         return out
-    from planner.ledger import Ledger
+    from planner.ledger import LEDGER_NAME, Ledger
 
+    folder = Path(study_dir)
+    planned = folder.is_dir() and any((folder / "rounds").glob("*/manifest.json"))
+    if not (folder / LEDGER_NAME).exists() and not planned:
+        return out
     known = {r for r, _, _ in out}
-    with Ledger.open(study_dir) as ledger:
+    # create=False: a folder with planned rounds but no ledger is refused, not started anew.
+    with Ledger.open(study_dir, create=False) as ledger:
         for row in ledger.rounds():
             if row.round in known:
                 continue

@@ -21,7 +21,7 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, design, draw, seal
+from planner import circulate, codes, design, draw, seal, tokens
 from planner.errors import LedgerError, SealError, Where
 
 if TYPE_CHECKING:
@@ -32,6 +32,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
+    "definition_of", "study_of_definition", "round_study",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
     "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
     "expected_runs", "manifest_runs",
@@ -40,7 +41,8 @@ __all__ = [
 MANIFEST_NAME = "manifest.json"
 KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
-_KEY_FORMAT = "ringplan-key/1"
+_KEY_FORMAT = "ringplan-key/2"
+_DEFINITION_FORMAT = "ringplan-round/1"
 
 
 @dataclass(frozen=True, slots=True)
@@ -64,6 +66,35 @@ class RoundPlan:
     dates: RoundDates
     fingerprint: str
     route: Route | None = None
+    definition: bytes = b""  # the study as planned, canonical JSON (``definition_of``)
+
+
+def definition_of(study: Study) -> bytes:
+    """Return the round definition: the validated study as planned, as canonical JSON.
+
+    Everything that defines a round (laboratories, materials and their order, design,
+    schedule, evaluation settings) is frozen in it at planning. It is kept in the
+    ledger's chained planning event (not in the round folder, which names no material);
+    its SHA-256 goes into the key (and so into the fingerprint printed on every packing
+    list) and the manifest, and every later command on the round reads the round from it.
+    """
+    body = {"format": _DEFINITION_FORMAT,
+            "study": study.model_dump(mode="json", by_alias=True, exclude_none=True)}
+    return seal.canonical(body)
+
+
+def study_of_definition(data: bytes, *, where: Where) -> Study:
+    """Return the Study frozen in a round definition; LedgerError if it cannot be read."""
+    from planner.spec import Study
+
+    try:
+        body = json.loads(data)
+        if body.get("format") != _DEFINITION_FORMAT:
+            raise ValueError(body.get("format"))
+        return Study.model_validate(body["study"])
+    except (ValueError, KeyError, TypeError, AttributeError):
+        raise LedgerError("the round definition cannot be read as one ringplan wrote; restore "
+                          "it from a backup", where) from None
 
 
 def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int], tuple[str, ...]]:
@@ -120,9 +151,10 @@ def plan_round(study: Study, *, round_id: str, host: str, dates: RoundDates, sec
         raise ValueError("a route is needed exactly when the study circulates one set")
     units = build_units(study, host=host, secret=secret, taken=taken)
     salt = draw.Stream(secret, "salt").token(16)
-    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "", route)
+    definition = definition_of(study)
+    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "", route, definition)
     return RoundPlan(study.id, round_id, host, secret, salt, units, dates,
-                     seal.fingerprint(seal.canonical(key_of(plan))), route)
+                     seal.fingerprint(seal.canonical(key_of(plan))), route, definition)
 
 
 def dates_for(study: Study, host: str, *,
@@ -151,6 +183,7 @@ def key_of(plan: RoundPlan) -> dict[str, Any]:
         "host": plan.host,
         "secret": plan.secret.hex(),
         "salt": plan.salt.hex(),
+        "definition": seal.fingerprint(plan.definition),
         "units": [{"code": u.code, "material": u.material, "kind": u.kind, "lab": u.lab,
                    "trial": u.trial, "position": u.position}
                   for u in sorted(plan.units, key=lambda u: u.code)],
@@ -227,6 +260,7 @@ def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
         "measurand": study.study.measurand,
         "unit": study.study.unit,
         "fingerprint": plan.fingerprint,
+        "definition": seal.fingerprint(plan.definition),
         "run_order": study.design.run_order,
         "trials": study.design.trials,
         "dates": {k: v for k, v in dates.items() if k != "labs"},
@@ -267,11 +301,12 @@ def host_visit_forms(manifest: dict[str, Any]) -> list[tuple[str, str]]:
 
 
 def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
-                    visit: str | None = None) -> str:
+                    visit: str | None = None, *, token: str | None = None) -> str:
     """Return the text of a laboratory's blank result form (a host ``visit`` of a circulating set).
 
     Identity lines start with '#'; laboratories that write a decimal comma get
-    ';' as the separator, as spreadsheets in those locales expect.
+    ';' as the separator, as spreadsheets in those locales expect. ``token`` is the
+    laboratory's submission token (``planner.tokens``), printed on its form only.
     """
     lab = study.lab(lab_id)
     sep = ";" if lab.decimal == "comma" else ","
@@ -280,6 +315,8 @@ def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
                 ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
                 ("decimal", lab.decimal), ("measurand", study.study.measurand),
                 ("results due", manifest["dates"].get("results_due", ""))]
+    if token is not None:
+        identity.append(("submission token", tokens.format(token)))
     if visit is not None:
         identity.insert(3, ("visit", visit))
     for key, value in identity:
@@ -294,6 +331,37 @@ def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
         for position, code in enumerate(run, start=1):
             writer.writerow([trial, position, codes.format(code), "", "", "", "", ""])
     return out.getvalue()
+
+
+def round_study(study_dir: Path, round_id: str, ledger: Ledger) -> Study:
+    """Return the study as it was when the round was planned, from its frozen definition.
+
+    The definition lives in the ledger's chained planning event; its SHA-256 must equal
+    the one recorded beside it and in the manifest. A round planned before definitions
+    were frozen (none in the ledger) is read from today's study.yaml. Raises
+    LedgerError when the round was not planned here or the manifest was edited.
+    """
+    from planner import spec
+
+    folder = round_dir(study_dir, round_id)
+    manifest = read_manifest(folder)  # says "not planned" when there is no manifest
+    planned = ledger.events(round_id, "planned")
+    if ledger.current_round(round_id) is None or not planned:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder", Where(str(folder / MANIFEST_NAME)))
+    detail = planned[-1].detail
+    recorded = detail.get("definition")
+    if recorded is None:
+        return spec.load(study_dir)
+    where = Where(str(study_dir), None, f"ledger: round {round_id} as planned")
+    data = seal.canonical(detail.get("round"))
+    if seal.fingerprint(data) != recorded:
+        raise LedgerError("the round definition in the ledger does not match its SHA-256; "
+                          "restore the ledger from a backup", where)
+    if manifest.get("definition") != recorded:
+        raise LedgerError("the manifest names another round definition than the ledger; it "
+                          "was edited after planning", Where(str(folder / MANIFEST_NAME)))
+    return study_of_definition(data, where=where)
 
 
 def round_dir(study_dir: Path, round_id: str) -> Path:
@@ -349,12 +417,14 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
         _write(staging / MANIFEST_NAME, json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
         seal.write_private(staging / seal.SEALED_NAME, sealed)
         _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
+        token = {lab.id: tokens.submission_token(plan.secret, lab.id)
+                 for lab in study.laboratories}
         for lab in study.laboratories:
             _write(staging / "labs" / lab.id / "result-form.csv",
-                   result_form_csv(study, manifest, lab.id))
+                   result_form_csv(study, manifest, lab.id, token=token[lab.id]))
         for visit, name in host_visit_forms(manifest):
             _write(staging / "labs" / plan.host / name,
-                   result_form_csv(study, manifest, plan.host, visit))
+                   result_form_csv(study, manifest, plan.host, visit, token=token[plan.host]))
         with ledger.transaction():
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,
@@ -363,7 +433,11 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                 replaces=current.row if current else None)
             ledger.record_event(plan.round_id, "planned",
                                 {"fingerprint": plan.fingerprint, "host": plan.host,
-                                 "units": len(plan.units), "replaced": current is not None})
+                                 "units": len(plan.units), "replaced": current is not None,
+                                 "definition": seal.fingerprint(plan.definition),
+                                 "round": json.loads(plan.definition),
+                                 # only digests: a token in the ledger could be copied
+                                 "tokens": {lab: tokens.digest(t) for lab, t in token.items()}})
             if _fail_after_files:
                 raise RuntimeError("injected failure after the files were written")
             if target.exists():

@@ -19,7 +19,7 @@ from __future__ import annotations
 import os
 import secrets
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -29,13 +29,14 @@ from planner.errors import IntakeError, LedgerError, PlannerError, Where
 from planner.intake import Checked, condense, describe_slot, inspect_form, spare_swaps
 
 if TYPE_CHECKING:
-    from planner.ledger import Ledger
+    from planner.ledger import ChainHead, Ledger
     from planner.spec import Study
 
 __all__ = [
     "RESULTS_DIR",
     "STAGING_DIR",
     "Receipt",
+    "receipt_text",
     "receive",
     "settle_results",
 ]
@@ -61,6 +62,8 @@ class Receipt:
     received_late: bool
     after_unseal: bool
     repeat_of: int | None
+    receipt: str | None = None  # the receipt file, relative to the round folder
+    chain_head: str | None = None  # "link:head" of the ledger right after recording
 
     @property
     def late(self) -> bool:
@@ -150,6 +153,10 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     today = date.fromisoformat(ledger.now()[:10])
     swaps = spare_swaps(ledger, round_id)
     elsewhere = _other_rounds(ledger, round_id)
+    planned = ledger.events(round_id, "planned")
+    # The chained planning event holds the tokens' digests; a round planned before
+    # there were tokens has none, and its forms are taken without.
+    digests = planned[-1].detail.get("tokens") if planned else None
     problems: list[PlannerError] = []
     accepted: list[tuple[forms.Form, Checked]] = []
     for path in paths:
@@ -159,7 +166,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             problems.append(exc)
             continue
         checked = inspect_form(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
-                               today=today, elsewhere=elsewhere)
+                               today=today, elsewhere=elsewhere, token_digests=digests)
         problems += checked.problems
         if not checked.problems:
             accepted.append((form, checked))
@@ -221,7 +228,48 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             os.replace(path, results / path.name)
         except FileNotFoundError:
             pass  # another receive settled it into results/ already
-    return receipts
+    head = ledger.head()
+    out = []
+    for r in receipts:
+        if r.version is not None:
+            name = f"{RESULTS_DIR}/receipt-{r.lab}-v{r.version}.txt"
+            _write_receipt(folder / name, receipt_text(study.id, round_id, r, head,
+                                                       ledger.events(round_id, "received")))
+            r = replace(r, receipt=name, chain_head=str(head))
+        out.append(r)
+    return out
+
+
+def receipt_text(study_id: str, round_id: str, r: Receipt, head: ChainHead,
+                 received: Sequence[Any] = ()) -> str:
+    """Return the text of a laboratory's receipt for one recorded form version."""
+    at = next((e.at for e in reversed(received)
+               if e.detail.get("lab") == r.lab and e.detail.get("version") == r.version), "")
+    lines = [
+        "ringplan receipt: a result form recorded in the study's ledger",
+        f"study {study_id}, round {round_id}, laboratory {r.lab}",
+        f"form version {r.version}" + (f" (replaces version {r.supersedes})"
+                                       if r.supersedes else "") + f", recorded {at}",
+        f"file {Path(r.file).name}, SHA-256 {r.sha256}",
+        f"{r.values} results with a value, {r.failed} without"
+        + (f"; {len(r.missing)} expected codes have no row" if r.missing else ""),
+        f"ledger chain after recording: link {head.seq}, head {head.head}",
+        "",
+        "Keep this receipt. The ledger's chain must pass through this link and head for as",
+        "long as the study lasts; 'ringplan chain DIR --link N' shows the head of link N.",
+        "A ledger that does not has been rewritten since your form was recorded.",
+    ]
+    return "\n".join(lines) + "\n"
+
+
+def _write_receipt(path: Path, text: str) -> None:
+    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def _receipt(form: forms.Form, checked: Checked, last: Any, version: int | None,

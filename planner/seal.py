@@ -7,6 +7,10 @@ key derived from the passphrase by scrypt (RFC 7914), both from the
 ``cryptography`` package. The fingerprint is bound in as associated data, so a
 sealed file cannot be swapped for another round's. A separate verifier derived
 from the passphrase tells a wrong passphrase apart from a damaged file.
+
+``key.fingerprint`` is a convenience copy for ``sha256sum`` and nothing here
+trusts it: the key is checked against the fingerprint the ledger recorded at
+planning and the manifest's (``audit.check_fingerprint``).
 """
 
 from __future__ import annotations
@@ -24,8 +28,8 @@ from planner.errors import SealError, Where
 
 __all__ = [
     "canonical", "fingerprint", "seal_key", "unseal_key", "write_private",
-    "open_key", "read_key_json", "SEALED_NAME", "FINGERPRINT_NAME", "KEY_NAME",
-    "MIN_PASSPHRASE",
+    "open_key", "read_key_json", "validate_fingerprint", "SEALED_NAME", "FINGERPRINT_NAME",
+    "KEY_NAME", "MIN_PASSPHRASE",
 ]
 
 SEALED_NAME = "key.sealed"
@@ -45,6 +49,23 @@ def canonical(key: dict[str, Any]) -> bytes:
 def fingerprint(key_json: bytes) -> str:
     """Return the SHA-256 of the canonical key as 64 lower-case hex digits."""
     return hashlib.sha256(key_json).hexdigest()
+
+
+def validate_fingerprint(text: str, *, field: str | None = None) -> str:
+    """Return a typed fingerprint as 64 lower-case hex digits; raise SealError if it is not one.
+
+    Spaces and case are ignored, so the grouped fingerprint of a packing list can be
+    typed as printed.
+    """
+    compact = "".join(text.split()).lower()
+    wrong = sorted({c for c in compact if c not in "0123456789abcdef"})
+    if wrong or len(compact) != 64:
+        verb = "is not a hex digit" if len(wrong) == 1 else "are not hex digits"
+        found = (f"{', '.join(map(repr, wrong))} {verb}" if wrong
+                 else f"it has {len(compact)} hex digits")
+        raise SealError(f"{text!r} is not a SHA-256 fingerprint ({found}); copy the 64 hex "
+                        "digits (0-9, a-f) printed on your packing list", Where(field=field))
+    return compact
 
 
 def _derive(passphrase: str, salt: bytes, params: dict[str, int]) -> tuple[bytes, bytes]:
@@ -102,10 +123,16 @@ def unseal_key(sealed: bytes, passphrase: str, *, name: str = SEALED_NAME) -> by
         raise SealError("wrong passphrase for this key; use the passphrase given when the round "
                         "was planned", where)
     try:
-        return AESGCM(aes_key).decrypt(nonce, data, print_.encode("ascii"))
+        key_json = AESGCM(aes_key).decrypt(nonce, data, print_.encode("ascii"))
     except InvalidTag:
         raise SealError("the sealed key has been altered (its authentication tag does not "
                         "match); restore it from your backup", where) from None
+    # The tag only binds the header's fingerprint; whoever holds the passphrase could
+    # seal another key under it, so the plaintext must hash to it as well.
+    if fingerprint(key_json) != print_:
+        raise SealError("the key inside does not hash to the fingerprint in the sealed file's "
+                        "header; it was not sealed by ringplan", where)
+    return key_json
 
 
 def write_private(path: Path, data: bytes) -> None:
@@ -123,45 +150,24 @@ def write_private(path: Path, data: bytes) -> None:
         raise
 
 
-def _expected_fingerprint(round_dir: Path) -> str:
-    path = round_dir / FINGERPRINT_NAME
-    try:
-        return path.read_text(encoding="ascii").split()[0].strip().lower()
-    except (OSError, IndexError, UnicodeDecodeError):
-        raise SealError("the round's fingerprint file is missing or unreadable",
-                        Where(str(path))) from None
-
-
 def open_key(round_dir: Path, passphrase: str) -> dict[str, Any]:
-    """Return the decoded key of a round, decrypted in memory; the fingerprint is checked."""
+    """Return the decoded key of a round, decrypted in memory; raise SealError if it cannot be
+    opened. Only its own header vouches for it: ``audit.open_key`` also checks it against the
+    ledger and the manifest."""
     path = round_dir / SEALED_NAME
     try:
         sealed = path.read_bytes()
     except OSError:
         raise SealError("the sealed key is missing", Where(str(path))) from None
-    key_json = unseal_key(sealed, passphrase, name=str(path))
-    expected = _expected_fingerprint(round_dir)
-    if fingerprint(key_json) != expected:
-        raise SealError(f"the key's SHA-256 {fingerprint(key_json)[:16]}... does not equal the "
-                        f"published fingerprint {expected[:16]}...", Where(str(path)))
-    return dict(json.loads(key_json))
+    return dict(json.loads(unseal_key(sealed, passphrase, name=str(path))))
 
 
-def read_key_json(round_dir: Path) -> dict[str, Any]:
-    """Return key.json of an unsealed round after checking its SHA-256 against key.fingerprint."""
+def read_key_json(round_dir: Path) -> bytes:
+    """Return the bytes of key.json of an unsealed round, unchecked; raise SealError while the
+    key is still sealed. ``audit.read_key`` checks them against the ledger and the manifest."""
     path = round_dir / KEY_NAME
     try:
-        key_json = path.read_bytes()
+        return path.read_bytes()
     except OSError:
         raise SealError("the key has not been unsealed yet; run 'ringplan unseal' first",
                         Where(str(path))) from None
-    expected = _expected_fingerprint(round_dir)
-    actual = fingerprint(key_json)
-    if actual != expected:
-        raise SealError(f"SHA-256 of key.json is {actual[:16]}..., but the fingerprint "
-                        f"published before shipping is {expected[:16]}...; the key was changed",
-                        Where(str(path)))
-    try:
-        return dict(json.loads(key_json))
-    except ValueError:
-        raise SealError("key.json is not valid JSON", Where(str(path))) from None

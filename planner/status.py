@@ -7,12 +7,18 @@ came in, which version, how many values, which codes are still missing, late
 or after unsealing, spares issued and days left until the results are due.
 The key may be opened once every laboratory (or stop) has reported and it is
 still sealed.
+
+``read_key_history`` reads what the ledger shows of the key itself: when it
+was opened, whether that was forced before every result was in (with the
+reason and who was missing then), and each time it was decrypted while still
+sealed to print the host's documents or to issue a spare. The status shows it,
+and evaluation copies it into statistics.json, the report and every letter.
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -24,12 +30,17 @@ if TYPE_CHECKING:
     from planner.ledger import Ledger, ResultRow, Submission
     from planner.spec import Study
 
-__all__ = ["RoundStatus", "round_status_table"]
+__all__ = ["RoundStatus", "round_status_table", "read_key_history", "describe_key",
+           "host_documents", "ledger_time", "HOST_FOLDER"]
+
+HOST_FOLDER = "host/"
+"""Where a round's host documents lie; printing them shows which material each code is."""
 
 
 @dataclass(frozen=True, slots=True)
 class RoundStatus:
-    """One row per laboratory (dicts, spec order) and whether the key may be opened."""
+    """One row per laboratory (dicts, spec order), whether the key may be opened, and what the
+    ledger shows of the key (``key``: see ``read_key_history``)."""
 
     round: str
     results_due: date
@@ -37,6 +48,7 @@ class RoundStatus:
     may_open: bool
     waiting_for: tuple[str, ...]
     rows: tuple[dict[str, Any], ...]
+    key: dict[str, Any] = field(default_factory=dict)
 
 
 def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
@@ -52,11 +64,12 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
     due = date.fromisoformat(manifest["dates"]["results_due"])
     swaps = intake.spare_swaps(ledger, round_id)
     unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
+    key = read_key_history(ledger, round_id)
     if manifest.get("mode") == "circulate":
         rows = _circulating_rows(manifest, ledger, round_id, today=today, due=due)
         waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
         return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
-                           tuple(rows))
+                           tuple(rows), key)
     rows = []
     for lab in study.laboratories:
         if lab.id not in manifest["labs"]:
@@ -71,7 +84,107 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
                          spares=spares, today=today, due=due))
     waiting = tuple(audit.missing_labs(study, ledger, round_id))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
-                       tuple(rows))
+                       tuple(rows), key)
+
+
+def read_key_history(ledger: Ledger, round_id: str) -> dict[str, Any]:
+    """Return what the ledger shows of a round's key: how it was opened, and its uses before.
+
+    ``opened`` (bool); ``at``, ``forced``, ``reason`` and ``missing`` (the slots without
+    results at that moment) as the "unsealed" event recorded them (None, None, None and []
+    while the key is sealed); ``early_decryptions``: every printing of host documents and
+    every spare issued while the key was sealed, oldest first, each ``{kind, at, detail,
+    before_results}`` (``before_results``: it came before the first result form);
+    ``first_result_at``: when the first form was recorded, or None; ``received_after``: the
+    slots whose forms were recorded after the opening. Only events since the round was last
+    planned count: a round planned again has a new key.
+    """
+    events = ledger.events(round_id)
+    start = max((i for i, e in enumerate(events) if e.kind == "planned"), default=-1) + 1
+    opening = None
+    early: list[dict[str, Any]] = []
+    after: dict[str, None] = {}
+    first_result = None
+    # The ledger's order, not its times: events recorded within one second share a time.
+    for e in events[start:]:
+        if e.kind == "received":
+            first_result = first_result or e.at
+            if opening is not None:
+                after[str(e.detail.get("lab"))] = None
+        elif opening is not None:
+            continue
+        elif e.kind == "unsealed":
+            opening = e
+        elif e.kind == "spare-swap" or (e.kind == "printed" and _prints_host(e.detail)):
+            early.append({"kind": e.kind, "at": e.at, "detail": dict(e.detail),
+                          "before_results": first_result is None})
+    detail = opening.detail if opening is not None else {}
+    return {
+        "opened": opening is not None,
+        "at": opening.at if opening is not None else None,
+        "forced": bool(detail.get("forced")) if opening is not None else None,
+        "reason": detail.get("reason"),
+        "missing": [str(s) for s in detail.get("missing") or ()],
+        "early_decryptions": early,
+        "first_result_at": first_result,
+        "received_after": list(after),
+    }
+
+
+def ledger_time(at: str) -> str:
+    """Return a ledger time as '2027-02-03 at 10:15 UTC' (the text itself if unreadable)."""
+    from datetime import UTC, datetime
+
+    try:
+        moment = datetime.fromisoformat(at)
+    except (TypeError, ValueError):
+        return str(at)
+    if moment.tzinfo is None:
+        return moment.strftime("%Y-%m-%d at %H:%M")  # no zone recorded: do not invent one
+    return moment.astimezone(UTC).strftime("%Y-%m-%d at %H:%M UTC")
+
+
+def host_documents(detail: Mapping[str, Any]) -> list[str] | None:
+    """Return the host documents a "printed" event names, or None if it names none by path."""
+    documents = detail.get("documents")
+    if not isinstance(documents, list):
+        return None
+    return [str(d) for d in documents if str(d).startswith(HOST_FOLDER)]
+
+
+def describe_key(key: Mapping[str, Any]) -> list[str]:
+    """Return the lines that tell ``read_key_history``'s record of a key, oldest first."""
+    out = []
+    for use in key.get("early_decryptions", ()):
+        when = ledger_time(use["at"])
+        detail = use.get("detail") or {}
+        if use["kind"] == "spare-swap":
+            what = (f"to issue spare {codes.format(str(detail.get('spare')))} for unit "
+                    f"{codes.format(str(detail.get('damaged')))} of {detail.get('lab')}")
+        else:
+            names = host_documents(detail)
+            what = ("to print host documents (" + ", ".join(names) + ")" if names
+                    else "to print documents (the ledger does not name them)")
+        late = "" if use.get("before_results") else ", after results had come in"
+        out.append(f"{when}: the key was decrypted while sealed, {what}{late}")
+    if key.get("opened"):
+        when = ledger_time(str(key["at"]))
+        if key.get("forced"):
+            out.append(f"{when}: the key was opened BEFORE every result was in, forced: reason "
+                       f"{key.get('reason')!r}; missing then: {', '.join(key['missing'])}")
+        else:
+            out.append(f"{when}: the key was opened after every laboratory had reported")
+    if key.get("received_after"):
+        out.append("results recorded after the opening (flagged after-unseal): "
+                   + ", ".join(key["received_after"]))
+    return out
+
+
+def _prints_host(detail: Mapping[str, Any]) -> bool:
+    """Return whether a "printed" event may have printed host documents (labels, prep sheet)."""
+    names = host_documents(detail)
+    # An event that counts its documents without naming them may have printed the host's.
+    return names is None or bool(names)
 
 
 def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, *,

@@ -57,8 +57,8 @@ def run_cli(runner, *args: str):
 
 ROUND = "2027-1"
 NOW = "2027-01-30T09:00:00+00:00"   # after the test window (2027-01-19..28), before 02-04
-HEADER_LINE = 10                    # 9 identity and note lines, then the header
-FIRST_ROW = 11
+HEADER_LINE = 11                    # 10 identity and note lines, then the header
+FIRST_ROW = 12
 LABS = ("kal", "tor", "hel", "lin", "crx")
 
 

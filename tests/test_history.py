@@ -2,12 +2,16 @@
 
 The statistics files are written here by hand (the fields ``evaluate`` writes:
 ``host``, ``round``, ``materials``, ``scores.<material>.assigned_value``,
-``use_z_prime`` and ``labs.<lab>.mean/z/z_prime``); expected means are worked
-out in the comments. One test feeds the real output of planner.stats in.
+``use_z_prime`` and ``labs.<lab>.mean/z/z_prime``), and their SHA-256 recorded
+in the study's ledger as an "evaluated" event, as ``evaluate`` records it
+(history reads no other file; tests/test_disclosure.py refuses the others);
+expected means are worked out in the comments. One test feeds the real output of
+planner.stats in.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 from pathlib import Path
 
@@ -23,12 +27,33 @@ def _score(assigned: float, labs: dict[str, tuple[float, float]], *, prime: bool
                      for lab, (mean, z) in labs.items()}}
 
 
+def record_evaluation(study: Path, round_id: str) -> None:
+    """Record in the study's ledger that ``evaluate`` wrote the round's statistics.json."""
+    from planner.ledger import Ledger
+
+    path = study / "rounds" / round_id / "report" / "statistics.json"
+    with Ledger.open(study) as ledger, ledger.transaction():
+        ledger.record_event(round_id, "evaluated", {
+            "statistics_sha256": hashlib.sha256(path.read_bytes()).hexdigest()})
+
+
+def _collect(study: Path, **options) -> dict:
+    from planner.ledger import Ledger
+
+    with Ledger.open(study) as ledger:
+        return history.collect(study, ledger, **options)
+
+
 def _write_round(study: Path, round_id: str, host: str, test_start: str | None,
                  scores: dict) -> None:
+    from planner.ledger import Ledger
+
+    Ledger.open(study).close()  # the ledger exists before any manifest, as after 'ringplan plan'
     folder = study / "rounds" / round_id
     (folder / "report").mkdir(parents=True)
     (folder / "report" / "statistics.json").write_text(json.dumps(
         {"round": round_id, "host": host, "materials": list(scores), "scores": scores}))
+    record_evaluation(study, round_id)
     if test_start is not None:
         (folder / "manifest.json").write_text(json.dumps(
             {"round": round_id, "host": host, "dates": {"test_start": test_start}}))
@@ -53,7 +78,7 @@ def four_rounds(tmp_path: Path) -> Path:
 
 
 def test_each_round_of_each_laboratory_with_hosted_rounds_marked(four_rounds):
-    record = history.collect(four_rounds, labs=["b", "a"])
+    record = _collect(four_rounds, labs=["b", "a"])
     assert [r["round"] for r in record["rounds"]] == ["r1", "r2", "r3", "r4"]
     assert [r["host"] for r in record["rounds"]] == ["a", "b", "a", "b"]
     assert list(record["labs"]) == ["b", "a"]
@@ -71,7 +96,7 @@ def test_each_round_of_each_laboratory_with_hosted_rounds_marked(four_rounds):
 
 
 def test_host_effect_per_laboratory_and_pooled(four_rounds):
-    effect = history.collect(four_rounds, labs=["a", "b"])["host_effect"]
+    effect = _collect(four_rounds, labs=["a", "b"])["host_effect"]
     a = effect["labs"]["a"]
     # Hosting r1 (|z| 1.5, bias 5 %) and r3 (3.0, 10 %): 2.25 and 7.5 %.
     # Not hosting r2 (|z| 0.5, bias (0 - 5) / 2 = -2.5 %) and r4 (0.5, (-5 + 0) / 2 = -2.5 %).
@@ -96,7 +121,7 @@ def test_too_few_rounds_are_said_plainly(tmp_path):
                                                                        "b": (9.0, -2.0)})})
     _write_round(tmp_path, "r2", "b", "2026-04-10", {"M": _score(10.0, {"a": (10.0, 0.0),
                                                                        "b": (10.1, 0.2)})})
-    effect = history.collect(tmp_path)["host_effect"]
+    effect = _collect(tmp_path)["host_effect"]
     assert effect["labs"]["a"]["difference"] is None
     assert effect["labs"]["a"]["statement"] == (
         "too few rounds to say anything about laboratory 'a': 1 round hosting and 1 not "
@@ -107,11 +132,11 @@ def test_too_few_rounds_are_said_plainly(tmp_path):
 def test_rounds_are_ordered_by_test_start_not_by_name(tmp_path):
     _write_round(tmp_path, "b-first", "a", "2025-01-10", {"M": _score(1.0, {"a": (1.0, 0.0)})})
     _write_round(tmp_path, "a-later", "a", "2026-01-10", {"M": _score(1.0, {"a": (1.0, 0.0)})})
-    assert [r["round"] for r in history.collect(tmp_path)["rounds"]] == ["b-first", "a-later"]
+    assert [r["round"] for r in _collect(tmp_path)["rounds"]] == ["b-first", "a-later"]
 
 
 def test_no_rounds_gives_an_empty_record(tmp_path):
-    record = history.collect(tmp_path, labs=["a"])
+    record = _collect(tmp_path, labs=["a"])
     assert record["rounds"] == [] and record["labs"]["a"]["rounds"] == {}
     assert record["host_effect"]["labs"] == {}
 
@@ -120,8 +145,9 @@ def test_unreadable_statistics_is_a_data_error(tmp_path):
     folder = tmp_path / "rounds" / "r1" / "report"
     folder.mkdir(parents=True)
     (folder / "statistics.json").write_text("{not json")
+    record_evaluation(tmp_path, "r1")
     with pytest.raises(DataError, match="not valid JSON"):
-        history.collect(tmp_path)
+        _collect(tmp_path)
 
 
 def test_reads_the_score_structure_planner_stats_writes(tmp_path):
@@ -132,7 +158,7 @@ def test_reads_the_score_structure_planner_stats_writes(tmp_path):
             for lab, pair in values.items() for t, v in enumerate(pair)]
     scores = stats.evaluate_table(rows, sigma_pt=0.1)["scores"]
     _write_round(tmp_path, "r1", "a", "2026-01-10", scores)
-    got = history.collect(tmp_path)["labs"]["a"]["rounds"]["r1"]["materials"]["M"]
+    got = _collect(tmp_path)["labs"]["a"]["rounds"]["r1"]["materials"]["M"]
     assigned = scores["M"]["assigned_value"]
     # The score the band is read from: z' when the round used it (here u(x_pt) is large).
     prime = scores["M"]["use_z_prime"]
@@ -177,6 +203,7 @@ def test_history_command_reports_a_broken_file_in_one_line(tmp_path):
     folder = tmp_path / "rounds" / "2027-1" / "report"
     folder.mkdir(parents=True)
     (folder / "statistics.json").write_text("{not json")
+    record_evaluation(tmp_path, "2027-1")
     result = _run("history", tmp_path, "--no-pdf")
     assert result.exit_code == 2
     assert result.stderr == (f"error: {folder / 'statistics.json'}: the file is not valid JSON; "

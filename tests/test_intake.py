@@ -12,6 +12,7 @@ from datetime import date
 
 import pytest
 from conftest import (
+    FIRST_ROW,
     HEADER_LINE,
     ROUND,
     filled,
@@ -48,14 +49,14 @@ CASES = [
     ("unknown-lab", "kal", lambda ls, m: ls.__setitem__(2, "# laboratory: kall"), 3,
      "laboratory 'kall' is not in round '2027-1'; did you mean 'kal'?", ()),
     ("code-of-another-lab", "kal",
-     lambda ls, m: set_cell(ls, 11, "code", _other_lab_code(m), "kal"), 11,
+     lambda ls, m: set_cell(ls, FIRST_ROW, "code", _other_lab_code(m), "kal"), FIRST_ROW,
      "belongs to laboratory 'tor', not to 'kal'", ()),
     ("mistyped-check-character", "kal",
      lambda ls, m: set_cell(ls, 12, "code", mistype(get_cell(ls, 12, "code", "kal")), "kal"),
      12, "check character does not match", ()),
     ("duplicate-code", "kal",
-     lambda ls, m: set_cell(ls, 13, "code", get_cell(ls, 11, "code", "kal"), "kal"), 13,
-     "appears twice (first on line 11)", ()),
+     lambda ls, m: set_cell(ls, 14, "code", get_cell(ls, FIRST_ROW, "code", "kal"), "kal"), 14,
+     f"appears twice (first on line {FIRST_ROW})", ()),
     ("text-in-value", "kal", lambda ls, m: set_cell(ls, 14, "value", "twelve", "kal"), 14,
      "value 'twelve' is not a number", ()),
     ("decimal-comma-in-point-lab", "crx",
@@ -90,18 +91,18 @@ CASES = [
      "the form is for study 'nvp-other', not 'nvp-mfr'", ()),
     ("identity-line-removed", "kal", lambda ls, m: ls.pop(0), 1,
      "the form has no '# study: ...' line", ()),
-    ("trial-of-another-slot", "kal", lambda ls, m: set_cell(ls, 11, "trial", "2", "kal"), 11,
+    ("trial-of-another-slot", "kal", lambda ls, m: set_cell(ls, FIRST_ROW, "trial", "2", "kal"), FIRST_ROW,
      "is trial 1, position 1 of the run order, but the row says trial '2'", ()),
-    ("row-without-code", "kal", lambda ls, m: set_cell(ls, 11, "code", "", "kal"), 11,
+    ("row-without-code", "kal", lambda ls, m: set_cell(ls, FIRST_ROW, "code", "", "kal"), FIRST_ROW,
      "the row has no code", ()),
     ("unit-kept-by-host", "kal",
-     lambda ls, m: set_cell(ls, 11, "code", codes.format(m["host_units"]["retained"][0]), "kal"),
-     11, "is a unit kept by the host", ()),
+     lambda ls, m: set_cell(ls, FIRST_ROW, "code", codes.format(m["host_units"]["retained"][0]), "kal"),
+     FIRST_ROW, "is a unit kept by the host", ()),
     ("spare-not-issued", "kal",
-     lambda ls, m: set_cell(ls, 11, "code", codes.format(m["labs"]["kal"]["spares"][0]), "kal"),
-     11, "is a spare of this laboratory that was not issued", ()),
+     lambda ls, m: set_cell(ls, FIRST_ROW, "code", codes.format(m["labs"]["kal"]["spares"][0]), "kal"),
+     FIRST_ROW, "is a spare of this laboratory that was not issued", ()),
     ("misspelt-column", "kal", lambda ls, m: ls.__setitem__(
-        9, ls[9].replace("remarks", "remark")), HEADER_LINE, "did you mean 'remarks'?", ()),
+        HEADER_LINE - 1, ls[HEADER_LINE - 1].replace("remarks", "remark")), HEADER_LINE, "did you mean 'remarks'?", ()),
 ]
 
 
@@ -142,11 +143,11 @@ def test_form_of_another_round(planned, runner, tmp_path):
 def test_code_of_another_round(planned, runner, tmp_path):
     plan_example_round(planned, round_id="2027-2", host="tor", receive_by=date(2027, 4, 20))
     lines = filled(planned, "kal")
-    set_cell(lines, 11, "code", codes.format(manifest_of(planned, "2027-2")["labs"]["tor"]
+    set_cell(lines, FIRST_ROW, "code", codes.format(manifest_of(planned, "2027-2")["labs"]["tor"]
                                              ["trials"][0][0]), "kal")
     path = write(tmp_path, "mixed.csv", lines)
     assert "belongs to round '2027-2', not to '2027-1'" in one_error(
-        receive(runner, planned, path), path, 11)
+        receive(runner, planned, path), path, FIRST_ROW)
 
 
 def test_text_that_is_not_utf8(planned, runner, tmp_path):

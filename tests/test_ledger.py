@@ -55,7 +55,8 @@ def test_status_follows_events_and_replanning(tmp_path):
     with Ledger.open(tmp_path, clock=_clock) as ledger:
         first = _add(ledger)
         assert ledger.round_status("2027-1") == "planned"
-        ledger.record_event("2027-1", "printed", {})
+        with ledger.transaction():
+            ledger.record_event("2027-1", "printed", {})
         assert ledger.round_status("2027-1") == "printed"
         second = _add(ledger, codes=("CCCCCCCC0",))
         assert ledger.current_round("2027-1").row == second != first

@@ -161,7 +161,8 @@ def test_replanning_is_refused_unless_replace_and_untouched(example_dir):
     assert plan.read_manifest(folder)["fingerprint"] == again.fingerprint
     assert sorted(p.name for p in (example_dir / "rounds").iterdir()) == ["R1"]
     with Ledger.open(example_dir) as ledger:
-        ledger.record_event("R1", "printed", {})
+        with ledger.transaction():
+            ledger.record_event("R1", "printed", {})
     with pytest.raises(LedgerError, match="has been printed"):
         _write(study, example_dir, _plan(study, secret=bytes([7]) * 32, host="kal"), replace=True)
 

@@ -80,14 +80,14 @@ def test_good_comma_form_is_copied_hashed_and_recorded(planned, runner, tmp_path
 
 def test_point_form_with_comma_separator_and_uncertainty(planned, runner, tmp_path):
     lines = filled(planned, "crx")
-    set_cell(lines, 11, "uncertainty", "0.35", "crx")
-    set_cell(lines, 12, "value", "1.5e1", "crx")
+    set_cell(lines, FIRST_ROW, "uncertainty", "0.35", "crx")
+    set_cell(lines, FIRST_ROW + 1, "value", "1.5e1", "crx")
     path = write(tmp_path, "crx.csv", lines)
     assert receive(runner, planned, path).exit_code == 0
     with Ledger.open(planned) as ledger:
         rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
-    first = codes.compact(get_cell(lines, 11, "code", "crx"))
-    second = codes.compact(get_cell(lines, 12, "code", "crx"))
+    first = codes.compact(get_cell(lines, FIRST_ROW, "code", "crx"))
+    second = codes.compact(get_cell(lines, FIRST_ROW + 1, "code", "crx"))
     assert rows[first].uncertainty == 0.35 and rows[second].value == 15.0
 
 
@@ -110,8 +110,10 @@ def test_corrected_form_is_a_new_version_and_history_stays(planned, runner, tmp_
         table = status.round_status_table(spec.load(planned), planned, ROUND, ledger,
                                           today=date(2027, 1, 30))
     assert old[code] == value_of(14 - FIRST_ROW + 1) and new[code] == 99.75
-    assert sorted(p.name for p in folder.iterdir()) == sorted(
+    assert sorted(p.name for p in folder.iterdir() if not p.name.startswith("receipt-")) == sorted(
         f"{hashlib.sha256(p.read_bytes()).hexdigest()}.csv" for p in (first, second))
+    assert sorted(p.name for p in folder.glob("receipt-*")) == ["receipt-kal-v1.txt",
+                                                                "receipt-kal-v2.txt"]
     assert table.rows[0]["lab"] == "kal" and table.rows[0]["version"] == 2
 
 
@@ -193,7 +195,7 @@ def test_results_after_unseal_need_the_flag_and_a_reason(planned, runner, tmp_pa
         receive(runner, planned, write(tmp_path, f"{lab}.csv", filled(planned, lab)))
     assert run_cli(runner, "unseal", planned, "--round", ROUND).exit_code == 0
     lines = filled(planned, "tor")
-    set_cell(lines, 11, "value", "11,11", "tor")
+    set_cell(lines, FIRST_ROW, "value", "11,11", "tor")
     late = write(tmp_path, "tor-2.csv", lines)
     refused = receive(runner, planned, late)
     assert refused.exit_code == 2 and len(refused.stderr.strip().splitlines()) == 1

@@ -10,6 +10,7 @@ from __future__ import annotations
 from datetime import date
 
 from conftest import (
+    FIRST_ROW,
     PASSPHRASE,
     ROUND,
     filled,
@@ -66,14 +67,14 @@ def test_spare_replaces_a_damaged_unit_without_naming_the_material(planned, runn
 def test_intake_expects_the_spare_in_place_of_the_damaged_unit(planned, runner, tmp_path,
                                                              passphrase):
     lines = filled(planned, "crx")
-    damaged = get_cell(lines, 11, "code", "crx")
+    damaged = get_cell(lines, FIRST_ROW, "code", "crx")
     issued = run_cli(runner, "spare", planned, "--round", ROUND, "--lab", "crx",
                      "--damaged", damaged)
     spare = issued.stdout.split("use spare ")[1].split()[0]
     old = write(tmp_path, "old.csv", lines)
     assert f"unit {damaged} was replaced by spare {spare}" in one_error(
-        receive(runner, planned, old), old, 11)
-    set_cell(lines, 11, "code", spare, "crx")
+        receive(runner, planned, old), old, FIRST_ROW)
+    set_cell(lines, FIRST_ROW, "code", spare, "crx")
     new = write(tmp_path, "new.csv", lines)
     result = receive(runner, planned, new)
     assert result.exit_code == 0, result.stderr

@@ -53,6 +53,14 @@ def test_status_cli_json(planned, runner):
 
 
 def test_status_of_an_unplanned_round(example_dir, runner):
+    # A folder where nothing was planned: status says so and creates no ledger.
     result = run_cli(runner, "status", example_dir, "--round", "2030-1")
+    assert result.exit_code == 2
+    assert "no ledger here yet: no round has been planned" in result.stderr
+    assert not (example_dir / "ledger.sqlite").exists()
+
+
+def test_status_of_an_unplanned_round_beside_planned_ones(planned, runner):
+    result = run_cli(runner, "status", planned, "--round", "2030-1")
     assert result.exit_code == 2
     assert "round '2030-1' has not been planned" in result.stderr

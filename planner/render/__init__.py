@@ -98,7 +98,7 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     round was not planned, SealError if the key is not the round's,
     PlannerError for an unknown kind, laboratory or sheet.
     """
-    from planner import plan
+    from planner import plan, tokens
     from planner.render import labels, packing_list, prep_sheet, result_form, run_sheet
 
     folder = plan.round_dir(study_dir, round_id)
@@ -131,26 +131,29 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     for lab_id in lab_ids:
         lab_dir = folder / "labs" / lab_id
         if circulating:
-            out += _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper)
+            out += _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper,
+                                token=tokens.submission_token(bytes.fromhex(str(key["secret"])),
+                                                              lab_id))
             continue
         if "packing" in wanted:
             out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest, key,
                                            lab_id, paper=paper))
+        token = tokens.submission_token(bytes.fromhex(str(key["secret"])), lab_id)
         if "runsheets" in wanted:
             out.append(run_sheet.render(lab_dir / "run-sheet.pdf", study, manifest, lab_id,
-                                        paper=paper))
+                                        paper=paper, token=token))
         if "forms" in wanted:
             csv_path = lab_dir / "result-form.csv"
             if csv_path.is_file():
                 text = csv_path.read_text(encoding="utf-8")
             else:
-                text = plan.result_form_csv(study, manifest, lab_id)
+                text = plan.result_form_csv(study, manifest, lab_id, token=token)
             out.append(result_form.render(lab_dir / "result-form.xlsx", text))
     return out
 
 
 def _print_stops(study: Study, manifest: dict[str, Any], lab_dir: Path, lab_id: str,
-                 wanted: set[str], *, paper: str) -> list[Path]:
+                 wanted: set[str], *, paper: str, token: str) -> list[Path]:
     """Write a circulating set's documents of every stop of one laboratory; return their paths."""
     from planner import plan
     from planner.render import handover, result_form, run_sheet
@@ -166,14 +169,14 @@ def _print_stops(study: Study, manifest: dict[str, Any], lab_dir: Path, lab_id: 
                                        station, paper=paper))
         if "runsheets" in wanted:
             out.append(run_sheet.render(lab_dir / run_sheet.file_name(later), study, manifest,
-                                        lab_id, paper=paper, visit=later))
+                                        lab_id, paper=paper, visit=later, token=token))
         if "forms" in wanted:
             stem = f"result-form-{later}" if later else "result-form"
             csv_path = lab_dir / f"{stem}.csv"
             if csv_path.is_file():
                 text = csv_path.read_text(encoding="utf-8")
             else:
-                text = plan.result_form_csv(study, manifest, lab_id, later)
+                text = plan.result_form_csv(study, manifest, lab_id, later, token=token)
             out.append(result_form.render(lab_dir / f"{stem}.xlsx", text))
     return out
 

@@ -8,7 +8,9 @@ among the others (everyone knows who shipped the parcels, so marking it would
 name it); the host's own letter says that its results were prepared in-house.
 Numbers are written with the laboratory's decimal sign.
 
-Contents: the round and the assigned values, the laboratory's scores with
+Contents: the round, how the decoding key was opened as the ledger shows it
+(forced before every result was in, or not; when it was decrypted while sealed)
+with its full fingerprint, the assigned values, the laboratory's scores with
 their bands, its results unit by unit, a chart of everyone's scores with its
 own marked, and for rounds of up to ``TABLE_LABS`` participants a table of the
 others' scores by participant code.
@@ -135,9 +137,20 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
             "Your laboratory hosted this round: it prepared the material, so your results are "
             "marked <b>prepared in-house</b>. The assigned values are also given without your "
             "results.", st["body"]))
+    story += _key_section(s, to)
     mine = {m: s["scores"].get(m, {}).get("labs", {}).get(to.lab) for m in s["materials"]}
-    story += [Paragraph("Your scores", st["h2"]),
-              Paragraph(esc(_verdict(s, mine)), st["body"]), Spacer(1, 2 * _MM)]
+    own_rows = [r for r in rows if r.lab == to.lab]
+    scored = any(r.value is not None for r in own_rows)
+    if not scored:
+        # Nothing to score: say so in words, not with a table of dashes or "0 of 0".
+        text = ("The result form of your laboratory was recorded, but none of its results has "
+                "a value, so it has no scores in this round." if own_rows else
+                "No results of your laboratory were recorded for this round, so it has no "
+                "scores.")
+        story += [Paragraph("Your scores", st["h2"]), Paragraph(f"<b>{esc(text)}</b>", st["body"])]
+    else:
+        story += [Paragraph("Your scores", st["h2"]),
+                  Paragraph(esc(_verdict(s, mine)), st["body"]), Spacer(1, 2 * _MM)]
     has_en = any(e and e.get("En") is not None for e in mine.values())
     head = ["material", "x_pt", "u(x_pt)", "sigma_pt", "your mean", "D%", "score"] + (
         ["En"] if has_en else []) + ["band"]
@@ -170,9 +183,10 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         cells.append((len(head) - 1, len(data) - 1, e.get("band")))
         if has_en and e.get("en_band") == "unsatisfactory":
             cells.append((len(head) - 2, len(data) - 1, "unsatisfactory"))
-    story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
-                       bands(cells)))
-    story.append(Paragraph(esc(_method_note(s, in_house, n)), st["small"]))
+    if scored:
+        story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
+                           bands(cells)))
+        story.append(Paragraph(esc(_method_note(s, in_house, n)), st["small"]))
 
     # The laboratory's own results, unit by unit.
     trials = int(s["trials"])
@@ -202,8 +216,9 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     tw = min(62.0, (width - 70) / max(trials, 1) - 58)
     mono = [("FONT", (c, 1), (c, -1), _layout.MONO_REGULAR, 7) for c in range(2, 2 * trials + 1, 2)]
     align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
-    story += [Paragraph("Your results", st["h2"]),
-              table(data, [70] + [tw, 58] * trials, mono + align)]
+    if own_rows:
+        story += [Paragraph("Your results", st["h2"]),
+                  table(data, [70] + [tw, 58] * trials, mono + align)]
     if notes:
         story.append(Paragraph("Flags: " + esc("; ".join(notes)), st["small"]))
 
@@ -214,7 +229,7 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         if not mv:
             continue
         strip_rows.append((m, mv["all"], mv["scores"].get(me)))
-    if strip_rows:
+    if strip_rows and scored:
         name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
         story.append(KeepTogether([
             Paragraph("Where you stand", st["h2"]),
@@ -252,12 +267,53 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
                                    "(' marks z').", st["small"])] + block
             story.append(KeepTogether(block))
     story.append(Spacer(1, 4 * _MM))
-    story.append(Paragraph(
-        f"Issued by {esc(s.get('organiser') or 'the coordinator')}. The decoding key was "
-        f"opened only after every result was in; its SHA-256 is "
-        f"<font face='{_layout.MONO_REGULAR}' size='7'>{esc(s['fingerprint'][:16])}...</font>, "
-        "equal to the fingerprint printed on your packing list and run sheet.", st["small"]))
+    story.append(Paragraph(f"Issued by {esc(s.get('organiser') or 'the coordinator')}.",
+                           st["small"]))
     return story
+
+
+def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
+    """Return how the key was opened, as the ledger shows it, and its full fingerprint."""
+    from reportlab.platypus import Paragraph, Spacer
+
+    from planner.render import _opening
+
+    st = _layout.styles()
+    esc = _layout.escape
+    codes_of = s["participants"]
+    opening = s.get("opening")
+    hidden = False
+
+    def name_of(slot: str) -> str:
+        # Only the own laboratory by name; the others by this round's participant code.
+        lab, at, visit = slot.partition("@")
+        if at:
+            return f"your {visit} stop" if lab == to.lab else f"the host's {visit} stop"
+        return "your laboratory" if lab == to.lab else codes_of.get(lab, "another participant")
+
+    def reason(text: str) -> str:
+        nonlocal hidden
+        out, hidden = _opening.masked(text, codes_of, keep=to.lab)
+        return out
+
+    first = esc(_opening.opening_sentence(opening, name_of=name_of, reason=reason))
+    if hidden:
+        first += (" In the coordinator's reason the ids of other laboratories are given as "
+                  "their participant codes.")
+    if opening and opening.get("forced"):
+        first = f"<b>{first}</b>"
+    text = " ".join([first, *(esc(t) for t in _opening.later_sentences(opening,
+                                                                       name_of=name_of))])
+    sheet = "hand-over sheet" if "drift" in s else "packing list"
+    return [
+        Paragraph("The decoding key", st["h2"]),
+        Paragraph(text, st["body"]),
+        Spacer(1, 1.5 * _MM),
+        Paragraph(f"The key's SHA-256 fingerprint, equal to the fingerprint printed on your "
+                  f"{sheet} and run sheet before the units were shipped: <font "
+                  f"face='{_layout.MONO_REGULAR}'>"
+                  f"{esc(_layout.grouped_fingerprint(s['fingerprint']))}</font>", st["body"]),
+    ]
 
 
 def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any]) -> str:

@@ -3,8 +3,11 @@
 Built from the statistics of ``planner.evaluate.round_statistics`` and the
 unblinded results; it computes nothing itself, it only arranges. Sections:
 
-1. summary: who took part, what stands out (scores outside the satisfactory
-   band, stragglers and outliers, the size of the measurement variation), a
+1. summary: who took part, how the decoding key was opened (as the ledger
+   shows it: forced before every result was in, or not, and each decryption
+   while sealed), laboratories without results, what stands out (scores
+   outside the satisfactory band, stragglers and outliers, the size of the
+   measurement variation), a
    table per material, and the consensus without the host
    (a circulating set: the drift check of the artefacts from the host's
    re-measurements, a table and a chart of the host's means by stop)
@@ -81,9 +84,18 @@ def spread(rows: Sequence[Unblinded]) -> dict[tuple[str, str], tuple[float, floa
 
 
 def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
-    """Return the sentences of the summary: scores outside the band, tests, gauge R&R."""
+    """Return the sentences of the summary: laboratories without results, scores outside the
+    band, tests, gauge R&R."""
     out: list[str] = []
     host = statistics["host"]
+    silent = [lab for lab, n in statistics["results"].get("per_lab", {}).items() if not n]
+    sent = {d["lab"] for d in statistics["results"]["missing"]
+            if d.get("why") == "reported without a value"}
+    for labs, what in (([lab for lab in silent if lab not in sent], "no results recorded from"),
+                       ([lab for lab in silent if lab in sent], "no result with a value from")):
+        if labs:
+            out.append(f"{what} {', '.join(labs)}: "
+                       f"{'it has' if len(labs) == 1 else 'they have'} no scores in this round")
     bad: dict[str, dict[str, list[str]]] = {}
     for m in statistics["materials"]:
         sc = statistics["scores"].get(m, {})
@@ -253,6 +265,8 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
             f"{n_mat} materials, {s['trials']} trials each; {res['count']} results evaluated. "
             f"Measurand: {esc(s['measurand'])}, in {esc(s['unit'])}. Host: <b>{esc(host)}</b>; "
             "its results are marked <i>in-house</i> because it prepared the material.", "lead"),
+        d.p(_opening_text(s)),
+        Spacer(1, 1.5 * _MM),
         d.p(f"Decoding key SHA-256 (equal to the fingerprint printed before shipping): "
             f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
             f"{_layout.grouped_fingerprint(s['fingerprint'])}</font>", "small"),
@@ -281,6 +295,19 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     story.append(d.p(_assigned_text(s), "small"))
     story += _without_host_table(d, s)
     return story
+
+
+def _opening_text(s: Mapping[str, Any]) -> str:
+    """Return the paragraph (mark-up) on how the key was opened, the forced case in bold."""
+    from planner.render import _opening
+
+    esc = _layout.escape
+    opening = s.get("opening")
+    first = esc(_opening.opening_sentence(opening, name_of=_opening.slot_name))
+    if opening and opening.get("forced"):
+        first = f"<b>{first}</b>"
+    return " ".join([first, *(esc(t) for t in _opening.later_sentences(
+        opening, name_of=_opening.slot_name))])
 
 
 def _flag_line(s: Mapping[str, Any]) -> str:

@@ -16,7 +16,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes
+from planner import codes, tokens
 from planner.render import _layout, _qr
 
 if TYPE_CHECKING:
@@ -68,10 +68,11 @@ def _station(manifest: dict[str, Any], lab_id: str, visit: str | None) -> dict[s
 
 
 def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
-           paper: str, visit: str | None = None) -> Path:
+           paper: str, visit: str | None = None, token: str | None = None) -> Path:
     """Write the run sheet of ``lab_id`` to ``path``; return ``path``.
 
-    ``visit`` picks a host's later stop ("middle", "end") of a circulating set.
+    ``visit`` picks a host's later stop ("middle", "end") of a circulating set;
+    ``token`` is the laboratory's submission token (``planner.tokens``).
     """
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
@@ -114,6 +115,12 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
               for i, text in enumerate(instructions, start=1)]
     story += [Paragraph("Round fingerprint", st["h2"]),
               Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"])]
+    if token is not None:
+        story += [Paragraph("Submission token", st["h2"]),
+                  Paragraph(f"<font name='{_layout.MONO}'>{esc(tokens.format(token))}</font>"
+                            " &#8212; for your laboratory only. It is already on your result "
+                            "form; the coordinator records a form only with it. Do not pass it "
+                            "on.", st["body"])]
 
     side = 13 * _MM
     widths = [0.06, 0.11, 0.17, 0.17, 0.16, 0.13, 0.20]
