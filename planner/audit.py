@@ -56,17 +56,20 @@ def slot_runs(manifest: Mapping[str, Any], slot: str) -> list[list[str]]:
 
 
 def missing_labs(study: Study, ledger: Ledger, round_id: str, *,
-                 manifest: Mapping[str, Any] | None = None) -> list[str]:
-    """Return the slots of a round whose results have not been received.
+                 manifest: Mapping[str, Any]) -> list[str]:
+    """Return the slots of a round whose results are not complete.
 
-    Split mode: the laboratories in spec order. A circulating set: every stop of
-    the route in order (``host@middle``, ``host@end`` for the host's later
-    stops), from ``manifest`` when given, else rebuilt from the spec and the
-    ledger's host.
+    A slot is complete when every code it was sent (spares in place of replaced units;
+    every artefact in every trial of a circulating stop) has, in the merge of its
+    forms, a value or a remark saying why not: a form of one row is not "reported".
+    Split mode: the laboratories in spec order; a circulating set: every stop of the
+    route in order (``host@middle``, ``host@end`` for the host's later stops).
     """
-    received = {e.detail.get("lab") for e in ledger.events(round_id, "received")}
+    from planner import intake, returns
+
+    swaps = intake.spare_swaps(ledger, round_id)
     return [s for s in round_slots(study, ledger, round_id, manifest=manifest)
-            if s not in received]
+            if not returns.slot_state(manifest, ledger, round_id, s, swaps=swaps).complete]
 
 
 def round_slots(study: Study, ledger: Ledger, round_id: str, *,
@@ -80,9 +83,8 @@ def round_slots(study: Study, ledger: Ledger, round_id: str, *,
     return [lab.id for lab in study.laboratories]
 
 
-def check_gate(study: Study, ledger: Ledger, round_id: str, *, force: bool = False,
-               reason: str | None = None,
-               manifest: Mapping[str, Any] | None = None) -> list[str]:
+def check_gate(study: Study, ledger: Ledger, round_id: str, *, manifest: Mapping[str, Any],
+               force: bool = False, reason: str | None = None) -> list[str]:
     """Return the slots still missing; raise LedgerError if the key may not open yet."""
     if ledger.current_round(round_id) is None:
         raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
@@ -91,8 +93,9 @@ def check_gate(study: Study, ledger: Ledger, round_id: str, *, force: bool = Fal
         raise LedgerError(f"round {round_id!r} is already unsealed; key.json is in its folder")
     missing = missing_labs(study, ledger, round_id, manifest=manifest)
     if missing and not force:
-        raise LedgerError(f"results are still missing from {', '.join(missing)}; the key opens "
-                          "when every laboratory has reported (or use --force --reason TEXT)")
+        raise LedgerError(f"results are still missing or incomplete from {', '.join(missing)}; "
+                          "the key opens when every code sent has a value or a remark "
+                          "(or use --force --reason TEXT)")
     if force and missing and not (reason and reason.strip()):
         raise LedgerError("--force needs --reason TEXT saying why the key is opened early; "
                           "the reason is recorded in the ledger")

@@ -337,11 +337,13 @@ def unseal(
 ) -> None:
     """Open the sealed key once every laboratory has reported; check its fingerprint."""
     from planner import audit
+    from planner import plan as planning
     from planner.ledger import Ledger
 
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
-        audit.check_gate(study, ledger, round_id, force=force, reason=reason)
+        audit.check_gate(study, ledger, round_id, force=force, reason=reason,
+                         manifest=planning.read_manifest(planning.round_dir(study_dir, round_id)))
         passphrase = _passphrase(passphrase_file, confirm=False)
         path = audit.unseal_round(study, study_dir, round_id, ledger, passphrase=passphrase,
                                   force=force, reason=reason)
@@ -445,7 +447,14 @@ def receive(
         if r.late_rows:
             typer.echo("  late: tested after the test window: "
                        + ", ".join(codes.format(c) for c in r.late_rows))
-        if r.missing:
+        if r.merged:
+            typer.echo(f"  merged with the earlier versions: {r.in_force} results in force")
+        if r.version is not None and r.outstanding:
+            typer.echo(f"  outstanding: {len(r.outstanding)} codes have neither a value nor a "
+                       "remark yet: " + ", ".join(codes.format(c.partition("@")[0])
+                                                 for c in r.outstanding[:20])
+                       + (" ..." if len(r.outstanding) > 20 else ""))
+        elif r.missing:
             typer.echo(f"  missing: {len(r.missing)} codes have no row: "
                        + ", ".join(codes.format(c) for c in r.missing))
 
@@ -471,7 +480,8 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
         f"Round {round_id}: results due {info.results_due}",
         ["lab", "received", "version", "values", "empty", "missing", "late", "days left",
          "flags"],
-        [[r["lab"], "yes" if r["received"] else "no", r["version"], r["values"], r["failed"],
+        [[r["lab"], ("complete" if r["complete"] else "incomplete") if r["received"] else "no",
+          f"{r['version']} (merged)" if r["merged"] else r["version"], r["values"], r["failed"],
           r["missing"], "late" if r["late"] else "", r["days_left"],
           " ".join(f for f, on in (("AFTER-UNSEAL", r["after_unseal"]),
                                    (f"spares:{r['spares_issued']}", r["spares_issued"])) if on)]

@@ -462,31 +462,33 @@ _INTAKE_FLAGS = {"late-date": "late", "after-unseal": "after-unseal", "no-value"
 
 def accepted_results(study: Study, ledger: Ledger, round_id: str, *,
                      manifest: Mapping[str, Any] | None = None) -> list[dict[str, Any]]:
-    """Return the results in force of a round: each laboratory's newest accepted form.
+    """Return the results in force of a round: per laboratory the merge of its forms.
 
-    Each is a dict (lab, code, trial, value, uncertainty, remarks, flags) as ``unblind``
-    takes it; "late" when the form came after the results were due or a test date
-    lies after the test window, "after-unseal" when it came after the key was opened.
-    A circulating set's results also say the ``visit`` of the host's later stops
-    ("middle", "end"; None for a laboratory's own stop and the host's first).
+    A correction may carry only the rows it changes (``returns.slot_state``). Each
+    result is a dict (lab, code, trial, value, uncertainty, remarks, flags) as
+    ``unblind`` takes it; "late" when the form it came from arrived after the results
+    were due or a test date lies after the test window, "after-unseal" when that form
+    came after the key was opened. A circulating set's results also say the ``visit``
+    of the host's later stops ("middle", "end"; None for a laboratory's own stop and the
+    host's first).
     """
-    from planner import audit
+    from planner import audit, intake, returns
 
     out: list[dict[str, Any]] = []
     circulating = study.design.mode == "circulate"
+    if manifest is None:
+        raise ValueError("accepted_results needs the round's manifest")
     slots = (audit.round_slots(study, ledger, round_id, manifest=manifest) if circulating
              else [lab.id for lab in study.laboratories])
+    swaps = intake.spare_swaps(ledger, round_id)
     for slot in slots:
         lab_id, visit = audit.split_slot(slot)
-        history = ledger.submissions(round_id, slot)
-        if not history:
-            continue
-        last = history[-1]
-        for r in ledger.result_rows(last.row):
+        state = returns.slot_state(manifest, ledger, round_id, slot, swaps=swaps)
+        for sub, r in state.rows:
             flags = {_INTAKE_FLAGS.get(f, f) for f in r.flags} - {""}
-            if last.late:
+            if sub.late:
                 flags.add("late")
-            if last.after_unseal:
+            if sub.after_unseal:
                 flags.add("after-unseal")
             record = {"lab": lab_id, "code": r.code, "trial": r.trial, "value": r.value,
                       "uncertainty": r.uncertainty, "remarks": r.remarks,
@@ -547,6 +549,10 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
         rows = _ordered(unblind(key, accepted), study)
         statistics = round_statistics(study, key, rows, missing=_missing(key, rows),
                                       opening=opening)
+    # The record this evaluation rests on: the chain head goes onto every letter, so a
+    # laboratory can later show the ledger was not rewritten behind the letter.
+    head = ledger.head()
+    statistics["ledger"] = {"link": head.seq, "at": head.at, "head": head.head}
     out = folder / REPORT_DIR
     out.mkdir(parents=True, exist_ok=True)
     _write_text(out / RESULTS_NAME, results_csv(rows))

@@ -29,13 +29,17 @@ from planner.errors import IntakeError, LedgerError, PlannerError, Where
 from planner.intake import Checked, condense, describe_slot, inspect_form, spare_swaps
 
 if TYPE_CHECKING:
-    from planner.ledger import ChainHead, Ledger
+    from collections.abc import Mapping
+
+    from planner.ledger import ChainHead, Ledger, ResultRow, Submission
     from planner.spec import Study
 
 __all__ = [
     "RESULTS_DIR",
     "STAGING_DIR",
     "Receipt",
+    "SlotState",
+    "slot_state",
     "receipt_text",
     "receive",
     "settle_results",
@@ -64,6 +68,9 @@ class Receipt:
     repeat_of: int | None
     receipt: str | None = None  # the receipt file, relative to the round folder
     chain_head: str | None = None  # "link:head" of the ledger right after recording
+    in_force: int | None = None  # rows in force after merging with earlier versions
+    outstanding: tuple[str, ...] = ()  # expected codes still without a value or remark
+    merged: bool = False  # rows of more than one version are in force
 
     @property
     def late(self) -> bool:
@@ -112,6 +119,61 @@ def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[st
             os.replace(item, target)
             moved.append(item.name)
     return moved
+
+
+@dataclass(frozen=True, slots=True)
+class SlotState:
+    """The results in force of one slot: the merge of every version received, oldest first.
+
+    ``rows`` pairs each row with the submission it came from (a later version's row
+    replaces an earlier one of the same code and trial); ``outstanding`` lists the
+    expected codes (``CODE`` or ``CODE@trial`` for a circulating set) that have neither
+    a value nor a remark yet.
+    """
+
+    slot: str
+    versions: tuple[int, ...]
+    rows: tuple[tuple[Submission, ResultRow], ...]
+    outstanding: tuple[str, ...]
+
+    @property
+    def complete(self) -> bool:
+        return bool(self.versions) and not self.outstanding
+
+    @property
+    def merged(self) -> bool:
+        """True when rows of more than one version are in force."""
+        return len({s.version for s, _ in self.rows}) > 1
+
+
+def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot: str, *,
+               swaps: Mapping[str, str] | None = None) -> SlotState:
+    """Return what is in force for one slot of a round, and what is still outstanding.
+
+    A correction may carry only the rows it changes: the versions are merged in the
+    order received, each row replacing the earlier one of its code and trial.
+    """
+    from planner import audit
+    from planner.intake import expected_codes
+
+    history = ledger.submissions(round_id, slot)
+    merged: dict[tuple[str, int | None], tuple[Submission, ResultRow]] = {}
+    for sub in history:
+        for row in ledger.result_rows(sub.row):
+            merged[(row.code, row.trial)] = (sub, row)
+    done = {key for key, (_, row) in merged.items()
+            if row.value is not None or row.remarks.strip()}
+    if manifest.get("mode") == "circulate":
+        expected = [(code, trial) for trial, run in
+                    enumerate(audit.slot_runs(manifest, slot), start=1) for code in run]
+        outstanding = [f"{c}@{t}" for c, t in expected if (c, t) not in done]
+    else:
+        lab = audit.split_slot(slot)[0]
+        codes_done = {code for code, _ in done}
+        outstanding = [c for c in expected_codes(manifest, lab, swaps or {}) if c not in codes_done]
+    order = sorted(merged.values(), key=lambda sr: (sr[1].trial or 0, sr[1].position or 0,
+                                                    sr[1].code))
+    return SlotState(slot, tuple(s.version for s in history), tuple(order), tuple(outstanding))
 
 
 def _other_rounds(ledger: Ledger, round_id: str) -> dict[str, str]:
@@ -182,11 +244,22 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
         raise IntakeError("\n".join(condense(problems)))
     due = date.fromisoformat(manifest["dates"]["results_due"])
     plans = []
+    stale: list[PlannerError] = []
     for form, checked in accepted:
         lab_id = str(checked.lab)
         history = ledger.submissions(round_id, lab_id)
         last = history[-1] if history else None
+        old = [s for s in history[:-1] if s.sha256 == form.sha256]
+        if old and (last is None or last.sha256 != form.sha256):
+            # Recording it again would quietly bring back values that were corrected.
+            stale.append(IntakeError(
+                f"this file is version {old[-1].version} of {describe_slot(lab_id)}, already "
+                f"replaced by version {last.version if last else '?'}; sending it again would "
+                "bring back the values corrected since: send a form with the values that "
+                "should be in force", Where(form.path)))
         plans.append((form, checked, last))
+    if stale:
+        raise IntakeError("\n".join(condense(stale)))
     receipts: list[Receipt] = []
     if check_only:
         return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
@@ -232,6 +305,9 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     out = []
     for r in receipts:
         if r.version is not None:
+            state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps)
+            r = replace(r, in_force=len(state.rows), outstanding=state.outstanding,
+                        merged=state.merged)
             name = f"{RESULTS_DIR}/receipt-{r.lab}-v{r.version}.txt"
             _write_receipt(folder / name, receipt_text(study.id, round_id, r, head,
                                                        ledger.events(round_id, "received")))
@@ -251,8 +327,13 @@ def receipt_text(study_id: str, round_id: str, r: Receipt, head: ChainHead,
         f"form version {r.version}" + (f" (replaces version {r.supersedes})"
                                        if r.supersedes else "") + f", recorded {at}",
         f"file {Path(r.file).name}, SHA-256 {r.sha256}",
-        f"{r.values} results with a value, {r.failed} without"
-        + (f"; {len(r.missing)} expected codes have no row" if r.missing else ""),
+        f"this form: {r.values} results with a value, {r.failed} without"
+        + (f"; {len(r.missing)} expected codes have no row in it" if r.missing else ""),
+        f"in force for the laboratory"
+        + (" (merged with its earlier versions)" if r.merged else "")
+        + f": {r.in_force} results"
+        + (f"; still outstanding: {len(r.outstanding)} codes" if r.outstanding
+           else "; complete"),
         f"ledger chain after recording: link {head.seq}, head {head.head}",
         "",
         "Keep this receipt. The ledger's chain must pass through this link and head for as",

@@ -23,7 +23,7 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, intake, plan
+from planner import circulate, codes, intake, plan, returns
 from planner.errors import LedgerError
 
 if TYPE_CHECKING:
@@ -76,13 +76,13 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
             continue
         expected = intake.expected_codes(manifest, lab.id, swaps)
         history = ledger.submissions(round_id, lab.id)
-        got = ledger.result_rows(history[-1].row) if history else []
-        reported = {r.code for r in got}
-        missing = [codes.format(c) for c in expected if c not in reported]
+        state = returns.slot_state(manifest, ledger, round_id, lab.id, swaps=swaps)
+        got = [r for _, r in state.rows]
+        missing = [codes.format(c) for c in state.outstanding]
         spares = sum(1 for s in swaps.values() if s in manifest["labs"][lab.id].get("spares", ()))
         rows.append(_row(lab.id, history, got, expected=len(expected), missing=missing,
-                         spares=spares, today=today, due=due))
-    waiting = tuple(audit.missing_labs(study, ledger, round_id))
+                         spares=spares, today=today, due=due, merged=state.merged))
+    waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
                        tuple(rows), key)
 
@@ -199,13 +199,14 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
         runs = audit.slot_runs(manifest, slot)
         expected = [(code, trial) for trial, run in enumerate(runs, start=1) for code in run]
         history = ledger.submissions(round_id, slot)
-        got = ledger.result_rows(history[-1].row) if history else []
-        reported = {(r.code, r.trial) for r in got}
-        missing = [f"{codes.format(c)} (trial {t})" for c, t in expected if (c, t) not in reported]
+        state = returns.slot_state(manifest, ledger, round_id, slot)
+        got = [r for _, r in state.rows]
+        missing = [f"{codes.format(c)} (trial {t})" for c, _, t in
+                   (o.partition("@") for o in state.outstanding)]
         station = stations.get(slot, {})
         rows.append({
             **_row(slot, history, got, expected=len(expected), missing=missing, spares=0,
-                   today=today, due=due),
+                   today=today, due=due, merged=state.merged),
             "laboratory": station.get("lab", slot),
             "visit": station.get("visit"),
             "test_end": station.get("test_end"),
@@ -214,13 +215,16 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
 
 
 def _row(slot: str, history: Sequence[Submission], got: Sequence[ResultRow], *, expected: int,
-         missing: list[str], spares: int, today: date, due: date) -> dict[str, Any]:
-    """Return the status row of one laboratory (or stop) from its submissions."""
+         missing: list[str], spares: int, today: date, due: date,
+         merged: bool = False) -> dict[str, Any]:
+    """Return the status row of one laboratory (or stop) from the rows in force."""
     last = history[-1] if history else None
     return {
         "lab": slot,
         "received": last is not None,
+        "complete": last is not None and not missing,
         "version": last.version if last else None,
+        "merged": merged,
         "received_at": last.received_at if last else None,
         "values": sum(1 for r in got if r.value is not None),
         "failed": sum(1 for r in got if r.value is None),

@@ -143,7 +143,7 @@ def round_(tmp_path_factory):
             clock.set(date.fromisoformat(station["test_end"]) + timedelta(days=1))
             if station["visit"] == "end":
                 try:
-                    audit.check_gate(study, ledger, ROUND)
+                    audit.check_gate(study, ledger, ROUND, manifest=manifest)
                 except LedgerError as exc:
                     gate_before_end = str(exc)
             returns.receive(study, folder_root, ROUND, [target], ledger)

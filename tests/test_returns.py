@@ -162,7 +162,8 @@ def test_empty_value_with_a_remark_and_a_missing_row(planned, runner, tmp_path):
     assert result.exit_code == 0, result.stderr
     assert "17 values" not in result.stdout and "16 values, 1 without value" in result.stdout
     missing = dropped.split(";")[2]
-    assert f"missing: 1 codes have no row: {missing}" in result.stdout
+    assert f"outstanding: 1 codes have neither a value nor a remark yet: {missing}" in \
+        result.stdout
     with Ledger.open(planned) as ledger:
         rows = {r.code: r for r in ledger.result_rows(ledger.submissions(ROUND)[0].row)}
     blank = rows[codes.compact(get_cell(lines, 16, "code", "kal"))]
@@ -177,7 +178,7 @@ def test_unseal_opens_without_force_once_every_lab_is_in(planned, runner, tmp_pa
         assert receive(runner, planned, write(tmp_path, f"{lab}.csv",
                                               filled(planned, lab))).exit_code == 0
     early = run_cli(runner, "unseal", planned, "--round", ROUND)
-    assert early.exit_code == 2 and "results are still missing from crx" in early.stderr
+    assert early.exit_code == 2 and "results are still missing or incomplete from crx" in early.stderr
     status = run_cli(runner, "status", planned, "--round", ROUND)
     assert "the key stays sealed: waiting for crx" in status.stdout
     assert receive(runner, planned, write(tmp_path, "crx.csv",

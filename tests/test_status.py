@@ -26,10 +26,11 @@ def test_status_rows_and_days_left(planned, runner, tmp_path):
     rows = {r["lab"]: r for r in before.rows}
     assert [r["lab"] for r in before.rows] == list(LABS)
     assert before.results_due == date(2027, 2, 4) and not before.may_open
-    assert before.waiting_for == LABS[:-1]
+    assert before.waiting_for == LABS  # crx left one code out: not complete
     # 2027-01-30 to 2027-02-04 is 5 calendar days; 2027-02-06 is 2 days past it
     assert rows["kal"] | {"missing_codes": None} == {
-        "lab": "kal", "received": False, "version": None, "received_at": None, "values": 0,
+        "lab": "kal", "received": False, "complete": False, "version": None, "merged": False,
+        "received_at": None, "values": 0,
         "failed": 0, "expected": 18, "missing": 18, "missing_codes": None, "late": False,
         "after_unseal": False, "spares_issued": 0, "days_left": 5}
     assert (rows["crx"]["received"], rows["crx"]["version"], rows["crx"]["values"],

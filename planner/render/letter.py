@@ -313,6 +313,13 @@ def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
                   f"{sheet} and run sheet before the units were shipped: <font "
                   f"face='{_layout.MONO_REGULAR}'>"
                   f"{esc(_layout.grouped_fingerprint(s['fingerprint']))}</font>", st["body"]),
+        *([Paragraph(
+            f"The study's ledger as this letter was written: chain link {s['ledger']['link']}, "
+            f"head <font face='{_layout.MONO_REGULAR}'>"
+            f"{esc(_layout.grouped_fingerprint(s['ledger']['head']))}</font>. Keep it with your "
+            "receipts: the ledger must still pass through this link and head "
+            "('ringplan chain --link N'), or it was rewritten after this letter.", st["small"])]
+          if s.get("ledger") else []),
     ]
 
 

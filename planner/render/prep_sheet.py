@@ -24,7 +24,8 @@ CONFIDENTIAL = ("CONFIDENTIAL · host only · links codes to materials · keep w
                 "key, never send to a participant")
 
 CHECKLIST = (
-    "Print the labels and this sheet; check that the fingerprint below matches key.fingerprint.",
+    "Print the labels and this sheet; check that the fingerprint below is the one printed on "
+    "every packing list of this round.",
     "Prepare each material as one homogeneous batch before it is split into units.",
     "Split each material into the number of units in the table, each of the amount given.",
     ("Label the units of one material at a time, following the separator labels; never have "
@@ -37,7 +38,8 @@ CHECKLIST = (
 
 # For a circulating set: one artefact per material that travels the whole route.
 CIRCULATE_CHECKLIST = (
-    "Print the labels and this sheet; check that the fingerprint below matches key.fingerprint.",
+    "Print the labels and this sheet; check that the fingerprint below is the one printed on "
+    "every packing list of this round.",
     "Check every artefact for damage and clean it as the method prescribes.",
     ("Label the artefacts one at a time, following the separator labels; the label goes where "
     "it does not touch a measuring surface."),

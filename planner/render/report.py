@@ -257,7 +257,8 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
 
     esc = _layout.escape
     host = s["host"]
-    n_labs, n_mat = len(s["labs"]), len(s["materials"])
+    # Every laboratory of the round, those without results too (they are named below).
+    n_labs, n_mat = len(s["results"]["per_lab"]) or len(s["labs"]), len(s["materials"])
     res = s["results"]
     story: list[Any] = [
         d.p("Round report", "title"),
@@ -270,6 +271,10 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
         d.p(f"Decoding key SHA-256 (equal to the fingerprint printed before shipping): "
             f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
             f"{_layout.grouped_fingerprint(s['fingerprint'])}</font>", "small"),
+        *([d.p(f"Ledger at evaluation: chain link {s['ledger']['link']}, head "
+               f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
+               f"{_layout.grouped_fingerprint(s['ledger']['head'])}</font>", "small")]
+          if s.get("ledger") else []),
         d.p("Summary", "h2"),
     ]
     story += [d.p(esc(line), "bullet") for line in summary_lines(s)]
