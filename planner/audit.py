@@ -28,7 +28,7 @@ if TYPE_CHECKING:
     from planner.ledger import Ledger
     from planner.spec import Study
 
-__all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "Verdict",
+__all__ = ["missing_labs", "check_gate", "unseal_round", "verify_round", "verify_key", "Verdict",
            "report_slots", "round_slots", "slot_runs", "split_slot", "check_fingerprint",
            "read_key", "open_key"]
 
@@ -210,12 +210,11 @@ def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
                  fingerprint: str | None = None) -> Verdict:
     """Check key.json against the fingerprints and rebuild the round from its secret.
 
-    Returns a Verdict with the findings of ``check_fingerprint``, a finding when
-    key.json differs from ``fingerprint`` (one a participant copied from its packing
-    list; spaces and case are ignored), and every unit whose code, material, kind,
-    laboratory, trial or position differs between the key and the rebuild. Raises
-    SealError while the key is sealed or for a malformed ``fingerprint``, LedgerError
-    for a round that is not in the ledger.
+    Returns a Verdict with the findings of ``check_fingerprint`` and of ``verify_key``,
+    and a finding when the key's frame is not the round as planned (the frozen
+    ``study``) or when it claims to have passed over codes the ledger never issued.
+    Raises SealError while the key is sealed or for a malformed ``fingerprint``,
+    LedgerError for a round that is not in the ledger.
     """
     given = None if fingerprint is None else seal.validate_fingerprint(fingerprint)
     folder = plan.round_dir(study_dir, round_id)
@@ -228,25 +227,61 @@ def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
     except SealError as exc:
         # In an audit a disagreement is a finding to list, not a reason to stop looking.
         findings.append(str(exc))
+    verdict = verify_key(key_json, manifest, fingerprint=given, path=path,
+                         study=study)
+    current = ledger.current_round(round_id)
+    earlier = ledger.codes(before_row=current.row) if current else set()
+    key = json.loads(key_json)
+    unknown = sorted(set(key.get("skipped") or ()) - earlier)
+    differences = list(verdict.differences)
+    if unknown:
+        differences.append(f"key.json: it says the draw passed over {len(unknown)} code(s) of "
+                           "earlier rounds that the ledger never issued")
+    return Verdict(tuple(findings) + verdict.fingerprint_findings, verdict.units_checked,
+                   tuple(differences))
+
+
+def verify_key(key_json: bytes, manifest: Mapping[str, Any], *, fingerprint: str | None,
+               path: Path, study: Study | None = None) -> Verdict:
+    """Check a key against a fingerprint and its manifest and rebuild its units from the secret.
+
+    Needs nothing but key.json, the manifest and (for a participant) the fingerprint
+    from its own packing list: the key carries the round's frame (laboratory and material
+    ids in order, the design, a circulating set's stops) and the codes of earlier rounds
+    its draw passed over. ``study``, the round as planned, adds a check that the frame is
+    that round's. Raises SealError for a key that cannot be read.
+    """
+    findings: list[str] = []
     actual = seal.fingerprint(key_json)
-    if given is not None and actual != given:
+    if fingerprint is not None and actual != fingerprint:
         findings.append(str(SealError(
-            f"its SHA-256 {_short(actual)} differs from the fingerprint given, {_short(given)}; "
-            "if it was copied right, this is not the key the packing list was printed for",
-            Where(str(path)))))
+            f"its SHA-256 {_short(actual)} differs from the fingerprint given, "
+            f"{_short(fingerprint)}; if it was copied right, this is not the key the packing "
+            "list was printed for", Where(str(path)))))
+    if manifest.get("fingerprint") != actual:
+        findings.append(str(SealError(
+            f"its SHA-256 {_short(actual)} differs from the manifest's fingerprint "
+            f"{_short(str(manifest.get('fingerprint')))}", Where(str(path)))))
     try:
         key = json.loads(key_json)
         secret = bytes.fromhex(key["secret"])
         host = str(key["host"])
-    except (ValueError, KeyError, TypeError):
+        frame: Any = plan.frame_from_key(key) if "frame" in key else study
+    except (ValueError, KeyError, TypeError, AttributeError):
         raise SealError("key.json is not a readable ringplan key", Where(str(path))) from None
-    current = ledger.current_round(round_id)
-    taken = ledger.codes(before_row=current.row) if current else set()
-    rebuilt = plan.build_units(study, host=host, secret=secret, taken=taken)
+    if frame is None:
+        raise SealError("this key was written before keys carried their round's frame; "
+                        "verify it in the study folder", Where(str(path)))
+    differences: list[str] = []
+    if study is not None and "frame" in key and key["frame"] != plan.frame_of(study, host):
+        differences.append("key.json: its frame (laboratories, materials, design) is not the "
+                           "round as planned")
+    rebuilt = plan.build_units(frame, host=host, secret=secret,
+                               taken=set(key.get("skipped") or ()))
     found = plan.units_from_key(key)
-    differences = plan.compare_units(rebuilt, found)
-    published = plan.manifest_runs(manifest)
-    for slot, runs in plan.expected_runs(study, host=host, secret=secret, units=rebuilt).items():
+    differences += plan.compare_units(rebuilt, found)
+    published = plan.manifest_runs(dict(manifest))
+    for slot, runs in plan.expected_runs(frame, host=host, secret=secret, units=rebuilt).items():
         if published.get(slot) != runs:
             differences.append(f"manifest.json: the run orders of {slot!r} differ from the ones "
                                "the secret gives")

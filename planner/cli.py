@@ -354,11 +354,18 @@ def unseal(
 @app.command()
 @_command
 def verify(
-    study_dir: StudyDir,
-    round_id: RoundOpt,
+    study_dir: Annotated[Path | None, typer.Argument(
+        help="The study folder (leave out with --key and --manifest).")] = None,
+    round_id: Annotated[str | None, typer.Option(
+        "--round", help="The round id, e.g. 2027-1 (with the study folder).")] = None,
     fingerprint: Annotated[str | None, typer.Option(
         help="The round fingerprint as printed on your packing list (spaces and case do not "
         "matter); key.json must have this SHA-256.")] = None,
+    key: Annotated[Path | None, typer.Option(
+        help="A published key.json, checked on its own (needs --manifest and --fingerprint).")
+    ] = None,
+    manifest: Annotated[Path | None, typer.Option(
+        help="The round's manifest.json, with --key.")] = None,
 ) -> None:
     """Check key.json against the fingerprints and rebuild the round from its secret."""
     from planner import audit, seal
@@ -367,19 +374,56 @@ def verify(
     if fingerprint is not None:
         # a mistyped fingerprint is named before anything is opened
         fingerprint = seal.validate_fingerprint(fingerprint, field="--fingerprint")
-    with Ledger.open(study_dir, create=False) as ledger:
-        study = _round_study(study_dir, round_id, ledger)
-        verdict = audit.verify_round(study, study_dir, round_id, ledger, fingerprint=fingerprint)
+    if key is not None or manifest is not None:
+        if key is None or manifest is None or fingerprint is None or study_dir is not None:
+            raise PlannerError("checking a published key needs --key FILE, --manifest FILE "
+                               "and --fingerprint HEX (from your packing list), and no study "
+                               "folder")
+        verdict = audit.verify_key(_read_bytes(key), _read_json(manifest),
+                                   fingerprint=fingerprint, path=key)
+        label = str(key)
+    else:
+        if study_dir is None or round_id is None:
+            raise PlannerError("name the study folder and --round, or check a published key "
+                               "with --key, --manifest and --fingerprint")
+        with Ledger.open(study_dir, create=False) as ledger:
+            study = _round_study(study_dir, round_id, ledger)
+            verdict = audit.verify_round(study, study_dir, round_id, ledger,
+                                         fingerprint=fingerprint)
+        label = f"round {round_id}: key.json"
     for line in verdict.fingerprint_findings:
         _fail(line)
     for line in verdict.differences:
         _fail(line)
     if not verdict.ok:
         raise typer.Exit(1)
+    if key is not None:
+        typer.echo(f"{label} has the fingerprint given, matches the manifest, and all "
+                   f"{verdict.units_checked} units and every run order rebuild from its secret "
+                   "exactly")
+        return
     given = " and the one given" if fingerprint is not None else ""
-    typer.echo(f"round {round_id}: key.json matches the fingerprint recorded in the ledger at "
+    typer.echo(f"{label} matches the fingerprint recorded in the ledger at "
                f"planning, the manifest's{given}, and all {verdict.units_checked} units "
                "rebuild from the secret exactly")
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise PlannerError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
+                           _where(path)) from None
+
+
+def _read_json(path: Path) -> dict[str, Any]:
+    try:
+        data = json.loads(_read_bytes(path))
+    except ValueError:
+        raise PlannerError("the file is not valid JSON", _where(path)) from None
+    if not isinstance(data, dict):
+        raise PlannerError("expected a JSON object", _where(path))
+    return data
 
 
 def _test_pause() -> Callable[[str], None] | None:

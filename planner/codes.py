@@ -116,19 +116,25 @@ def new_code(stream: Stream) -> str:
     return payload + calc_check_character(payload)
 
 
-def new_codes(stream: Stream, count: int, *, taken: Set[str] = frozenset()) -> list[str]:
+def new_codes(stream: Stream, count: int, *, taken: Set[str] = frozenset(),
+              skipped: list[str] | None = None) -> list[str]:
     """Return ``count`` distinct new compact codes, none of them in ``taken``.
 
     A code that collides is thrown away and drawn again, so the result depends
-    only on the stream and on ``taken``.
+    only on the stream and on ``taken``. The codes thrown away because they are in
+    ``taken`` are appended to ``skipped`` (when given): with them, and no other
+    knowledge of ``taken``, the same codes can be drawn again.
     """
     if count < 0:
         raise ValueError("count must not be negative")
-    seen = {compact(code) for code in taken}
+    before = {compact(code) for code in taken}
+    seen = set(before)
     out: list[str] = []
     while len(out) < count:
         code = new_code(stream)
         if code not in seen:
             seen.add(code)
             out.append(code)
+        elif skipped is not None and code in before:
+            skipped.append(code)
     return out

@@ -32,7 +32,8 @@ if TYPE_CHECKING:
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
-    "definition_of", "study_of_definition", "round_study",
+    "definition_of", "study_of_definition", "round_study", "Frame", "frame_of",
+    "frame_from_key",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
     "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
     "expected_runs", "manifest_runs",
@@ -67,6 +68,48 @@ class RoundPlan:
     fingerprint: str
     route: Route | None = None
     definition: bytes = b""  # the study as planned, canonical JSON (``definition_of``)
+    frame: dict[str, Any] | None = None  # what rebuilding the units needs (``frame_of``)
+    skipped: tuple[str, ...] = ()  # codes of earlier rounds the draw passed over
+
+
+@dataclass(frozen=True, slots=True)
+class _Item:
+    id: str
+
+
+@dataclass(frozen=True, slots=True)
+class Frame:
+    """What rebuilding a round's units from its secret needs, as the key carries it.
+
+    It stands in for the Study in ``build_units``, ``run_orders`` and ``expected_runs``,
+    so that a participant holding only key.json and the manifest can rebuild the round.
+    """
+
+    laboratories: tuple[_Item, ...]
+    materials: tuple[_Item, ...]
+    design: Any
+    stops: tuple[tuple[str, str | None], ...] | None = None
+
+
+def frame_of(study: Study, host: str) -> dict[str, Any]:
+    """Return the key's ``frame``: laboratory and material ids in order, design, stops."""
+    stops = (circulate.stops(study, host) if study.design.mode == "circulate" else None)
+    return {"laboratories": [lab.id for lab in study.laboratories],
+            "materials": [m.id for m in study.materials],
+            "design": study.design.model_dump(mode="json"),
+            "stops": [list(s) for s in stops] if stops is not None else None}
+
+
+def frame_from_key(key: dict[str, Any]) -> Frame:
+    """Return the Frame a key carries; ValueError/KeyError/TypeError if it has none."""
+    from planner.spec import Design
+
+    f = key["frame"]
+    stops = f.get("stops")
+    return Frame(tuple(_Item(str(x)) for x in f["laboratories"]),
+                 tuple(_Item(str(x)) for x in f["materials"]),
+                 Design.model_validate(f["design"]),
+                 tuple((str(a), b) for a, b in stops) if stops is not None else None)
 
 
 def definition_of(study: Study) -> bytes:
@@ -97,7 +140,8 @@ def study_of_definition(data: bytes, *, where: Where) -> Study:
                           "it from a backup", where) from None
 
 
-def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int], tuple[str, ...]]:
+def run_orders(study: Study | Frame, *, host: str, secret: bytes
+               ) -> dict[tuple[str, int], tuple[str, ...]]:
     """Return the materials in run order for every (laboratory or stop, trial) of a round.
 
     In circulating mode the slots are the route's stops (the host's later stops
@@ -105,7 +149,8 @@ def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int
     """
     d = study.design
     if d.mode == "circulate":
-        keys = [circulate.station_key(lab, visit) for lab, visit in circulate.stops(study, host)]
+        stops = study.stops if isinstance(study, Frame) else circulate.stops(study, host)
+        keys = [circulate.station_key(lab, visit) for lab, visit in stops or ()]
     else:
         keys = [lab.id for lab in study.laboratories]
     slots = [(key, t) for key in keys for t in range(1, d.trials + 1)]
@@ -113,13 +158,14 @@ def run_orders(study: Study, *, host: str, secret: bytes) -> dict[tuple[str, int
                              stream=draw.Stream(secret, "orders"))
 
 
-def build_units(study: Study, *, host: str, secret: bytes,
-                taken: Iterable[str] = ()) -> tuple[Unit, ...]:
+def build_units(study: Study | Frame, *, host: str, secret: bytes,
+                taken: Iterable[str] = (), skipped: list[str] | None = None) -> tuple[Unit, ...]:
     """Return every unit of a round (tests, spares, retained, homogeneity) with codes and positions.
 
     Codes come from the secret's "codes" stream in a fixed unit order; run orders
     from its "orders" stream. A circulating set has one unit per material, the
-    artefact, held by the host between stops.
+    artefact, held by the host between stops. Codes in ``taken`` (issued in earlier
+    rounds) are passed over and appended to ``skipped``.
     """
     d = study.design
     material_ids = [m.id for m in study.materials]
@@ -137,7 +183,8 @@ def build_units(study: Study, *, host: str, secret: bytes,
                 skeleton += [(material, "spare", lab.id, None, None)] * d.spares_per_lab
             skeleton += [(material, "retained", host, None, None)] * d.retained_by_host
             skeleton += [(material, "homogeneity", host, None, None)] * d.homogeneity_units
-    drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken))
+    drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken),
+                            skipped=skipped)
     return tuple(Unit(code, *rest) for code, rest in zip(drawn, skeleton, strict=True))
 
 
@@ -149,12 +196,16 @@ def plan_round(study: Study, *, round_id: str, host: str, dates: RoundDates, sec
     """
     if (study.design.mode == "circulate") != (route is not None):
         raise ValueError("a route is needed exactly when the study circulates one set")
-    units = build_units(study, host=host, secret=secret, taken=taken)
+    skipped: list[str] = []
+    units = build_units(study, host=host, secret=secret, taken=taken, skipped=skipped)
     salt = draw.Stream(secret, "salt").token(16)
     definition = definition_of(study)
-    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "", route, definition)
+    frame = frame_of(study, host)
+    plan = RoundPlan(study.id, round_id, host, secret, salt, units, dates, "", route, definition,
+                     frame, tuple(skipped))
     return RoundPlan(study.id, round_id, host, secret, salt, units, dates,
-                     seal.fingerprint(seal.canonical(key_of(plan))), route, definition)
+                     seal.fingerprint(seal.canonical(key_of(plan))), route, definition, frame,
+                     tuple(skipped))
 
 
 def dates_for(study: Study, host: str, *,
@@ -184,6 +235,8 @@ def key_of(plan: RoundPlan) -> dict[str, Any]:
         "secret": plan.secret.hex(),
         "salt": plan.salt.hex(),
         "definition": seal.fingerprint(plan.definition),
+        "frame": plan.frame,
+        "skipped": sorted(plan.skipped),
         "units": [{"code": u.code, "material": u.material, "kind": u.kind, "lab": u.lab,
                    "trial": u.trial, "position": u.position}
                   for u in sorted(plan.units, key=lambda u: u.code)],
@@ -267,14 +320,15 @@ def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
     }
 
 
-def expected_runs(study: Study, *, host: str, secret: bytes,
+def expected_runs(study: Study | Frame, *, host: str, secret: bytes,
                   units: Iterable[Unit]) -> dict[str, list[list[str]]]:
     """Return the codes in run order per trial for every laboratory (or stop) of a round."""
     d = study.design
     if d.mode == "circulate":
         code_of = {u.material: u.code for u in units}
         orders = run_orders(study, host=host, secret=secret)
-        keys = [circulate.station_key(lab, visit) for lab, visit in circulate.stops(study, host)]
+        stops = study.stops if isinstance(study, Frame) else circulate.stops(study, host)
+        keys = [circulate.station_key(lab, visit) for lab, visit in stops or ()]
         return {key: [[code_of[m] for m in orders[(key, t)]] for t in range(1, d.trials + 1)]
                 for key in keys}
     runs: dict[str, list[list[Unit]]] = {lab.id: [[] for _ in range(d.trials)]
