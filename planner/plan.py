@@ -32,7 +32,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
-    "definition_of", "study_of_definition", "round_study", "Frame", "frame_of",
+    "definition_of", "study_of_definition", "round_study", "check_manifest", "Frame", "frame_of",
     "frame_from_key",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
     "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
@@ -415,7 +415,39 @@ def round_study(study_dir: Path, round_id: str, ledger: Ledger) -> Study:
     if manifest.get("definition") != recorded:
         raise LedgerError("the manifest names another round definition than the ledger; it "
                           "was edited after planning", Where(str(folder / MANIFEST_NAME)))
+    check_manifest(manifest, ledger, round_id, where=Where(str(folder / MANIFEST_NAME)))
     return study_of_definition(data, where=where)
+
+
+def check_manifest(manifest: dict[str, Any], ledger: Ledger, round_id: str, *,
+                   where: Where) -> None:
+    """Raise LedgerError when the manifest's dates or codes are not the ones the ledger recorded.
+
+    The manifest is a plain file that ``receive`` and ``status`` read for the dates and
+    the codes of each laboratory; the ledger's chained rows are the reference.
+    """
+    current = ledger.current_round(round_id)
+    if current is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger", where)
+    if manifest.get("dates") != current.dates:
+        raise LedgerError("manifest.json was edited after planning: its dates are not the ones "
+                          "the ledger recorded; restore it from a backup", where)
+    units = ledger.units(current.row)
+    issued = {code for code, *_ in units}
+    listed = {code for runs in manifest_runs(manifest).values() for run in runs for code in run}
+    listed |= {c for entry in manifest.get("labs", {}).values() for c in entry.get("spares", ())}
+    if manifest.get("mode") != "circulate":
+        placed = {(code, lab, trial, position) for code, lab, kind, trial, position in units
+                  if kind == "test"}
+        runs = {(code, lab, trial, position) for lab, entry in manifest.get("labs", {}).items()
+                for trial, run in enumerate(entry.get("trials", ()), start=1)
+                for position, code in enumerate(run, start=1)}
+        if runs != placed:
+            raise LedgerError("manifest.json was edited after planning: its run orders are not "
+                              "the ones the ledger recorded; restore it from a backup", where)
+    if not listed <= issued:
+        raise LedgerError("manifest.json was edited after planning: it lists codes the ledger "
+                          "never issued for this round; restore it from a backup", where)
 
 
 def round_dir(study_dir: Path, round_id: str) -> Path:

@@ -115,3 +115,31 @@ def test_a_manifest_pointing_to_another_definition_is_refused(planned, runner):
     assert "the manifest names another round definition than the ledger" in result.stderr
     with Ledger.open(planned) as ledger, pytest.raises(LedgerError):
         plan.round_study(planned, ROUND, ledger)
+
+
+def _edit_manifest(study_dir, change):
+    path = plan.round_dir(study_dir, ROUND) / plan.MANIFEST_NAME
+    manifest = json.loads(path.read_text(encoding="utf-8"))
+    change(manifest)
+    path.write_text(json.dumps(manifest, indent=1), encoding="utf-8")
+
+
+def test_dates_edited_in_the_manifest_are_refused(planned, runner, tmp_path):
+    # Moving results_due would make a late form look on time.
+    _edit_manifest(planned, lambda m: m["dates"].__setitem__("results_due", "2027-12-31"))
+    for args in (("status", planned, "--round", ROUND),
+                 ("receive", planned, "--round", ROUND,
+                  write(tmp_path, "kal.csv", filled(planned, "kal")))):
+        result = run_cli(runner, *args)
+        assert result.exit_code == 2
+        assert "its dates are not the ones the ledger recorded" in result.stderr, args
+
+
+def test_run_orders_edited_in_the_manifest_are_refused(planned, runner):
+    def swap(m):
+        run = m["labs"]["kal"]["trials"][0]
+        run[0], run[1] = run[1], run[0]
+
+    _edit_manifest(planned, swap)
+    result = run_cli(runner, "status", planned, "--round", ROUND)
+    assert result.exit_code == 2 and "its run orders are not the ones" in result.stderr
