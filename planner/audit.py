@@ -162,7 +162,7 @@ def open_key(folder: Path, ledger: Ledger, round_id: str, *, passphrase: str) ->
 
 def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
                  passphrase: str, force: bool = False, reason: str | None = None) -> Path:
-    """Decrypt the key, write key.json (owner-only) and record the event; return its path.
+    """Record the opening, then decrypt the key into key.json (owner-only); return its path.
 
     Raises LedgerError while results are missing (unless ``force`` with a
     ``reason``) and SealError for a wrong passphrase, a damaged file or a key
@@ -170,20 +170,27 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
     """
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
-    missing = check_gate(study, ledger, round_id, force=force, reason=reason,
-                         manifest=manifest)
+    target = folder / seal.KEY_NAME
+    # An opening the ledger recorded but whose key.json was never written (the process
+    # was stopped in between) is completed, without a second event.
+    completing = (ledger.round_status(round_id) in ("unsealed", "evaluated")
+                  and not target.exists())
+    missing = [] if completing else check_gate(study, ledger, round_id, force=force,
+                                               reason=reason, manifest=manifest)
     key = seal.open_key(folder, passphrase)
     if key.get("round") != round_id or key.get("study") != study.id:
         raise SealError(f"the sealed key belongs to study {key.get('study')!r} round "
                         f"{key.get('round')!r}, not to this round", Where(str(folder)))
     key_json = seal.canonical(key)
     planned = check_fingerprint(folder, ledger, round_id, key_json, source=seal.SEALED_NAME)
-    target = folder / seal.KEY_NAME
+    if not completing:
+        # The opening is recorded (and committed) before key.json exists: no opened key
+        # without its disclosure, even if the process is stopped right after.
+        with ledger.transaction():
+            ledger.record_event(round_id, "unsealed", {
+                "fingerprint": planned, "forced": bool(force and missing),
+                "reason": reason if force and missing else None, "missing": missing})
     seal.write_private(target, key_json)
-    with ledger.transaction():
-        ledger.record_event(round_id, "unsealed", {
-            "fingerprint": planned, "forced": bool(force and missing),
-            "reason": reason if force and missing else None, "missing": missing})
     return target
 
 
@@ -269,6 +276,12 @@ def verify_key(key_json: bytes, manifest: Mapping[str, Any], *, fingerprint: str
         frame: Any = plan.frame_from_key(key) if "frame" in key else study
     except (ValueError, KeyError, TypeError, AttributeError):
         raise SealError("key.json is not a readable ringplan key", Where(str(path))) from None
+    if (manifest.get("host") != host or not isinstance(manifest.get("labs"), dict)
+            or manifest.get("round") != key.get("round")):
+        findings.append(str(SealError(
+            "the manifest is not this key's round (its round, host or laboratories differ)",
+            Where(str(path)))))
+        return Verdict(tuple(findings), 0, ())
     if frame is None:
         raise SealError("this key was written before keys carried their round's frame; "
                         "verify it in the study folder", Where(str(path)))

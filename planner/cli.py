@@ -336,14 +336,18 @@ def unseal(
     passphrase_file: PassFile = None,
 ) -> None:
     """Open the sealed key once every laboratory has reported; check its fingerprint."""
-    from planner import audit
+    from planner import audit, seal
     from planner import plan as planning
     from planner.ledger import Ledger
 
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
-        audit.check_gate(study, ledger, round_id, force=force, reason=reason,
-                         manifest=planning.read_manifest(planning.round_dir(study_dir, round_id)))
+        folder = planning.round_dir(study_dir, round_id)
+        completing = (ledger.round_status(round_id) in ("unsealed", "evaluated")
+                      and not (folder / seal.KEY_NAME).exists())
+        if not completing:  # the gate is named before the passphrase is asked
+            audit.check_gate(study, ledger, round_id, force=force, reason=reason,
+                             manifest=planning.read_manifest(folder))
         passphrase = _passphrase(passphrase_file, confirm=False)
         path = audit.unseal_round(study, study_dir, round_id, ledger, passphrase=passphrase,
                                   force=force, reason=reason)
@@ -733,8 +737,9 @@ def print_documents(
         study = _round_study(study_dir, round_id, ledger)
     chosen = [c for c in (codes_ or "").split(",") if c.strip()] or None
     # mistakes in the options are named before the passphrase is asked
-    render.check_options(study, study_dir, planning.read_manifest(folder), only=only, lab=lab,
-                         codes=chosen, sheet=sheet)
+    manifest = planning.read_manifest(folder)
+    wanted, geometry = render.check_options(study, study_dir, manifest, only=only, lab=lab,
+                                            codes=chosen, sheet=sheet)
     # the key must match the fingerprint recorded in the ledger, so that no document is
     # printed with a fingerprint someone wrote into the manifest afterwards
     with Ledger.open(study_dir, create=False) as ledger:
@@ -743,14 +748,18 @@ def print_documents(
         else:
             key = audit.open_key(folder, ledger, round_id,
                                  passphrase=_passphrase(passphrase_file, confirm=False))
+        # On record before any document is written: a print stopped half-way has still
+        # used the key, and status must say so.
+        with ledger.transaction():
+            ledger.record_event(round_id, "printed", {
+                "documents": render.planned_documents(study, manifest, wanted=wanted,
+                                                      labels=geometry is not None, lab=lab,
+                                                      codes=chosen),
+                "only": only, "lab": lab, "codes": chosen, "start_at": start_at,
+                "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset)})
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
                                workers=min(2, os.cpu_count() or 1))
-    with Ledger.open(study_dir, create=False) as ledger, ledger.transaction():
-        ledger.record_event(round_id, "printed", {
-            "documents": [p.relative_to(folder).as_posix() for p in paths],
-            "only": only, "lab": lab, "codes": chosen, "start_at": start_at,
-            "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset)})
     for path in paths:
         typer.echo(f"wrote {path}")
 

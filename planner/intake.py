@@ -595,6 +595,10 @@ def _number(raw: Any, decimal: str, what: str) -> float:
                                                           "remarks" if what == "value" else ""))
     if not math.isfinite(value):
         raise IntakeError(f"{what} {raw!r} is not a finite number")
+    if abs(value) > 1e100 or (value != 0 and abs(value) < 1e-100):
+        # the statistics refuse such values (their squares overflow); say so at the form
+        raise IntakeError(f"{what} {raw!r} is out of any plausible range (1e-100 to 1e100 in "
+                          "size); check the number, or report in another unit")
     return value
 
 

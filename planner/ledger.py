@@ -198,13 +198,14 @@ def _utc_now() -> datetime:
 class Ledger:
     """An open ledger file. Use as a context manager, or call close()."""
 
-    def __init__(self, path: Path, *, clock: Callable[[], datetime] = _utc_now) -> None:
+    def __init__(self, path: Path, *, clock: Callable[[], datetime] = _utc_now,
+                 create: bool = True) -> None:
         self.path = path
         self._clock = clock
         self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
         try:
             self.db.execute("PRAGMA foreign_keys = ON")
-            self._migrate()
+            self._migrate(create=create)
             self.check()
         except BaseException:
             self.db.close()
@@ -221,10 +222,10 @@ class Ledger:
         """
         folder = Path(study_dir)
         path = folder / LEDGER_NAME
+        rounds = folder / "rounds"
+        planned = sorted(p.name for p in rounds.iterdir()
+                         if (p / "manifest.json").is_file()) if rounds.is_dir() else []
         if not path.exists():
-            rounds = folder / "rounds"
-            planned = sorted(p.name for p in rounds.iterdir()
-                             if (p / "manifest.json").is_file()) if rounds.is_dir() else []
             if planned:
                 raise LedgerError(f"the ledger is missing, but the folder holds planned rounds "
                                   f"({', '.join(planned[:3])}); restore {LEDGER_NAME} from a "
@@ -233,7 +234,9 @@ class Ledger:
             if not create:
                 raise LedgerError("no ledger here yet: no round has been planned in this "
                                   "study folder ('ringplan plan' starts one)", Where(str(path)))
-        return cls(path, clock=clock)
+        # A ledger is started only where no round exists: an emptied file beside planned
+        # rounds is refused like a missing one.
+        return cls(path, clock=clock, create=create and not planned)
 
     def __enter__(self) -> Ledger:
         return self
@@ -248,23 +251,31 @@ class Ledger:
         """Return the ledger clock's time as ISO 8601 UTC with seconds."""
         return self._clock().astimezone(UTC).isoformat(timespec="seconds")
 
-    def _migrate(self) -> None:
+    def _migrate(self, *, create: bool) -> None:
+        where = Where(str(self.path))
         try:
             version = self.db.execute("PRAGMA user_version").fetchone()[0]
         except sqlite3.DatabaseError:
-            raise LedgerError("this file is not a ringplan ledger (not SQLite)",
-                              Where(str(self.path))) from None
+            raise LedgerError("this file is not a ringplan ledger (not SQLite)", where) from None
         if version > SCHEMA_VERSION:
             raise LedgerError(f"the ledger has schema version {version}, newer than this "
-                              f"ringplan knows ({SCHEMA_VERSION}); upgrade ringplan",
-                              Where(str(self.path)))
+                              f"ringplan knows ({SCHEMA_VERSION}); upgrade ringplan", where)
+        if version == 0 and not create:
+            # An empty file where the ledger was: it is not started anew by a reading command.
+            raise LedgerError("the ledger file is empty; restore ledger.sqlite from a backup "
+                              "(a new ledger would have no record of the rounds)", where)
         # Version 2 brings the chain: its commit (see ``transaction``) links the rows the
         # ledger held before, as the first link.
         for i in range(version, SCHEMA_VERSION):
-            with self.transaction():
-                for statement in _split_sql(_MIGRATIONS[i]):
-                    self.db.execute(statement)
-                self.db.execute(f"PRAGMA user_version = {i + 1}")
+            try:
+                with self.transaction():
+                    for statement in _split_sql(_MIGRATIONS[i]):
+                        self.db.execute(statement)
+                    self.db.execute(f"PRAGMA user_version = {i + 1}")
+            except sqlite3.OperationalError:
+                raise LedgerError(f"the ledger's schema version ({version}) was altered: its "
+                                  "tables do not match it; restore ledger.sqlite from a backup",
+                                  where) from None
 
     @contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
@@ -348,6 +359,14 @@ class Ledger:
                                ).fetchone()
         return ChainHead(*last) if last else ChainHead(0, "", _GENESIS)
 
+    def link_of(self, table: str, rowid: int) -> ChainHead:
+        """Return the chain link that recorded row ``rowid`` of ``table`` (KeyError if none)."""
+        for seq, at, covers, _, _, head in self._links():
+            span = json.loads(covers).get(table)
+            if span and span[0] <= rowid <= span[1]:
+                return ChainHead(seq, at, head)
+        raise KeyError((table, rowid))
+
     def heads(self) -> list[ChainHead]:
         """Return every link of the chain, oldest first."""
         return [ChainHead(seq, at, head) for seq, at, _, _, _, head in self._links()]
@@ -356,9 +375,11 @@ class Ledger:
         """Check the schema, the guards and the chain; raise LedgerError naming what was altered."""
         where = Where(str(self.path))
         expected = _expected_schema()
+        # Every object but SQLite's own (autoindexes, sqlite_sequence): an added trigger or
+        # view could rewrite rows as they are written. startswith, not LIKE, whose '_' is a
+        # wildcard that would let 'sqlitex_...' through.
         found = {(kind, name): sql for kind, name, sql in self.db.execute(
-            "SELECT type, name, sql FROM sqlite_master WHERE type IN ('table', 'trigger', "
-            "'index') AND name NOT LIKE 'sqlite_%'")}
+            "SELECT type, name, sql FROM sqlite_master") if not name.startswith("sqlite_")}
         for (kind, name), sql in expected.items():
             if (kind, name) not in found:
                 what = "guard" if kind == "trigger" else kind
@@ -396,12 +417,14 @@ class Ledger:
                                   f"since; restore {LEDGER_NAME} from a backup", where)
             prev, last = head, seq
         for table in _CHAINED:
-            (hi,) = self.db.execute(f"SELECT COALESCE(MAX(rowid), 0) FROM {table}").fetchone()
-            if hi > upto[table]:
+            lo, hi, count = self.db.execute(
+                f"SELECT COALESCE(MIN(rowid), 1), COALESCE(MAX(rowid), 0), COUNT(*) "
+                f"FROM {table}").fetchone()
+            # The chain covers rowids 1..upto without gaps: anything else was added by hand.
+            if lo < 1 or hi > upto[table] or count != upto[table]:
                 raise LedgerError(f"the ledger was altered outside ringplan: table {table} has "
-                                  f"rows that no ringplan command recorded (from rowid "
-                                  f"{upto[table] + 1}); restore {LEDGER_NAME} from a backup",
-                                  where)
+                                  "rows that no ringplan command recorded; restore "
+                                  f"{LEDGER_NAME} from a backup", where)
 
     # --- rounds and units --------------------------------------------------
 
@@ -550,8 +573,7 @@ def _expected_schema() -> dict[tuple[str, str], str]:
             for statement in _split_sql(migration):
                 db.execute(statement)
         return {(kind, name): sql for kind, name, sql in db.execute(
-            "SELECT type, name, sql FROM sqlite_master WHERE type IN ('table', 'trigger', "
-            "'index') AND name NOT LIKE 'sqlite_%'")}
+            "SELECT type, name, sql FROM sqlite_master") if not name.startswith("sqlite_")}
     finally:
         db.close()
 

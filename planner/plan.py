@@ -32,7 +32,8 @@ if TYPE_CHECKING:
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
-    "definition_of", "study_of_definition", "round_study", "check_manifest", "Frame", "frame_of",
+    "definition_of", "study_of_definition", "round_study", "check_manifest", "settle_round",
+    "Frame", "frame_of",
     "frame_from_key",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
     "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
@@ -398,6 +399,7 @@ def round_study(study_dir: Path, round_id: str, ledger: Ledger) -> Study:
     from planner import spec
 
     folder = round_dir(study_dir, round_id)
+    settle_if_needed(study_dir, round_id, ledger)
     manifest = read_manifest(folder)  # says "not planned" when there is no manifest
     planned = ledger.events(round_id, "planned")
     if ledger.current_round(round_id) is None or not planned:
@@ -429,6 +431,20 @@ def check_manifest(manifest: dict[str, Any], ledger: Ledger, round_id: str, *,
     current = ledger.current_round(round_id)
     if current is None:
         raise LedgerError(f"round {round_id!r} is not in the ledger", where)
+    planned = ledger.events(round_id, "planned")
+    definition = planned[-1].detail.get("round", {}).get("study", {}) if planned else {}
+    design = definition.get("design", {})
+    expected = {"round": round_id, "host": current.host, "study": current.study,
+                "mode": design.get("mode", "split"), "trials": design.get("trials")}
+    for field, value in expected.items():
+        if value is not None and manifest.get(field) != value:
+            raise LedgerError(f"manifest.json was edited after planning: its {field} is "
+                              f"{manifest.get(field)!r}, the ledger recorded {value!r}; restore "
+                              "it from a backup", where)
+    if not isinstance(manifest.get("labs"), dict) or not all(
+            isinstance(e, dict) for e in manifest["labs"].values()):
+        raise LedgerError("manifest.json was edited after planning: its laboratories are not "
+                          "as ringplan wrote them; restore it from a backup", where)
     if manifest.get("dates") != current.dates:
         raise LedgerError("manifest.json was edited after planning: its dates are not the ones "
                           "the ledger recorded; restore it from a backup", where)
@@ -477,8 +493,11 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                 passphrase: str, replace: bool = False, _fail_after_files: bool = False) -> Path:
     """Write a planned round's folder and ledger rows as one step; return the round folder.
 
-    Refuses (LedgerError) to overwrite a round unless ``replace`` and the round
-    has been neither printed nor received. ``_fail_after_files`` is a test hook
+    The files are staged, the ledger commit decides, and the staged folder is then
+    renamed into place; a process killed after the commit has its folder put in place
+    by the next command on the round (``settle_round``), one killed before leaves
+    nothing. Refuses (LedgerError) to overwrite a round unless ``replace`` and the
+    round has been neither printed nor received. ``_fail_after_files`` is a test hook
     that raises after every file is written, to prove nothing is left behind.
     """
     target = round_dir(study_dir, plan.round_id)
@@ -496,22 +515,25 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
     key_json = seal.canonical(key_of(plan))
     sealed = seal.seal_key(key_json, passphrase)
     staging = target.parent / f".{plan.round_id}.{secrets.token_hex(4)}.staging"
-    retired = target.parent / f".{plan.round_id}.{secrets.token_hex(4)}.replaced"
-    moved_old = placed = False
     try:
-        staging.mkdir(parents=True)
-        _write(staging / MANIFEST_NAME, json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
-        seal.write_private(staging / seal.SEALED_NAME, sealed)
-        _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
-        token = {lab.id: tokens.submission_token(plan.secret, lab.id)
-                 for lab in study.laboratories}
-        for lab in study.laboratories:
-            _write(staging / "labs" / lab.id / "result-form.csv",
-                   result_form_csv(study, manifest, lab.id, token=token[lab.id]))
-        for visit, name in host_visit_forms(manifest):
-            _write(staging / "labs" / plan.host / name,
-                   result_form_csv(study, manifest, plan.host, visit, token=token[plan.host]))
+        # The files are staged while the ledger's write lock is held, so that no other
+        # command mistakes them for the leftovers of a plan that was killed.
         with ledger.transaction():
+            settle_round(study_dir, plan.round_id, ledger)
+            staging.mkdir(parents=True)
+            _write(staging / MANIFEST_NAME,
+                   json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
+            seal.write_private(staging / seal.SEALED_NAME, sealed)
+            _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
+            token = {lab.id: tokens.submission_token(plan.secret, lab.id)
+                     for lab in study.laboratories}
+            for lab in study.laboratories:
+                _write(staging / "labs" / lab.id / "result-form.csv",
+                       result_form_csv(study, manifest, lab.id, token=token[lab.id]))
+            for visit, name in host_visit_forms(manifest):
+                _write(staging / "labs" / plan.host / name,
+                       result_form_csv(study, manifest, plan.host, visit,
+                                       token=token[plan.host]))
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,
                 fingerprint=plan.fingerprint, dates=manifest["dates"],
@@ -526,17 +548,67 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                                  "tokens": {lab: tokens.digest(t) for lab, t in token.items()}})
             if _fail_after_files:
                 raise RuntimeError("injected failure after the files were written")
-            if target.exists():
-                os.rename(target, retired)
-                moved_old = True
-            os.rename(staging, target)
-            placed = True
     except BaseException:
-        if placed:
-            shutil.rmtree(target, ignore_errors=True)
-        if moved_old:
-            os.rename(retired, target)
         shutil.rmtree(staging, ignore_errors=True)
         raise
-    shutil.rmtree(retired, ignore_errors=True)
+    # The commit decided: the round is planned. Put its folder in place; a process killed
+    # from here on is completed by ``settle_round`` in the next command on the round.
+    _place(target, staging)
     return target
+
+
+def _place(target: Path, staging: Path) -> None:
+    retired = target.parent / f".{target.name}.{secrets.token_hex(4)}.replaced"
+    if target.exists():
+        os.rename(target, retired)
+    try:
+        os.rename(staging, target)
+    except FileNotFoundError:
+        pass  # another command settled it into place first
+    shutil.rmtree(retired, ignore_errors=True)
+
+
+def settle_round(study_dir: Path, round_id: str, ledger: Ledger) -> bool:
+    """Finish or undo what a killed ``plan`` left of a round's folder; return whether it acted.
+
+    A staged folder whose manifest has the fingerprint the ledger committed is put in
+    place (the plan was decided); any other staged or replaced folder of the round is
+    removed. Call inside ``ledger.transaction()``: plan stages only while holding it.
+    """
+    target = round_dir(study_dir, round_id)
+    parent = target.parent
+    if not parent.is_dir():
+        return False
+    staged = sorted(parent.glob(f".{round_id}.*.staging"))
+    retired = sorted(parent.glob(f".{round_id}.*.replaced"))
+    if not staged and not retired:
+        return False
+    current = ledger.current_round(round_id)
+    placed = _fingerprint_in(target)
+    for folder in staged:
+        if (current is not None and _fingerprint_in(folder) == current.fingerprint
+                and placed != current.fingerprint):
+            _place(target, folder)
+            placed = current.fingerprint
+        else:
+            shutil.rmtree(folder, ignore_errors=True)
+    for folder in retired:
+        shutil.rmtree(folder, ignore_errors=True)
+    return True
+
+
+def settle_if_needed(study_dir: Path, round_id: str, ledger: Ledger) -> None:
+    """Run ``settle_round`` under the ledger's lock, only when something was left behind."""
+    parent = round_dir(study_dir, round_id).parent
+    if parent.is_dir() and (any(parent.glob(f".{round_id}.*.staging"))
+                            or any(parent.glob(f".{round_id}.*.replaced"))):
+        with ledger.transaction():
+            settle_round(study_dir, round_id, ledger)
+
+
+def _fingerprint_in(folder: Path) -> str | None:
+    try:
+        return str(json.loads((folder / MANIFEST_NAME).read_text(encoding="utf-8"))
+                   .get("fingerprint"))
+    except (OSError, ValueError, AttributeError):
+        return None

@@ -31,7 +31,7 @@ from planner.intake import Checked, condense, describe_slot, inspect_form, spare
 if TYPE_CHECKING:
     from collections.abc import Mapping
 
-    from planner.ledger import ChainHead, Ledger, ResultRow, Submission
+    from planner.ledger import Ledger, ResultRow, Submission
     from planner.spec import Study
 
 __all__ = [
@@ -40,7 +40,8 @@ __all__ = [
     "Receipt",
     "SlotState",
     "slot_state",
-    "receipt_text",
+    "receipt_name",
+    "write_receipts",
     "receive",
     "settle_results",
 ]
@@ -147,16 +148,19 @@ class SlotState:
 
 
 def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot: str, *,
-               swaps: Mapping[str, str] | None = None) -> SlotState:
+               swaps: Mapping[str, str] | None = None,
+               upto_version: int | None = None) -> SlotState:
     """Return what is in force for one slot of a round, and what is still outstanding.
 
     A correction may carry only the rows it changes: the versions are merged in the
     order received, each row replacing the earlier one of its code and trial.
+    ``upto_version`` gives the state as it was right after that version.
     """
     from planner import audit
     from planner.intake import expected_codes
 
-    history = ledger.submissions(round_id, slot)
+    history = [s for s in ledger.submissions(round_id, slot)
+               if upto_version is None or s.version <= upto_version]
     merged: dict[tuple[str, int | None], tuple[Submission, ResultRow]] = {}
     for sub in history:
         for row in ledger.result_rows(sub.row):
@@ -268,6 +272,8 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     try:
         with ledger.transaction():
             settle_results(folder, ledger, round_id)
+            # receipts a receive stopped after its commit did not write
+            write_receipts(folder, study.id, round_id, ledger, manifest)
             for form, checked, last in plans:
                 if last is not None and last.sha256 == form.sha256:
                     receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
@@ -301,46 +307,71 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             os.replace(path, results / path.name)
         except FileNotFoundError:
             pass  # another receive settled it into results/ already
-    head = ledger.head()
+    written = write_receipts(folder, study.id, round_id, ledger, manifest)
     out = []
     for r in receipts:
         if r.version is not None:
             state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps)
+            name, head = written.get((r.lab, r.version), (receipt_name(r.lab, r.version), None))
             r = replace(r, in_force=len(state.rows), outstanding=state.outstanding,
-                        merged=state.merged)
-            name = f"{RESULTS_DIR}/receipt-{r.lab}-v{r.version}.txt"
-            _write_receipt(folder / name, receipt_text(study.id, round_id, r, head,
-                                                       ledger.events(round_id, "received")))
-            r = replace(r, receipt=name, chain_head=str(head))
+                        merged=state.merged, receipt=name, chain_head=head)
         out.append(r)
     return out
 
 
-def receipt_text(study_id: str, round_id: str, r: Receipt, head: ChainHead,
-                 received: Sequence[Any] = ()) -> str:
-    """Return the text of a laboratory's receipt for one recorded form version."""
-    at = next((e.at for e in reversed(received)
-               if e.detail.get("lab") == r.lab and e.detail.get("version") == r.version), "")
-    lines = [
-        "ringplan receipt: a result form recorded in the study's ledger",
-        f"study {study_id}, round {round_id}, laboratory {r.lab}",
-        f"form version {r.version}" + (f" (replaces version {r.supersedes})"
-                                       if r.supersedes else "") + f", recorded {at}",
-        f"file {Path(r.file).name}, SHA-256 {r.sha256}",
-        f"this form: {r.values} results with a value, {r.failed} without"
-        + (f"; {len(r.missing)} expected codes have no row in it" if r.missing else ""),
-        f"in force for the laboratory"
-        + (" (merged with its earlier versions)" if r.merged else "")
-        + f": {r.in_force} results"
-        + (f"; still outstanding: {len(r.outstanding)} codes" if r.outstanding
-           else "; complete"),
-        f"ledger chain after recording: link {head.seq}, head {head.head}",
-        "",
-        "Keep this receipt. The ledger's chain must pass through this link and head for as",
-        "long as the study lasts; 'ringplan chain DIR --link N' shows the head of link N.",
-        "A ledger that does not has been rewritten since your form was recorded.",
-    ]
-    return "\n".join(lines) + "\n"
+def receipt_name(slot: str, version: int) -> str:
+    """Return a receipt's path in the round folder."""
+    return f"{RESULTS_DIR}/receipt-{slot}-v{version}.txt"
+
+
+def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
+                   manifest: Mapping[str, Any]) -> dict[tuple[str, int], tuple[str, str]]:
+    """Write the receipt of every recorded form version that has none; return what it wrote.
+
+    A receipt is made from the ledger alone (the version's rows, the state in force after
+    it, the chain link that recorded it), so a receive stopped after its commit has its
+    receipts written by the next one, the same as they would have been. Returns
+    (slot, version) -> (receipt path, "link:head").
+    """
+    from planner.intake import spare_swaps
+
+    swaps = spare_swaps(ledger, round_id)
+    received = ledger.events(round_id, "received")
+    out: dict[tuple[str, int], tuple[str, str]] = {}
+    for sub in ledger.submissions(round_id):
+        name = receipt_name(sub.lab, sub.version)
+        if (folder / name).exists():
+            continue
+        rows = ledger.result_rows(sub.row)
+        state = slot_state(manifest, ledger, round_id, sub.lab, swaps=swaps,
+                           upto_version=sub.version)
+        link = ledger.link_of("submissions", sub.row)
+        at = next((e.at for e in reversed(received) if e.detail.get("lab") == sub.lab
+                   and e.detail.get("version") == sub.version), sub.received_at)
+        lines = [
+            "ringplan receipt: a result form recorded in the study's ledger",
+            f"study {study_id}, round {round_id}, laboratory {sub.lab}",
+            f"form version {sub.version}" + (f" (replaces version {sub.version - 1})"
+                                             if sub.version > 1 else "") + f", recorded {at}",
+            f"file {sub.file_name}, SHA-256 {sub.sha256}",
+            f"this form: {sum(1 for r in rows if r.value is not None)} results with a value, "
+            f"{sum(1 for r in rows if r.value is None)} without",
+            "in force for the laboratory"
+            + (" (merged with its earlier versions)" if state.merged else "")
+            + f": {len(state.rows)} results"
+            + (f"; still outstanding: {len(state.outstanding)} codes" if state.outstanding
+               else "; complete"),
+            f"ledger chain after recording: link {link.seq}, head {link.head}",
+            "",
+            "Keep this receipt. The ledger's chain must pass through this link and head for "
+            "as",
+            "long as the study lasts; 'ringplan chain DIR --link N' shows the head of link N.",
+            "A ledger that does not has been rewritten since your form was recorded.",
+        ]
+        (folder / RESULTS_DIR).mkdir(exist_ok=True)
+        _write_receipt(folder / name, "\n".join(lines) + "\n")
+        out[(sub.lab, sub.version)] = (name, str(link))
+    return out
 
 
 def _write_receipt(path: Path, text: str) -> None:

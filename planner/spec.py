@@ -120,8 +120,8 @@ class Schedule(_Model):
 class PrecisionStudy(_Model):
     """sigma_R and sigma_r of the method from a collaborative precision study (ISO 5725-2)."""
 
-    sigma_R: float = Field(gt=0)
-    sigma_r: float = Field(gt=0)
+    sigma_R: float = Field(gt=0, allow_inf_nan=False)
+    sigma_r: float = Field(gt=0, allow_inf_nan=False)
 
 
 class Participants(_Model):
@@ -147,8 +147,8 @@ def _policy_shorthand(raw: Any) -> Any:
 class SigmaPtPolicy(_Model):
     """How sigma_pt is set: exactly one of value, percent, precision or participants."""
 
-    value: float | None = Field(default=None, gt=0)
-    percent: float | None = Field(default=None, gt=0, le=100)
+    value: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    percent: float | None = Field(default=None, gt=0, le=100, allow_inf_nan=False)
     precision: PrecisionStudy | None = None
     participants: Participants | None = None
 
@@ -177,7 +177,7 @@ class MaterialEvaluation(_Model):
 
 
 class Evaluation(_Model):
-    tolerance: float | None = Field(default=None, gt=0)
+    tolerance: float | None = Field(default=None, gt=0, allow_inf_nan=False)
     sigma_pt: SigmaPtPolicy = SigmaPtPolicy(participants=Participants())
     assigned_value: Literal["consensus", "reference"] = "consensus"
     reference_lab: str | None = None
@@ -401,6 +401,8 @@ def _message(err: Any, raw: Any) -> str:
         return f"expected a list, got {value!r}"
     if kind == "string_type":
         return f"expected text, got {value!r}"
+    if kind == "finite_number":
+        return f"{value!r} is not a finite number; give an ordinary number"
     if kind == "value_error":
         return str(ctx.get("error", err.get("msg", kind)))
     return str(err.get("msg", kind)).lower()

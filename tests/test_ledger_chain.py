@@ -172,3 +172,35 @@ def test_a_ledger_of_schema_1_is_chained_when_opened(tmp_path):
     with Ledger.open(tmp_path) as ledger:
         assert [h.seq for h in ledger.heads()] == [1]
         assert [e.kind for e in ledger.events("r")] == ["planned"]
+
+
+def test_an_added_trigger_with_a_name_like_sqlites_own_is_found(planned, runner):
+    # LIKE 'sqlite_%' would let 'sqlitex_...' through ('_' is a wildcard); such a trigger
+    # could rewrite every forced opening as it is recorded.
+    db = sqlite3.connect(planned / "ledger.sqlite")
+    db.execute("CREATE TRIGGER sqlitex_quiet BEFORE INSERT ON events BEGIN SELECT 1; END")
+    db.close()
+    _refused(planned, runner, "'sqlitex_quiet', which ringplan never made")
+
+
+def test_rows_with_rowids_below_one_are_outside_the_chain_and_found(planned, runner, tmp_path):
+    _received(planned, runner, tmp_path)
+    _shell(planned, "INSERT INTO events (id, round, kind, at, detail) VALUES "
+                    "(-1, '2027-1', 'received', 't', '{\"lab\": \"crx\"}')")
+    _refused(planned, runner, "table events has rows that no ringplan command recorded")
+
+
+def test_an_emptied_ledger_beside_planned_rounds_is_refused_not_started_again(planned, runner):
+    (planned / "ledger.sqlite").write_bytes(b"")
+    result = run_cli(runner, "chain", planned)
+    assert result.exit_code == 2 and "the ledger file is empty" in result.stderr
+    assert (planned / "ledger.sqlite").stat().st_size == 0
+
+
+def test_a_schema_version_set_back_by_hand_is_one_line(planned, runner):
+    db = sqlite3.connect(planned / "ledger.sqlite")
+    db.execute("PRAGMA user_version = 1")
+    db.close()
+    result = run_cli(runner, "status", planned, "--round", ROUND)
+    assert result.exit_code == 2 and "schema version (1) was altered" in result.stderr
+    assert "Traceback" not in result.output

@@ -75,6 +75,8 @@ CASES = [
         "sigma_pt: {percent: 5}", "sigma_pt: {participants: {min_participants: 2}}"),
      "evaluation.sigma_pt.participants.min_participants: 2 is out of range; it must be >= 3",
      "min_participants"),
+    ("sigma-pt-infinite", lambda s: s.replace("sigma_pt: {percent: 5}", "sigma_pt: .inf"),
+     "evaluation.sigma_pt.value: inf is not a finite number", "sigma_pt: .inf"),
     ("sigma-pt-unknown-material", lambda s: s.replace(
         "  sigma_pt: {percent: 5}", "  sigma_pt: {percent: 5}\n  by_material:\n"
         "    PP-H21: {sigma_pt: 0.4}"),

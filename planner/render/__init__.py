@@ -30,7 +30,7 @@ if TYPE_CHECKING:
     from planner.render._sheets import Geometry
     from planner.spec import Study
 
-__all__ = ["KINDS", "check_options", "print_calibration", "print_round"]
+__all__ = ["KINDS", "check_options", "planned_documents", "print_calibration", "print_round"]
 
 KINDS = ("labels", "prep", "packing", "runsheets", "forms")
 """The kinds of document ``print_round(only=...)`` accepts."""
@@ -149,6 +149,43 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
             else:
                 text = plan.result_form_csv(study, manifest, lab_id, token=token)
             out.append(result_form.render(lab_dir / "result-form.xlsx", text))
+    return out
+
+
+def planned_documents(study: Study, manifest: dict[str, Any], *, wanted: set[str],
+                      labels: bool, lab: str | None = None, codes: Sequence[str] | None = None
+                      ) -> list[str]:
+    """Return the round-folder paths ``print_round`` will write for these options.
+
+    The print command records them in the ledger before the key is used, so that a
+    printing of host documents is on record even if the process is stopped half-way.
+    """
+    from planner.render import handover, run_sheet
+
+    out: list[str] = []
+    if labels:
+        out.append(f"{f'labs/{lab}' if lab else 'host'}/"
+                   f"{'labels-reprint.pdf' if codes else 'labels.pdf'}")
+    if "prep" in wanted and not lab:
+        out.append("host/prep-sheet.pdf")
+    lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
+    for lab_id in lab_ids:
+        if manifest.get("mode") == "circulate":
+            for station in manifest["route"]:
+                if station["lab"] != lab_id:
+                    continue
+                visit = station.get("visit")
+                later = visit if visit not in (None, "start") else None
+                stem = f"result-form-{later}" if later else "result-form"
+                names = {"packing": handover.file_name(station),
+                         "runsheets": run_sheet.file_name(later), "forms": f"{stem}.xlsx"}
+                out += [f"labs/{lab_id}/{names[k]}" for k in ("packing", "runsheets", "forms")
+                        if k in wanted]
+            continue
+        names = {"packing": "packing-list.pdf", "runsheets": "run-sheet.pdf",
+                 "forms": "result-form.xlsx"}
+        out += [f"labs/{lab_id}/{names[k]}" for k in ("packing", "runsheets", "forms")
+                if k in wanted]
     return out
 
 

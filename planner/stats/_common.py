@@ -70,13 +70,13 @@ class Units:
         return v * 10.0 ** self.decimals if self.decimals > 0 else v / 10.0 ** -self.decimals
 
     @property
-    def rounding_sd(self) -> float:
-        """Return the SD in steps that rounding to the step alone gives, 0 if unknown.
+    def band_floor(self) -> float:
+        """Return the smallest sigma_pt, in steps, a band can rest on: half a step (0 if unknown).
 
-        Rounding to a step d spreads a result uniformly over +-d/2, whose SD is
-        d/sqrt(12), i.e. 1/sqrt(12) steps.
+        Below it a difference of one reported digit is more than 2 sigma_pt, so the
+        last digit a laboratory rounded to, not its measurement, would decide the band.
         """
-        return 1.0 / math.sqrt(12.0) if self.exact else 0.0
+        return 0.5 if self.exact else 0.0
 
 
 _MAX_EXACT = 2.0 ** 52  # |x| / step below this: steps are whole numbers a float holds exactly

@@ -38,10 +38,12 @@ Our choices, documented:
   equal) it starts from the sample SD and says so. When s* then falls to 0 (most
   results equal, the rest winsorized ever closer), the estimate is marked
   ``collapsed``: a robust SD of 0 is no scale to score against.
-- A sigma_pt below the SD that rounding the results to their reporting step gives
-  (step/sqrt(12)) gives no band: differences of one reported digit would read as
-  unsatisfactory. Band edges allow a relative 1e-9 for floating-point noise, so a
-  score that is exactly 2 in decimal stays satisfactory.
+- A sigma_pt below half the reporting step gives no band: a difference of one reported
+  digit would then be more than 2 sigma_pt. The step is the finest digit any result of
+  the material shows; a laboratory that reports coarser than the others carries its own
+  rounding in its score (a declared resolution per measurand would settle this). Band
+  edges allow a relative 1e-9 for floating-point noise, so a score that is exactly 2 in
+  decimal stays satisfactory.
 - A laboratory with several results on a material is scored on its mean; its U is the
   mean of the U values it reported. A reference laboratory's u(x_pt) is U/2 from its
   reported U, else the SD of its mean (s/sqrt(n)). The reference laboratory is not
@@ -367,11 +369,10 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
                    "satisfactory; name a reference laboratory for the assigned value to have "
                    "bands")
     sig_source = policy.describe()
-    if sig is not None and sig < units.rounding_sd * (1 - _SLACK):
-        no_band = (f"sigma_pt = {units.scale(sig):.3g} is smaller than the spread that "
-                   f"rounding the results to {_step(units)} alone gives "
-                   f"({units.scale(units.rounding_sd):.2g}), so a difference of one reported "
-                   "digit would decide the band")
+    if sig is not None and sig < units.band_floor * (1 - _SLACK):
+        no_band = (f"sigma_pt = {units.scale(sig):.3g} is less than half the step the results "
+                   f"are reported to ({_step(units)}), so a difference of one reported digit "
+                   "would decide the band")
     banded = no_band is None
     use_zp = bool(banded and sig is not None and u_pt is not None and u_pt > 0.3 * sig)
     if use_zp:

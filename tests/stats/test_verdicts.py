@@ -94,8 +94,8 @@ def test_algorithm_a_and_z_equal_exact_arithmetic_on_one_decimal_results(pairs):
     assert res.robust.start == start and res.robust.collapsed == collapsed
     assert res.assigned_value == pytest.approx(float(rx), rel=1e-9)
     assert res.robust_sd == pytest.approx(float(rs), rel=1e-9, abs=1e-15)
-    # Bands need s* of at least the rounding SD of one decimal, 0.1/sqrt(12) (module doc).
-    if collapsed or rs < Decimal("0.1") / Decimal(12).sqrt():
+    # Bands need s* of at least half the reporting step, 0.1/2 (module doc).
+    if collapsed or rs < Decimal("0.05"):
         assert not res.banded and all(e["z"] is None for e in res.labs.values())
         return
     assert res.banded
@@ -241,8 +241,8 @@ def test_shift_or_power_of_ten_scaling_changes_no_verdict(table, move):
 def test_the_step_is_read_from_the_data_so_results_all_in_tens_read_as_reported_to_10():
     # The reporting step is the finest digit any result shows (``_common.to_units``), so
     # invariance holds for shifts by multiples of that step. Results that are all
-    # multiples of 10 read as reported to 10: a fixed sigma_pt of 1 is then below the
-    # spread rounding alone gives (10/sqrt(12) = 2.89) and gets no band, with the reason.
+    # multiples of 10 read as reported to 10: a fixed sigma_pt of 1 is then below half
+    # that step (5) and gets no band, with the reason.
     # Shifted by 3 they show the units digit, and the same sigma_pt gets bands.
     pairs = [("10", "20"), ("20", "30"), ("10", "10"), ("30", "40"), ("20", "20"),
              ("30", "20"), ("10", "30"), ("40", "30")]
@@ -250,8 +250,8 @@ def test_the_step_is_read_from_the_data_so_results_all_in_tens_read_as_reported_
     base = iso13528.evaluate(*_table(pairs)[1:], sigma_pt=1.0)
     moved = iso13528.evaluate(*_table(shifted)[1:], sigma_pt=1.0)
     assert base.resolution == 10.0 and moved.resolution == 1.0
-    assert not base.banded and "rounding the results to 10" in base.no_band
-    assert "2.9" in base.no_band
+    assert not base.banded and "less than half the step the results are reported to (10)" \
+        in base.no_band
     assert moved.banded
 
 
@@ -450,3 +450,19 @@ def test_mandel_h_with_equal_cells_is_the_standardized_lab_mean():
     means = [sum(map(Fraction, c)) / 2 for c in cells]  # (y_i - mean of means)/SD of means
     want = _mandel_h_exact(cells, sum(means) / len(means))
     assert list(res.mandel_h.values()) == pytest.approx(want, rel=1e-9)
+
+
+def test_a_sigma_pt_below_half_the_reporting_step_gives_no_band():
+    # Five laboratories at 10.0, one at 10.1 (results to one decimal). Against sigma_pt =
+    # 0.03 one reported digit would be 3.3 sigma_pt: "unsatisfactory" from the last digit
+    # alone. Half the step (0.05) is the least sigma_pt a band rests on.
+    pairs = [("10.0", "10.0")] * 5 + [("10.1", "10.1")]
+    _, values, labs = _table(pairs)
+    low = iso13528.evaluate(values, labs, sigma_pt=0.03, assigned="reference",
+                            reference_lab="L1")
+    assert not low.banded and all(e["band"] is None for e in low.labs.values())
+    assert "less than half the step the results are reported to (0.1)" in low.no_band
+    ok = iso13528.evaluate(values, labs, sigma_pt=0.05, assigned="reference",
+                           reference_lab="L1")
+    assert ok.banded and ok.labs["L6"]["z"] == pytest.approx(2.0) \
+        and ok.labs["L6"]["band"] == "satisfactory"
