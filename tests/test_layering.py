@@ -32,3 +32,11 @@ def test_nothing_imports_the_cli():
     for path in PACKAGE.rglob("*.py"):
         if path.name not in ("cli.py", "__main__.py"):
             assert "planner.cli" not in _imports(path), path
+
+
+def test_render_does_not_import_evaluate():
+    # The unblinded-results type lives in planner.results, below both: evaluate imports
+    # render to write the report, and render never imports evaluate back.
+    for path in (PACKAGE / "render").glob("*.py"):
+        assert not any(n == "planner.evaluate" or n.startswith("planner.evaluate.")
+                       for n in _imports(path)), path.name
