@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import functools
 import json
+import math
 import os
 import sys
 from collections.abc import Callable
@@ -41,6 +42,9 @@ PassFile = Annotated[Path | None, typer.Option(
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print JSON instead of tables.")]
 
 
+_MAX_OFFSET_MM = 20.0  # a printer that feeds labels further off needs a new sheet geometry
+
+
 def _fail(message: str) -> None:
     typer.echo(f"error: {message}", err=True)
 
@@ -59,24 +63,39 @@ def _command(func: _F) -> _F:
 
 
 def _passphrase(path: Path | None, *, confirm: bool) -> str:
-    """Return the passphrase from the file, the environment, or a hidden prompt."""
+    """Return the passphrase from the file, the environment, or a hidden prompt.
+
+    Every source is normalised the same way (``seal.normalize_passphrase``): the same
+    phrase opens a key whichever way it is given.
+    """
+    from planner.seal import normalize_passphrase
+
     if path is not None:
         try:
-            lines = path.read_text(encoding="utf-8").splitlines()
-        except OSError as exc:
-            raise SealError(f"cannot read the passphrase file ({(exc.strerror or 'error').lower()})",
-                            _where(path)) from None
-        if not lines or not lines[0].strip():
+            text = path.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            why = (exc.strerror or "error").lower() if isinstance(exc, OSError) else "not UTF-8"
+            raise SealError(f"cannot read the passphrase file ({why})", _where(path)) from None
+        lines = [normalize_passphrase(ln) for ln in text.splitlines()]
+        first = next((ln for ln in lines if ln), "")
+        if not first:
             raise SealError("the passphrase file is empty; put the passphrase on its first line",
                             _where(path))
-        return lines[0].strip()
+        if lines[0] != first:
+            raise SealError("the passphrase file starts with a blank line; put the passphrase "
+                            "on its first line", _where(path))
+        if os.name == "posix" and path.stat().st_mode & 0o077:
+            typer.echo(f"warning: {path}: the passphrase file can be read by other users; "
+                       f"'chmod 600 {path}' keeps it yours", err=True)
+        return first
     env = os.environ.get("RINGPLAN_PASSPHRASE")
-    if env:
-        return env
+    if env is not None and normalize_passphrase(env):
+        return normalize_passphrase(env)
     if not sys.stdin.isatty():
         raise SealError("no passphrase given; use --passphrase-file FILE or set "
                         "RINGPLAN_PASSPHRASE (no terminal to ask at)")
-    return str(typer.prompt("Key passphrase", hide_input=True, confirmation_prompt=confirm))
+    return normalize_passphrase(str(typer.prompt("Key passphrase", hide_input=True,
+                                                 confirmation_prompt=confirm)))
 
 
 def _where(path: Path) -> Any:
@@ -289,6 +308,9 @@ def plan(
         raise PlannerError(f"--round {round_id!r} is not a usable round id; use letters, digits, "
                            "'-', '_' or '.', e.g. 2027-1")
     when = _date_option("--receive-by", receive_by)
+    if when is not None and when < date.today():
+        typer.echo(f"warning: --receive-by {when} is in the past; the round's dates are "
+                   "computed from it as given", err=True)
     if host is None:
         host = rotation.propose(study, overview.past_rounds(study, study_dir), rounds=1,
                                 first_date=when)[0].host
@@ -721,6 +743,10 @@ def print_documents(
     from planner import plan as planning
     from planner.ledger import Ledger
 
+    for name, value in (("--offset-x", offset_x), ("--offset-y", offset_y)):
+        if not (math.isfinite(value) and abs(value) <= _MAX_OFFSET_MM):
+            raise PlannerError(f"{name} {value!r} is not a usable shift; give millimetres "
+                               f"between -{_MAX_OFFSET_MM:g} and {_MAX_OFFSET_MM:g}")
     offset = (offset_x, offset_y)
     if calibration:
         name = sheet or _load(study_dir).study.label_sheet

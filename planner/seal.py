@@ -29,7 +29,7 @@ from planner.errors import SealError, Where
 __all__ = [
     "canonical", "fingerprint", "seal_key", "unseal_key", "write_private",
     "open_key", "read_key_json", "validate_fingerprint", "SEALED_NAME", "FINGERPRINT_NAME",
-    "KEY_NAME", "MIN_PASSPHRASE",
+    "KEY_NAME", "MIN_PASSPHRASE", "normalize_passphrase", "check_strength",
 ]
 
 SEALED_NAME = "key.sealed"
@@ -76,13 +76,29 @@ def _derive(passphrase: str, salt: bytes, params: dict[str, int]) -> tuple[bytes
     return raw[:32], hashlib.sha256(b"ringplan-verifier" + raw[32:]).digest()
 
 
-def seal_key(key_json: bytes, passphrase: str) -> bytes:
-    """Return the sealed file's bytes for ``key_json``; raise SealError for a short passphrase."""
-    from cryptography.hazmat.primitives.ciphers.aead import AESGCM
+def normalize_passphrase(text: str) -> str:
+    """Return a passphrase as every source gives it: no byte order mark, no line ending, no
+    white space at either end (a passphrase never begins or ends with a space; inside it,
+    spaces count)."""
+    return text.lstrip("\ufeff").strip()
 
+
+def check_strength(passphrase: str) -> None:
+    """Raise SealError for a passphrase too weak to seal a key with, saying what would do."""
     if len(passphrase) < MIN_PASSPHRASE:
         raise SealError(f"the passphrase has {len(passphrase)} characters; use at least "
                         f"{MIN_PASSPHRASE} (a few unrelated words work well)")
+    if len(set(passphrase)) < 5 or passphrase.isdigit():
+        # '1234567890' or 'aaaaaaaaaa' fall to the first guesses of any attack on scrypt
+        raise SealError("the passphrase is too easy to guess (only digits, or fewer than 5 "
+                        "different characters); use a few unrelated words")
+
+
+def seal_key(key_json: bytes, passphrase: str) -> bytes:
+    """Return the sealed file's bytes for ``key_json``; raise SealError for a weak passphrase."""
+    from cryptography.hazmat.primitives.ciphers.aead import AESGCM
+
+    check_strength(passphrase)
     salt, nonce = secrets.token_bytes(16), secrets.token_bytes(12)
     aes_key, verifier = _derive(passphrase, salt, _SCRYPT)
     print_ = fingerprint(key_json)

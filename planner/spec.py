@@ -80,10 +80,10 @@ class Hazard(_Model):
 class Material(_Model):
     id: str = Field(pattern=_ID)
     description: str = Field(min_length=1)
-    amount: float = Field(gt=0)
+    amount: float = Field(gt=0, allow_inf_nan=False)
     amount_unit: str = Field(min_length=1)
     storage: str = Field(min_length=1)
-    stability_days: int = Field(gt=0)
+    stability_days: int = Field(gt=0, le=3650)
     hazard: Hazard | None = None
 
 
@@ -91,8 +91,8 @@ class Design(_Model):
     mode: Literal["split", "circulate"] = "split"
     trials: int = Field(ge=2, le=20)
     spares_per_lab: int = Field(default=1, ge=0, le=10)
-    retained_by_host: int = Field(default=0, ge=0)
-    homogeneity_units: int = Field(default=0, ge=0)
+    retained_by_host: int = Field(default=0, ge=0, le=1000)
+    homogeneity_units: int = Field(default=0, ge=0, le=100)
     run_order: Literal["random", "balanced"] = "random"
 
 
@@ -112,7 +112,7 @@ class Schedule(_Model):
     ship_weekdays: tuple[Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"], ...] = (
         "mon", "tue", "wed", "thu")
     transit_days: int = Field(default=2, ge=0, le=30)
-    stability_margin_days: int = Field(default=0, ge=0)
+    stability_margin_days: int = Field(default=0, ge=0, le=3650)
     round_interval_weeks: int = Field(default=13, ge=1, le=104)
     transit: tuple[Transit, ...] = ()
 
@@ -245,6 +245,37 @@ _Loader.yaml_implicit_resolvers = {
 }
 
 
+def _refuse_aliases(root: yaml.Node, name: str) -> None:
+    """Raise SpecError at the first node used twice (an alias, ``*name``) or repeated key.
+
+    Aliases can make a few lines of YAML expand into millions of values; a study spec
+    never needs them, so they are refused before anything is built from the text.
+    """
+    seen: set[int] = set()
+    stack = [root]
+    while stack:
+        node = stack.pop()
+        if id(node) in seen:
+            raise SpecError("anchors and aliases (&name, *name) are not allowed in a study "
+                            "spec; write each value out",
+                            Where(name, node.start_mark.line + 1))
+        seen.add(id(node))
+        if isinstance(node, yaml.MappingNode):
+            first: dict[str, int] = {}
+            for key, value in node.value:
+                line = key.start_mark.line + 1
+                if isinstance(key, yaml.ScalarNode) and key.value in first:
+                    # YAML would keep the last silently; a second value is a slip to name
+                    raise SpecError(f"the key {key.value!r} appears twice in this section "
+                                    f"(first on line {first[key.value]}); keep one",
+                                    Where(name, line))
+                if isinstance(key, yaml.ScalarNode):
+                    first[key.value] = line
+                stack += [key, value]
+        elif isinstance(node, yaml.SequenceNode):
+            stack += node.value
+
+
 def _lines(node: yaml.Node, path: tuple[Any, ...], out: dict[tuple[Any, ...], int]) -> None:
     """Record the 1-based line of every node, keyed by its path of keys and indexes."""
     out.setdefault(path, node.start_mark.line + 1)
@@ -289,6 +320,8 @@ def parse(text: str, *, name: str = SPEC_NAME) -> Study:
     loader = _Loader(text)
     try:
         node = loader.get_single_node()
+        if node is not None:
+            _refuse_aliases(node, name)
         raw = loader.construct_document(node) if node is not None else None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)

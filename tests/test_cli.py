@@ -128,3 +128,56 @@ def test_tampered_sealed_key_from_cli(example_dir, runner, passphrase):
     sealed.write_text(json.dumps(doc))
     result = run_cli(runner, "unseal", example_dir, "--round", "R", "--force", "--reason", "x")
     assert result.exit_code == 2 and "has been altered" in result.stderr
+
+
+def test_one_passphrase_whatever_its_source(example_dir, runner, monkeypatch, tmp_path):
+    # Planned with a file saved by a Windows editor (BOM, CRLF) and opened from the
+    # environment with a trailing newline and from a plain file: the same phrase.
+    monkeypatch.delenv("RINGPLAN_PASSPHRASE", raising=False)
+    phrase = "maple tide lantern"
+    windows = tmp_path / "win.txt"
+    windows.write_bytes(("\ufeff" + phrase + "\r\n").encode("utf-8"))
+    windows.chmod(0o600)
+    planned = run_cli(runner, "plan", example_dir, "--round", "R", "--host", "kal",
+                      "--passphrase-file", windows)
+    assert planned.exit_code == 0, planned.stderr
+    assert "warning" not in planned.stderr  # owner-only file: no warning
+    monkeypatch.setenv("RINGPLAN_PASSPHRASE", phrase + "\n")
+    opened = run_cli(runner, "unseal", example_dir, "--round", "R", "--force", "--reason", "x")
+    assert opened.exit_code == 0, opened.stderr
+
+
+@pytest.mark.parametrize("weak, message", [
+    ("          ", "the passphrase file is empty"),
+    ("1234567890", "too easy to guess"),
+    ("aaaaabbbbb", "too easy to guess"),
+])
+def test_weak_passphrases_are_refused_when_sealing(example_dir, runner, monkeypatch, tmp_path,
+                                                    weak, message):
+    monkeypatch.delenv("RINGPLAN_PASSPHRASE", raising=False)
+    path = tmp_path / "weak.txt"
+    path.write_text(weak + "\n")
+    path.chmod(0o600)
+    result = run_cli(runner, "plan", example_dir, "--round", "R", "--passphrase-file", path)
+    assert result.exit_code == 2 and message in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1
+    assert not (example_dir / "rounds" / "R").exists()
+
+
+def test_a_passphrase_file_others_can_read_is_named_in_a_warning(example_dir, runner,
+                                                                 monkeypatch, tmp_path):
+    monkeypatch.delenv("RINGPLAN_PASSPHRASE", raising=False)
+    path = tmp_path / "open.txt"
+    path.write_text("maple tide lantern\n")
+    path.chmod(0o644)
+    result = run_cli(runner, "plan", example_dir, "--round", "R", "--host", "kal",
+                     "--passphrase-file", path)
+    assert result.exit_code == 0
+    assert f"warning: {path}: the passphrase file can be read by other users" in result.stderr
+
+
+@pytest.mark.parametrize("value", ["nan", "1e9", "-25"])
+def test_a_label_shift_that_no_printer_needs_is_refused(example_dir, runner, value):
+    result = run_cli(runner, "print", example_dir, "--round", "R", "--offset-x", value)
+    assert result.exit_code == 2 and "is not a usable shift" in result.stderr
+    assert "Traceback" not in result.output

@@ -75,6 +75,15 @@ CASES = [
         "sigma_pt: {percent: 5}", "sigma_pt: {participants: {min_participants: 2}}"),
      "evaluation.sigma_pt.participants.min_participants: 2 is out of range; it must be >= 3",
      "min_participants"),
+    ("duplicate-key", lambda s: s.replace("trials: 3", "trials: 3\n  trials: 4"),
+     "the key 'trials' appears twice in this section (first on line", "trials: 4"),
+    ("yaml-alias", lambda s: s.replace("trials: 3", "trials: &n 3").replace(
+        "spares_per_lab: 1", "spares_per_lab: *n"),
+     "anchors and aliases (&name, *name) are not allowed", "trials: &n 3"),
+    ("retained-absurd", lambda s: s.replace("retained_by_host: 2", "retained_by_host: 20000000"),
+     "design.retained_by_host: 20000000 is out of range; it must be <= 1000", "retained_by_host"),
+    ("stability-absurd", lambda s: s.replace("stability_days: ", "stability_days: 99999999999 #", 1),
+     "is out of range; it must be <= 3650", "stability_days: 99999999999"),
     ("sigma-pt-infinite", lambda s: s.replace("sigma_pt: {percent: 5}", "sigma_pt: .inf"),
      "evaluation.sigma_pt.value: inf is not a finite number", "sigma_pt: .inf"),
     ("sigma-pt-unknown-material", lambda s: s.replace(
