@@ -16,7 +16,7 @@ check reads it. ``read_key`` and ``open_key`` hand out only keys that passed.
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -152,16 +152,47 @@ def read_key(folder: Path, ledger: Ledger, round_id: str) -> dict[str, Any]:
     return dict(json.loads(key_json))
 
 
-def open_key(folder: Path, ledger: Ledger, round_id: str, *, passphrase: str) -> dict[str, Any]:
-    """Return the key decrypted in memory from key.sealed once ``check_fingerprint`` passed its
-    canonical JSON; raise SealError if it cannot be opened or does not match."""
+def open_key(folder: Path, ledger: Ledger, round_id: str, *, passphrase: str,
+             host_key: bytes | None = None) -> dict[str, Any]:
+    """Return the key decrypted in memory once ``check_fingerprint`` passed its canonical JSON.
+
+    A round sealed with one passphrase opens from key.sealed. A round sealed for trustees
+    opens here only from the host's own copy (key.host.sealed), with the host's private
+    key ``host_key`` and its ``passphrase``: the trustees' copy opens only at ``unseal``.
+    Raises SealError if it cannot be opened or does not match.
+    """
+    from planner.sealing import trustees
+
+    sealed = _read_sealed(folder / seal.SEALED_NAME)
+    if trustees.is_envelope(sealed):
+        if host_key is None:
+            raise SealError("this round's key is sealed for its trustees: the host opens its "
+                            "own copy with --host-key FILE (its private key); the trustees' "
+                            "copy opens only at unseal, with their releases",
+                            Where(str(folder / seal.SEALED_NAME)))
+        path = folder / plan.HOST_SEALED_NAME
+        key_json = trustees.open_with_private_key(_read_sealed(path), host_key, passphrase)
+        check_fingerprint(folder, ledger, round_id, key_json, source=plan.HOST_SEALED_NAME)
+        return dict(json.loads(key_json))
+    if host_key is not None:
+        raise SealError("this round's key is sealed with a passphrase, not for a host key; "
+                        "leave out --host-key", Where(str(folder / seal.SEALED_NAME)))
     key = seal.open_key(folder, passphrase)
     check_fingerprint(folder, ledger, round_id, seal.canonical(key), source=seal.SEALED_NAME)
     return key
 
 
+def _read_sealed(path: Path) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError:
+        raise SealError("the sealed key is missing; the round folder is incomplete",
+                        Where(str(path))) from None
+
+
 def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
-                 passphrase: str, force: bool = False, reason: str | None = None) -> Path:
+                 passphrase: str | None = None, releases: Sequence[bytes] = (),
+                 force: bool = False, reason: str | None = None) -> Path:
     """Record the opening, then decrypt the key into key.json (owner-only); return its path.
 
     Raises LedgerError while results are missing (unless ``force`` with a
@@ -177,7 +208,26 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
                   and not target.exists())
     missing = [] if completing else check_gate(study, ledger, round_id, force=force,
                                                reason=reason, manifest=manifest)
-    key = seal.open_key(folder, passphrase)
+    from planner.sealing import trustees
+
+    sealed = _read_sealed(folder / seal.SEALED_NAME)
+    released: list[str] = []
+    if trustees.is_envelope(sealed):
+        if not releases:
+            info = trustees.envelope_info(sealed)
+            raise SealError(f"this round's key is sealed for its trustees: give --release FILE "
+                            f"from {info['threshold']} of them "
+                            f"({', '.join(info['recipients'])})",
+                            Where(str(folder / seal.SEALED_NAME)))
+        key = dict(json.loads(trustees.open_envelope(sealed, releases)))
+        released = sorted({str(json.loads(r).get("id")) for r in releases})
+    else:
+        if releases:
+            raise SealError("this round's key is sealed with a passphrase, not for trustees; "
+                            "leave out --release", Where(str(folder / seal.SEALED_NAME)))
+        if passphrase is None:
+            raise SealError("a passphrase is needed to open this round's key")
+        key = seal.open_key(folder, passphrase)
     if key.get("round") != round_id or key.get("study") != study.id:
         raise SealError(f"the sealed key belongs to study {key.get('study')!r} round "
                         f"{key.get('round')!r}, not to this round", Where(str(folder)))
@@ -189,7 +239,9 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
         with ledger.transaction():
             ledger.record_event(round_id, "unsealed", {
                 "fingerprint": planned, "forced": bool(force and missing),
-                "reason": reason if force and missing else None, "missing": missing})
+                "reason": reason if force and missing else None, "missing": missing,
+                "sealing": "trustees" if released else "passphrase",
+                "releases": released})
     seal.write_private(target, key_json)
     return target
 

@@ -320,7 +320,9 @@ def plan(
     elif not study.lab(host).can_host:
         raise PlannerError(f"--host {host!r} cannot host (can_host is false in study.yaml)")
     dates, route = planning.dates_for(study, host, receive_by=when)
-    passphrase = _passphrase(passphrase_file, confirm=True)
+    # With trustees the key is sealed to their public keys (and the host's): no passphrase.
+    passphrase = (None if study.sealing is not None
+                  else _passphrase(passphrase_file, confirm=True))
     with Ledger.open(study_dir) as ledger:
         taken = ledger.codes()
         result = planning.plan_round(study, round_id=round_id, host=host, dates=dates,
@@ -356,6 +358,9 @@ def unseal(
     reason: Annotated[str | None, typer.Option(help="Why the key is opened early "
                                                "(recorded in the ledger).")] = None,
     passphrase_file: PassFile = None,
+    release: Annotated[list[Path] | None, typer.Option(
+        help="A trustee's release of this round's key (repeat for each trustee); for a "
+        "round sealed for trustees, instead of the passphrase.")] = None,
 ) -> None:
     """Open the sealed key once every laboratory has reported; check its fingerprint."""
     from planner import audit, seal
@@ -370,9 +375,11 @@ def unseal(
         if not completing:  # the gate is named before the passphrase is asked
             audit.check_gate(study, ledger, round_id, force=force, reason=reason,
                              manifest=planning.read_manifest(folder))
-        passphrase = _passphrase(passphrase_file, confirm=False)
+        releases = [_read_bytes(path) for path in release or ()]
+        passphrase = None if releases or study.sealing is not None else _passphrase(
+            passphrase_file, confirm=False)
         path = audit.unseal_round(study, study_dir, round_id, ledger, passphrase=passphrase,
-                                  force=force, reason=reason)
+                                  releases=releases, force=force, reason=reason)
     typer.echo(f"wrote {path}; its SHA-256 equals the fingerprint recorded in the ledger at "
                "planning and printed on every packing list")
 
@@ -575,6 +582,8 @@ def spare(
     lab: Annotated[str, typer.Option(help="The laboratory with the damaged or failed unit.")],
     damaged: Annotated[str, typer.Option(help="The code on the damaged or failed unit.")],
     passphrase_file: PassFile = None,
+    host_key: Annotated[Path | None, typer.Option(
+        "--host-key", help="The host's private key, for a round sealed for trustees.")] = None,
 ) -> None:
     """Tell a laboratory which of its spare codes replaces a damaged or failed unit."""
     from planner import audit, codes, spares
@@ -586,7 +595,8 @@ def spare(
         passphrase = _passphrase(passphrase_file, confirm=False)
         # checked against the fingerprint the ledger recorded at planning
         key = audit.open_key(planning.round_dir(study_dir, round_id), ledger, round_id,
-                             passphrase=passphrase)
+                             passphrase=passphrase,
+                             host_key=_read_bytes(host_key) if host_key else None)
         swap = spares.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
                                   key=key)
     typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
@@ -616,6 +626,70 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
         typer.echo(f"drift of artefact {material} between the host's stops: {check['verdict']}")
     typer.echo(f"\nwrote {folder}: {evaluation.REPORT_NAME}, {evaluation.STATISTICS_NAME}, "
                f"{evaluation.RESULTS_NAME} and {len(study.laboratories)} letters")
+
+
+trustee_app = typer.Typer(help="Trustees of a round's key: key pairs and releases.",
+                           no_args_is_help=True)
+app.add_typer(trustee_app, name="trustee")
+
+
+@trustee_app.command("new")
+@_command
+def trustee_new(
+    trustee_id: Annotated[str, typer.Argument(metavar="ID", help="The trustee's id (or the "
+                                              "host laboratory's), as study.yaml names it.")],
+    out: Annotated[Path, typer.Option(help="Where to write the private key (a new file).")],
+    passphrase_file: PassFile = None,
+) -> None:
+    """Make a key pair: the private key to FILE (with a passphrase), the public key printed."""
+    from planner import spec
+    from planner.sealing import trustees
+
+    if not spec.slug_ok(trustee_id):
+        raise PlannerError(f"{trustee_id!r} is not a usable id; use 1-32 letters, digits, '-', "
+                           "'_' or '.'")
+    if out.exists() or out.is_symlink():
+        raise PlannerError(f"{out} exists already; a private key is never overwritten, choose "
+                           "another file")
+    private, public = trustees.new_key_pair(_passphrase(passphrase_file, confirm=True))
+    _write_private_file(out, private)
+    typer.echo(f"wrote {out}: the private key of {trustee_id}; keep it, and its passphrase, "
+               "where only you can reach them: without both, your part of the key is lost")
+    typer.echo(f"public key of {trustee_id} for study.yaml:")
+    typer.echo(public)
+
+
+@trustee_app.command("release")
+@_command
+def trustee_release(
+    sealed: Annotated[Path, typer.Argument(metavar="KEY_SEALED",
+                                           help="The round's key.sealed.")],
+    key: Annotated[Path, typer.Option(help="Your private key file.")],
+    out: Annotated[Path, typer.Option(help="Where to write your release (a new file).")],
+    passphrase_file: PassFile = None,
+) -> None:
+    """Release your part of one round's key, to give to the coordinator for unseal."""
+    from planner.sealing import trustees
+
+    if out.exists() or out.is_symlink():
+        raise PlannerError(f"{out} exists already; choose another file")
+    data = trustees.release(_read_bytes(sealed), _read_bytes(key),
+                            _passphrase(passphrase_file, confirm=False))
+    _write_private_file(out, data)
+    info = json.loads(data)
+    context = info.get("context", {})
+    typer.echo(f"wrote {out}: the release of trustee {info.get('id')} for study "
+               f"{context.get('study')} round {context.get('round')} only")
+
+
+def _write_private_file(path: Path, data: bytes) -> None:
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+    except OSError as exc:
+        raise PlannerError(f"cannot write the file ({(exc.strerror or 'error').lower()})",
+                           _where(path)) from None
 
 
 @app.command()
@@ -737,6 +811,9 @@ def print_documents(
     calibration: Annotated[bool, typer.Option(
         help="Print an alignment page with the cell outlines of the sheet instead.")] = False,
     passphrase_file: PassFile = None,
+    host_key: Annotated[Path | None, typer.Option(
+        "--host-key", help="The host's private key, for a round sealed for trustees (the "
+        "host's own copy of the key; --passphrase-file then gives its passphrase).")] = None,
 ) -> None:
     """Print the labels, prep sheet, packing lists, run sheets and result forms of a round."""
     from planner import audit, render, seal
@@ -773,7 +850,8 @@ def print_documents(
             key = audit.read_key(folder, ledger, round_id)
         else:
             key = audit.open_key(folder, ledger, round_id,
-                                 passphrase=_passphrase(passphrase_file, confirm=False))
+                                 passphrase=_passphrase(passphrase_file, confirm=False),
+                                 host_key=_read_bytes(host_key) if host_key else None)
         # On record before any document is written: a print stopped half-way has still
         # used the key, and status must say so.
         with ledger.transaction():

@@ -319,7 +319,9 @@ def _opening(record: Mapping[str, Any] | None) -> dict[str, Any] | None:
             "missing": list(record["missing"]),
             "early_decryptions": [dict(e) for e in record["early_decryptions"]],
             "first_result_at": record["first_result_at"],
-            "received_after": list(record["received_after"])}
+            "received_after": list(record["received_after"]),
+            "sealing": dict(record.get("sealing") or {}),
+            "releases": list(record.get("releases") or ())}
 
 
 def sigma_policy(policy: SigmaPtPolicy) -> SigmaPt:

@@ -33,6 +33,7 @@ if TYPE_CHECKING:
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
     "definition_of", "study_of_definition", "round_study", "check_manifest", "settle_round",
+    "HOST_SEALED_NAME", "sealing_of", "seal_round_key",
     "Frame", "frame_of",
     "frame_from_key",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
@@ -41,6 +42,7 @@ __all__ = [
 ]
 
 MANIFEST_NAME = "manifest.json"
+HOST_SEALED_NAME = "key.host.sealed"  # the host's own copy, with trustees
 KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
 _KEY_FORMAT = "ringplan-key/2"
@@ -490,7 +492,8 @@ def _write(path: Path, text: str) -> None:
 
 
 def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, *,
-                passphrase: str, replace: bool = False, _fail_after_files: bool = False) -> Path:
+                passphrase: str | None, replace: bool = False,
+                _fail_after_files: bool = False) -> Path:
     """Write a planned round's folder and ledger rows as one step; return the round folder.
 
     The files are staged, the ledger commit decides, and the staged folder is then
@@ -513,7 +516,7 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                               "re-planned, plan a new round id instead")
     manifest = manifest_of(study, plan)
     key_json = seal.canonical(key_of(plan))
-    sealed = seal.seal_key(key_json, passphrase)
+    sealed, host_copy = seal_round_key(study, plan, key_json, passphrase=passphrase)
     staging = target.parent / f".{plan.round_id}.{secrets.token_hex(4)}.staging"
     try:
         # The files are staged while the ledger's write lock is held, so that no other
@@ -524,6 +527,8 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
             _write(staging / MANIFEST_NAME,
                    json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
             seal.write_private(staging / seal.SEALED_NAME, sealed)
+            if host_copy is not None:
+                seal.write_private(staging / HOST_SEALED_NAME, host_copy)
             _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
             token = {lab.id: tokens.submission_token(plan.secret, lab.id)
                      for lab in study.laboratories}
@@ -544,6 +549,7 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                                  "units": len(plan.units), "replaced": current is not None,
                                  "definition": seal.fingerprint(plan.definition),
                                  "round": json.loads(plan.definition),
+                                 "sealing": sealing_of(study),
                                  # only digests: a token in the ledger could be copied
                                  "tokens": {lab: tokens.digest(t) for lab, t in token.items()}})
             if _fail_after_files:
@@ -555,6 +561,44 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
     # from here on is completed by ``settle_round`` in the next command on the round.
     _place(target, staging)
     return target
+
+
+def sealing_of(study: Study) -> dict[str, Any]:
+    """Return how a round of the study is sealed, as the ledger and the documents say it."""
+    if study.sealing is None:
+        return {"kind": "passphrase"}
+    return {"kind": "trustees", "threshold": study.sealing.threshold,
+            "trustees": [t.id for t in study.sealing.trustees]}
+
+
+def seal_round_key(study: Study, plan: RoundPlan, key_json: bytes, *,
+                   passphrase: str | None) -> tuple[bytes, bytes | None]:
+    """Return key.sealed and the host's own copy (None without trustees).
+
+    With ``sealing`` the key is sealed to the trustees (any ``threshold`` of them open
+    it) and a second copy to the host laboratory's public key, so that the host can
+    print its labels and preparation sheet and issue spares without them; the
+    coordinator alone can open neither. Without it, one passphrase seals the key.
+    Raises SealError for a missing passphrase, LedgerError for a host without a key.
+    """
+    if study.sealing is None:
+        if passphrase is None:
+            raise SealError("a passphrase is needed to seal the key (this study names no "
+                            "trustees)")
+        return seal.seal_key(key_json, passphrase), None
+    from planner.sealing import trustees
+
+    host = study.lab(plan.host)
+    if host.public_key is None:
+        raise LedgerError(f"the host {host.id!r} has no public_key in study.yaml, so its copy "
+                          "of the key cannot be sealed; run 'ringplan trustee new "
+                          f"{host.id} --out FILE' at the host and paste the key it prints")
+    sealed = trustees.seal_envelope(
+        key_json, recipients=[(t.id, t.public_key) for t in study.sealing.trustees],
+        threshold=study.sealing.threshold, study=study.id, round_id=plan.round_id)
+    host_copy = trustees.seal_envelope(key_json, recipients=[(host.id, host.public_key)],
+                                       threshold=1, study=study.id, round_id=plan.round_id)
+    return sealed, host_copy
 
 
 def _place(target: Path, staging: Path) -> None:

@@ -23,7 +23,7 @@ from planner.errors import PlannerError, SpecError, Where
 __all__ = [
     "Study", "StudyInfo", "Lab", "Contact", "Blackout", "Material", "Hazard",
     "Design", "Schedule", "Transit", "Evaluation", "SigmaPtPolicy", "PrecisionStudy",
-    "Participants", "MaterialEvaluation", "PastRound",
+    "Participants", "MaterialEvaluation", "PastRound", "Trustee", "Sealing",
     "load", "parse", "SPEC_NAME",
 ]
 
@@ -70,6 +70,8 @@ class Lab(_Model):
     transit_days: int | None = Field(default=None, ge=0, le=30)
     joined: date | None = None
     blackouts: tuple[Blackout, ...] = ()
+    # With trustees (``sealing``), the host's own copy of the map is sealed to this key.
+    public_key: str | None = None
 
 
 class Hazard(_Model):
@@ -193,6 +195,19 @@ class Evaluation(_Model):
         return own.sigma_pt if own is not None and own.sigma_pt is not None else self.sigma_pt
 
 
+class Trustee(_Model):
+    id: str = Field(pattern=_ID)
+    name: str = Field(min_length=1)
+    public_key: str = Field(min_length=1)
+
+
+class Sealing(_Model):
+    """Trustees of the key: any ``threshold`` of them open it, fewer cannot."""
+
+    threshold: int = Field(ge=1, le=50)
+    trustees: tuple[Trustee, ...] = Field(min_length=1, max_length=50)
+
+
 class PastRound(_Model):
     round: str = Field(pattern=_ID)
     host: str
@@ -208,6 +223,7 @@ class Study(_Model):
     design: Design
     schedule: Schedule
     evaluation: Evaluation = Evaluation()
+    sealing: Sealing | None = None
     history: tuple[PastRound, ...] = ()
 
     @property
@@ -495,6 +511,8 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
                         f"{pol.precision.sigma_R!r} is smaller than sigma_r "
                         f"{pol.precision.sigma_r!r}; reproducibility includes repeatability, "
                         "so sigma_R >= sigma_r"))
+    if study.sealing is not None:
+        out += _sealing_checks(study)
     seen_rounds: dict[str, int] = {}
     for i, past in enumerate(study.history):
         if past.host not in lab_ids:
@@ -542,6 +560,47 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
     if d.mode == "split" and d.homogeneity_units == 1:
         out.append((("design", "homogeneity_units"),
                     "1 unit cannot show between-unit variation; use 0 or at least 2 (10 is common practice)"))
+    return out
+
+
+def _sealing_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
+    """Return the problems of the sealing section and of the laboratories' public keys."""
+    from planner.sealing import trustees as trustee_keys
+
+    out: list[tuple[tuple[Any, ...], str]] = []
+    sealing = study.sealing
+    assert sealing is not None
+    n = len(sealing.trustees)
+    if sealing.threshold > n:
+        out.append((("sealing", "threshold"),
+                    f"{sealing.threshold} is larger than the {n} trustee(s) named; any "
+                    f"'threshold' of them must be able to open the key (at most {n})"))
+    seen: dict[str, int] = {}
+    keys: dict[str, int] = {}
+    for i, trustee in enumerate(sealing.trustees):
+        if trustee.id in seen:
+            out.append((("sealing", "trustees", i, "id"),
+                        f"{trustee.id!r} is used twice (first at sealing.trustees[{seen[trustee.id]}])"))
+        seen.setdefault(trustee.id, i)
+        try:
+            trustee_keys.parse_public_key(trustee.public_key)
+        except ValueError as exc:
+            out.append((("sealing", "trustees", i, "public_key"), f"{exc}; paste the last line "
+                        "'ringplan trustee new' printed"))
+            continue
+        if trustee.public_key in keys:
+            out.append((("sealing", "trustees", i, "public_key"),
+                        f"is the key of sealing.trustees[{keys[trustee.public_key]}] too; each "
+                        "trustee needs a key of its own"))
+        keys.setdefault(trustee.public_key, i)
+    for i, lab in enumerate(study.laboratories):
+        if lab.public_key is None:
+            continue
+        try:
+            trustee_keys.parse_public_key(lab.public_key)
+        except ValueError as exc:
+            out.append((("laboratories", i, "public_key"), f"{exc}; paste the last line "
+                        "'ringplan trustee new' printed"))
     return out
 
 

@@ -125,10 +125,34 @@ def read_key_history(ledger: Ledger, round_id: str) -> dict[str, Any]:
         "forced": bool(detail.get("forced")) if opening is not None else None,
         "reason": detail.get("reason"),
         "missing": [str(s) for s in detail.get("missing") or ()],
+        "releases": [str(s) for s in detail.get("releases") or ()],
+        "sealing": _sealing(ledger, round_id),
         "early_decryptions": early,
         "first_result_at": first_result,
         "received_after": list(after),
     }
+
+
+def _sealing(ledger: Ledger, round_id: str) -> dict[str, Any]:
+    """Return how the round's key was sealed, as the planning event recorded it."""
+    planned = ledger.events(round_id, "planned")
+    return dict(planned[-1].detail.get("sealing") or {"kind": "passphrase"}) if planned else {}
+
+
+def sealing_sentence(key: Mapping[str, Any]) -> str:
+    """Return one sentence on how the key was sealed and, once opened, by whom."""
+    sealing = key.get("sealing") or {}
+    if sealing.get("kind") == "trustees":
+        who = ", ".join(sealing.get("trustees") or ())
+        text = (f"The key was sealed for {len(sealing.get('trustees') or ())} trustees ({who}), "
+                f"any {sealing.get('threshold')} of whom open it together, with a copy for "
+                "the host alone")
+        if key.get("releases"):
+            text += f"; it was opened with the releases of {', '.join(key['releases'])}"
+        return text + "."
+    if sealing.get("kind") == "passphrase":
+        return "The key was sealed with the coordinator's passphrase (no trustees)."
+    return ""
 
 
 def ledger_time(at: str) -> str:
@@ -154,7 +178,7 @@ def host_documents(detail: Mapping[str, Any]) -> list[str] | None:
 
 def describe_key(key: Mapping[str, Any]) -> list[str]:
     """Return the lines that tell ``read_key_history``'s record of a key, oldest first."""
-    out = []
+    out = [s for s in [sealing_sentence(key)] if s]
     for use in key.get("early_decryptions", ()):
         when = ledger_time(use["at"])
         detail = use.get("detail") or {}

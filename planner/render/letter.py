@@ -302,8 +302,11 @@ def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
                   "their participant codes.")
     if opening and opening.get("forced"):
         first = f"<b>{first}</b>"
+    from planner import status
+
     text = " ".join([first, *(esc(t) for t in _opening.later_sentences(opening,
-                                                                       name_of=name_of))])
+                                                                       name_of=name_of)),
+                     esc(status.sealing_sentence(opening or {}))]).strip()
     sheet = "hand-over sheet" if "drift" in s else "packing list"
     return [
         Paragraph("The decoding key", st["h2"]),

@@ -304,6 +304,7 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
 
 def _opening_text(s: Mapping[str, Any]) -> str:
     """Return the paragraph (mark-up) on how the key was opened, the forced case in bold."""
+    from planner import status
     from planner.render import _opening
 
     esc = _layout.escape
@@ -312,7 +313,8 @@ def _opening_text(s: Mapping[str, Any]) -> str:
     if opening and opening.get("forced"):
         first = f"<b>{first}</b>"
     return " ".join([first, *(esc(t) for t in _opening.later_sentences(
-        opening, name_of=_opening.slot_name))])
+        opening, name_of=_opening.slot_name)),
+                     esc(status.sealing_sentence(opening or {}))]).strip()
 
 
 def _flag_line(s: Mapping[str, Any]) -> str:

@@ -1,0 +1,118 @@
+"""The example round sealed for three trustees, threshold two, through the CLI from
+`trustee new` to `evaluate`: the coordinator alone cannot open the key, the host prints its
+documents with its own copy, any two trustees' releases open it, one does not."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from conftest import LABS, ROUND, filled, receive, run_cli, write
+from planner import plan
+
+TRUSTEES = ("t1", "t2", "t3")
+
+
+def _secret_file(path, text):
+    path.write_text(text + "\n", encoding="utf-8")
+    path.chmod(0o600)
+    return path
+
+
+@pytest.fixture
+def trustee_round(example_dir, runner, tmp_path, clock, monkeypatch):
+    monkeypatch.delenv("RINGPLAN_PASSPHRASE", raising=False)
+    words = _secret_file(tmp_path / "pass.txt", "quiet river stone lamp")
+    keys = {}
+    for who in (*TRUSTEES, "kal"):
+        made = run_cli(runner, "trustee", "new", who, "--out", tmp_path / f"{who}.pem",
+                       "--passphrase-file", words)
+        assert made.exit_code == 0, made.stderr
+        keys[who] = made.stdout.strip().splitlines()[-1]
+        assert oct((tmp_path / f"{who}.pem").stat().st_mode & 0o777) == "0o600"
+    path = example_dir / "study.yaml"
+    text = path.read_text(encoding="utf-8")
+    text = text.replace("    can_host: true\n    decimal: comma\n    transit_days: 1\n",
+                        "    can_host: true\n    decimal: comma\n    transit_days: 1\n"
+                        f"    public_key: {keys['kal']}\n", 1)
+    text += ("\nsealing:\n  threshold: 2\n  trustees:\n" + "".join(
+        f"    - {{id: {t}, name: Trustee {t}, public_key: {keys[t]}}}\n" for t in TRUSTEES))
+    path.write_text(text, encoding="utf-8")
+    assert run_cli(runner, "check", example_dir).exit_code == 0
+    planned = run_cli(runner, "plan", example_dir, "--round", ROUND, "--host", "kal")
+    assert planned.exit_code == 0, planned.stderr
+    return example_dir, tmp_path, words
+
+
+def _release(runner, study, tmp_path, words, who):
+    out = tmp_path / f"release-{who}.json"
+    made = run_cli(runner, "trustee", "release", plan.round_dir(study, ROUND) / "key.sealed",
+                   "--key", tmp_path / f"{who}.pem", "--out", out, "--passphrase-file", words)
+    assert made.exit_code == 0, made.stderr
+    return out
+
+
+def test_a_round_sealed_for_trustees_from_trustee_new_to_evaluate(trustee_round, runner):
+    study, tmp_path, words = trustee_round
+    folder = plan.round_dir(study, ROUND)
+    assert (folder / plan.HOST_SEALED_NAME).is_file()
+    # The coordinator alone cannot print host documents; the host can, with its own copy.
+    alone = run_cli(runner, "print", study, "--round", ROUND, "--only", "prep",
+                    "--passphrase-file", words)
+    assert alone.exit_code == 2 and "sealed for its trustees" in alone.stderr
+    host = run_cli(runner, "print", study, "--round", ROUND, "--host-key", tmp_path / "kal.pem",
+                   "--passphrase-file", words)
+    assert host.exit_code == 0, host.stderr
+    assert (folder / "host" / "prep-sheet.pdf").is_file()
+    for lab in LABS:
+        assert receive(runner, study, write(tmp_path, f"{lab}.csv",
+                                            filled(study, lab))).exit_code == 0
+    # The coordinator's passphrase never opens a trustee-sealed round.
+    tried = run_cli(runner, "unseal", study, "--round", ROUND, "--passphrase-file", words)
+    assert tried.exit_code == 2 and "give --release FILE from 2 of them" in tried.stderr
+    one = _release(runner, study, tmp_path, words, "t1")
+    few = run_cli(runner, "unseal", study, "--round", ROUND, "--release", one)
+    assert few.exit_code == 2 and len(few.stderr.strip().splitlines()) == 1
+    assert not (folder / "key.json").exists()
+    three = _release(runner, study, tmp_path, words, "t3")
+    opened = run_cli(runner, "unseal", study, "--round", ROUND, "--release", one,
+                     "--release", three)
+    assert opened.exit_code == 0, opened.stderr
+    assert run_cli(runner, "verify", study, "--round", ROUND).exit_code == 0
+    status = run_cli(runner, "status", study, "--round", ROUND)
+    assert "opened with the releases of t1, t3" in " ".join(status.stdout.split())
+    evaluated = run_cli(runner, "evaluate", study, "--round", ROUND)
+    assert evaluated.exit_code == 0, evaluated.stderr
+    stats = json.loads((folder / "report" / "statistics.json").read_text(encoding="utf-8"))
+    assert stats["opening"]["sealing"]["kind"] == "trustees"
+    assert stats["opening"]["releases"] == ["t1", "t3"]
+
+
+def test_a_release_for_another_round_does_not_open_this_one(trustee_round, runner, clock):
+    study, tmp_path, words = trustee_round
+    first = _release(runner, study, tmp_path, words, "t1")
+    clock["now"] = "2027-01-31T09:00:00+00:00"
+    other = run_cli(runner, "plan", study, "--round", "2027-2", "--host", "kal",
+                    "--receive-by", "2027-04-20")
+    assert other.exit_code == 0, other.stderr
+    out = tmp_path / "release-t2-other.json"
+    assert run_cli(runner, "trustee", "release", plan.round_dir(study, "2027-2") / "key.sealed",
+                   "--key", tmp_path / "t2.pem", "--out", out,
+                   "--passphrase-file", words).exit_code == 0
+    refused = run_cli(runner, "unseal", study, "--round", ROUND, "--force", "--reason", "test",
+                      "--release", first, "--release", out)
+    assert refused.exit_code == 2 and len(refused.stderr.strip().splitlines()) == 1
+    assert not (plan.round_dir(study, ROUND) / "key.json").exists()
+
+
+def test_a_threshold_above_the_trustees_is_one_line(example_dir, runner):
+    path = example_dir / "study.yaml"
+    path.write_text(path.read_text(encoding="utf-8") + "\nsealing:\n  threshold: 4\n"
+                    "  trustees:\n    - {id: t1, name: T, public_key: ringplan-x25519:AAAA}\n",
+                    encoding="utf-8")
+    result = run_cli(runner, "check", example_dir)
+    assert result.exit_code == 2
+    lines = result.stderr.strip().splitlines()
+    assert any("sealing.threshold: 4 is larger than the 1 trustee(s) named" in ln for ln in lines)
+    assert any("sealing.trustees[0].public_key" in ln for ln in lines)
