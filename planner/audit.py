@@ -144,6 +144,21 @@ def check_fingerprint(folder: Path, ledger: Ledger, round_id: str, key_json: byt
     return planned
 
 
+def check_published_fingerprint(folder: Path, ledger: Ledger, round_id: str) -> str:
+    """Return the planned fingerprint once the manifest's equals it (documents made without
+    the key print the manifest's); raise SealError naming the manifest otherwise."""
+    current = ledger.current_round(round_id)
+    if current is None:
+        raise LedgerError(f"round {round_id!r} is not in the ledger; it was not planned in "
+                          "this study folder")
+    published = str(plan.read_manifest(folder).get("fingerprint"))
+    if published != current.fingerprint:
+        raise SealError(f"its fingerprint {_short(published)} does not equal the one recorded "
+                        f"in the ledger at planning, {_short(current.fingerprint)}; the "
+                        "manifest was changed", Where(str(folder / plan.MANIFEST_NAME)))
+    return current.fingerprint
+
+
 def read_key(folder: Path, ledger: Ledger, round_id: str) -> dict[str, Any]:
     """Return the decoded key.json of an unsealed round once ``check_fingerprint`` passed it;
     raise SealError while the key is sealed or when it does not match."""

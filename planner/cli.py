@@ -441,6 +441,15 @@ def verify(
                "rebuild from the secret exactly")
 
 
+def _sealed_for_trustees(folder: Path) -> bool:
+    from planner.sealing import trustees
+
+    try:
+        return trustees.is_envelope((folder / "key.sealed").read_bytes())
+    except OSError:
+        return False
+
+
 def _read_bytes(path: Path) -> bytes:
     try:
         return path.read_bytes()
@@ -592,9 +601,11 @@ def spare(
 
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
-        passphrase = _passphrase(passphrase_file, confirm=False)
+        folder = planning.round_dir(study_dir, round_id)
+        asked = host_key is not None or not _sealed_for_trustees(folder)
+        passphrase = _passphrase(passphrase_file, confirm=False) if asked else ""
         # checked against the fingerprint the ledger recorded at planning
-        key = audit.open_key(planning.round_dir(study_dir, round_id), ledger, round_id,
+        key = audit.open_key(folder, ledger, round_id,
                              passphrase=passphrase,
                              host_key=_read_bytes(host_key) if host_key else None)
         swap = spares.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
@@ -846,11 +857,19 @@ def print_documents(
     # the key must match the fingerprint recorded in the ledger, so that no document is
     # printed with a fingerprint someone wrote into the manifest afterwards
     with Ledger.open(study_dir, create=False) as ledger:
-        if (folder / seal.KEY_NAME).is_file():
+        key: dict[str, Any] | None = None
+        if not render.needs_key(wanted, labels=geometry is not None, lab=lab):
+            # the participants' documents come from the manifest and the forms alone; the
+            # fingerprint they print must be the one the ledger recorded
+            audit.check_published_fingerprint(folder, ledger, round_id)
+        elif (folder / seal.KEY_NAME).is_file():
             key = audit.read_key(folder, ledger, round_id)
         else:
+            # a round sealed for trustees says so before any passphrase is asked
+            asked = host_key is not None or not _sealed_for_trustees(folder)
             key = audit.open_key(folder, ledger, round_id,
-                                 passphrase=_passphrase(passphrase_file, confirm=False),
+                                 passphrase=_passphrase(passphrase_file, confirm=False)
+                                 if asked else "",
                                  host_key=_read_bytes(host_key) if host_key else None)
         # On record before any document is written: a print stopped half-way has still
         # used the key, and status must say so.

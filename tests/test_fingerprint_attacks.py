@@ -185,10 +185,17 @@ def test_verify_with_the_packing_list_fingerprint_fails_on_a_forged_key(unsealed
 def test_print_refuses_a_forged_key_so_no_document_shows_the_forged_fingerprint(
         unsealed, runner):
     _forge_key_json(unsealed)
+    # A packing list is made without the key, from the manifest: the manifest rewritten to
+    # the forged key's fingerprint is what print refuses, before any document.
     line = _one_error_line(run_cli(runner, "print", unsealed, "--round", ROUND,
                                    "--only", "packing", "--lab", "tor"))
-    assert "does not equal the fingerprint recorded in the ledger at planning" in line
+    assert "does not equal the one recorded in the ledger at planning" in line
+    assert "the manifest was changed" in line
     assert not (_folder(unsealed) / "labs" / "tor" / "packing-list.pdf").exists()
+    # Labels are made with the key: there the forged key itself is refused.
+    line = _one_error_line(run_cli(runner, "print", unsealed, "--round", ROUND,
+                                   "--only", "labels"))
+    assert "does not equal the fingerprint recorded in the ledger at planning" in line
 
 
 # --- key.fingerprint alone -------------------------------------------------------------------
@@ -228,8 +235,10 @@ def test_a_rewritten_manifest_fingerprint_is_refused_although_the_key_is_genuine
                 f"recorded in the ledger at planning, {planned[:16]}..., which the key "
                 "matches; the manifest was changed")
     assert _one_error_line(run_cli(runner, "evaluate", unsealed, "--round", ROUND)) == expected
+    # print of a packing list reads no key, so it cannot say the key matches
     assert _one_error_line(run_cli(runner, "print", unsealed, "--round", ROUND,
-                                   "--only", "packing", "--lab", "tor")) == expected
+                                   "--only", "packing", "--lab", "tor")) == expected.replace(
+        ", which the key matches", "")
     assert _findings(run_cli(runner, "verify", unsealed, "--round", ROUND))[0] == expected
 
 
@@ -263,9 +272,9 @@ def test_print_refuses_a_forged_key_sealed_again_with_the_passphrase(planned, ru
                                                                      passphrase):
     _forge_sealed(planned)
     line = _one_error_line(run_cli(runner, "print", planned, "--round", ROUND,
-                                   "--only", "packing", "--lab", "tor"))
+                                   "--only", "prep"))
     assert "the SHA-256 of the key decrypted from it" in line
-    assert not (_folder(planned) / "labs" / "tor" / "packing-list.pdf").exists()
+    assert not (_folder(planned) / "host" / "prep-sheet.pdf").exists()
 
 
 def test_a_sealed_file_whose_header_names_another_key_is_refused(planned):

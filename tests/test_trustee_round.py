@@ -116,3 +116,17 @@ def test_a_threshold_above_the_trustees_is_one_line(example_dir, runner):
     lines = result.stderr.strip().splitlines()
     assert any("sealing.threshold: 4 is larger than the 1 trustee(s) named" in ln for ln in lines)
     assert any("sealing.trustees[0].public_key" in ln for ln in lines)
+
+
+def test_the_participants_documents_need_no_key(trustee_round, runner):
+    # No passphrase, no host key: packing lists, run sheets and forms come from the manifest
+    # and the forms plan wrote; only labels and the preparation sheet need the key.
+    study, _, _ = trustee_round
+    folder = plan.round_dir(study, ROUND)
+    for only in ("packing", "runsheets", "forms"):
+        made = run_cli(runner, "print", study, "--round", ROUND, "--only", only)
+        assert made.exit_code == 0, (only, made.stderr)
+    assert (folder / "labs" / "tor" / "packing-list.pdf").is_file()
+    assert (folder / "labs" / "tor" / "run-sheet.pdf").is_file()
+    labels = run_cli(runner, "print", study, "--round", ROUND, "--only", "labels")
+    assert labels.exit_code == 2 and "sealed for its trustees" in labels.stderr

@@ -30,7 +30,8 @@ if TYPE_CHECKING:
     from planner.render._sheets import Geometry
     from planner.spec import Study
 
-__all__ = ["KINDS", "check_options", "planned_documents", "print_calibration", "print_round"]
+__all__ = ["KINDS", "check_options", "needs_key", "planned_documents", "print_calibration",
+           "print_round"]
 
 KINDS = ("labels", "prep", "packing", "runsheets", "forms")
 """The kinds of document ``print_round(only=...)`` accepts."""
@@ -84,7 +85,7 @@ def check_options(study: Study, study_dir: Path, manifest: dict[str, Any], *,
     return wanted, geometry
 
 
-def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, Any],
+def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, Any] | None,
                 only: str | None = None, lab: str | None = None,
                 codes: Sequence[str] | None = None, start_at: int = 1,
                 sheet: str | None = None, offset_mm: tuple[float, float] = (0.0, 0.0),
@@ -98,14 +99,19 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     round was not planned, SealError if the key is not the round's,
     PlannerError for an unknown kind, laboratory or sheet.
     """
-    from planner import plan, tokens
+    from planner import plan
     from planner.render import labels, packing_list, prep_sheet, result_form, run_sheet
 
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
-    _check_key(manifest, key)
+    if key is not None:
+        _check_key(manifest, key)
     wanted, geometry = check_options(study, study_dir, manifest, only=only, lab=lab,
                                      codes=codes, sheet=sheet)
+    if key is None and needs_key(wanted, labels=geometry is not None, lab=lab):
+        from planner.errors import SealError
+
+        raise SealError("labels and the preparation sheet name materials: they need the key")
     circulating = manifest.get("mode") == "circulate"
     paper = study.study.paper
     lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
@@ -132,13 +138,12 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
         lab_dir = folder / "labs" / lab_id
         if circulating:
             out += _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper,
-                                token=tokens.submission_token(bytes.fromhex(str(key["secret"])),
-                                                              lab_id))
+                                token=_token(folder, key, lab_id))
             continue
         if "packing" in wanted:
-            out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest, key,
+            out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest,
                                            lab_id, paper=paper))
-        token = tokens.submission_token(bytes.fromhex(str(key["secret"])), lab_id)
+        token = _token(folder, key, lab_id)
         if "runsheets" in wanted:
             out.append(run_sheet.render(lab_dir / "run-sheet.pdf", study, manifest, lab_id,
                                         paper=paper, token=token))
@@ -150,6 +155,29 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
                 text = plan.result_form_csv(study, manifest, lab_id, token=token)
             out.append(result_form.render(lab_dir / "result-form.xlsx", text))
     return out
+
+
+def needs_key(wanted: set[str], *, labels: bool, lab: str | None) -> bool:
+    """Return whether these documents need the key: labels and the preparation sheet do; the
+    participants' packing lists, run sheets and forms are made from the manifest alone."""
+    return labels or ("prep" in wanted and not lab)
+
+
+def _token(folder: Path, key: dict[str, Any] | None, lab_id: str) -> str:
+    """Return a laboratory's submission token: from the key's secret, or from the form plan
+    wrote (which carries it), so that a participant's documents need no key."""
+    from planner import forms, tokens
+
+    if key is not None:
+        return tokens.submission_token(bytes.fromhex(str(key["secret"])), lab_id)
+    found = forms.read_form(folder / "labs" / lab_id / "result-form.csv").ident(
+        "submission token")
+    if found is None:
+        from planner.errors import SealError
+
+        raise SealError(f"the result form of {lab_id!r} carries no submission token; print its "
+                        "documents with the key")
+    return tokens.compact(found[0])
 
 
 def planned_documents(study: Study, manifest: dict[str, Any], *, wanted: set[str],

@@ -38,9 +38,14 @@ def _address(lab: Lab, heading: str, st: dict[str, Any]) -> list[Any]:
             Paragraph(contact, st["small"])]
 
 
-def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, Any],
-           lab_id: str, *, paper: str) -> Path:
-    """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``."""
+def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
+           paper: str) -> Path:
+    """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``.
+
+    Built from the manifest alone, without the key: it lists codes, never which material a
+    code is, and gives the storage texts and cautions of every material of the round, the
+    same on every laboratory's list, so that none of them singles a unit out.
+    """
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
     st = _layout.styles()
@@ -49,9 +54,10 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
     host = study.lab(manifest["host"])
     entry = manifest["labs"][lab_id]
     dates = manifest["dates"]
-    materials = {m.id: m for m in study.materials}
-    units = sorted((u for u in key["units"] if u["lab"] == lab_id and u["kind"] in
-                    ("test", "spare")), key=lambda u: u["code"])
+    units = sorted([{"code": code, "kind": "test", "trial": trial}
+                    for trial, run in enumerate(entry["trials"], start=1) for code in run]
+                   + [{"code": code, "kind": "spare", "trial": None}
+                      for code in entry.get("spares", ())], key=lambda u: u["code"])
     width = _layout.content_width(paper)
 
     story: list[Any] = [
@@ -89,34 +95,31 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
                         f"({manifest['trials']} trials) and {spares} spare.", st["body"]),
               Spacer(1, 2.5 * _MM)]
     box = 3.6 * _MM
-    rows: list[list[Any]] = [["code", "kind", "trial", "hazard", "packed", "received"]]
+    rows: list[list[Any]] = [["code", "kind", "trial", "packed", "received"]]
     for unit in units:
-        hazard = materials[unit["material"]].hazard
         rows.append([codes.format(unit["code"]), unit["kind"],
                      unit["trial"] if unit["trial"] is not None else "",
-                     hazard.word if hazard else "", _layout.check_box(box),
-                     _layout.check_box(box)])
-    contents = _layout.table(rows, [0.25 * width, 0.15 * width, 0.1 * width, 0.2 * width,
-                                    0.15 * width, 0.15 * width], _layout.table_style(extra=[
+                     _layout.check_box(box), _layout.check_box(box)])
+    contents = _layout.table(rows, [0.3 * width, 0.2 * width, 0.14 * width, 0.18 * width,
+                                    0.18 * width], _layout.table_style(extra=[
                                         ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
-                                        ("ALIGN", (4, 0), (-1, -1), "CENTER"),
+                                        ("ALIGN", (3, 0), (-1, -1), "CENTER"),
                                         ("ALIGN", (2, 0), (2, -1), "CENTER")]), repeatRows=1)
     story.append(contents)
 
-    storage = sorted({materials[u["material"]].storage for u in units})
+    storage = sorted({m.storage for m in study.materials})
     story += [Paragraph("Storage and handling", st["h2"])]
     story += [Paragraph(esc(text), st["bullet"], bulletText="•") for text in storage]
-    story.append(Paragraph("Each label gives the storage condition of its unit. Keep units "
-                           "closed until they are tested; do not open, mix or split them "
-                           "before the test. Report a damaged unit and use a spare.",
-                           st["body"]))
-    hazards = {}
-    for unit in units:
-        hazard = materials[unit["material"]].hazard
-        if hazard:
-            hazards[hazard.word] = hazard.note
+    story.append(Paragraph("These are the storage conditions of the round's materials; each "
+                           "label gives its unit's. Keep units closed until they are tested; "
+                           "do not open, mix or split them before the test. Report a damaged "
+                           "unit and use a spare.", st["body"]))
+    hazards = {m.hazard.word: m.hazard.note for m in study.materials if m.hazard}
+    if hazards:
+        story.append(Paragraph("Some materials of this round carry a hazard word; handle every "
+                               "unit of the parcel with the cautions below.", st["body"]))
     story += _layout.hazard_cautions(
-        hazards, none_text="No unit in this parcel carries a hazard word.")
+        hazards, none_text="No material of this round carries a hazard word.")
     story.append(Paragraph(SDS_NOTE, st["small"]))
     signers = ("packed by (host)", "checked by (host)", "received by (laboratory)")
     story.append(KeepTogether([
