@@ -879,7 +879,8 @@ def print_documents(
                                                       labels=geometry is not None, lab=lab,
                                                       codes=chosen),
                 "only": only, "lab": lab, "codes": chosen, "start_at": start_at,
-                "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset)})
+                "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset),
+                "key_used": key is not None})
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
                                workers=min(2, os.cpu_count() or 1))

@@ -187,7 +187,9 @@ def describe_key(key: Mapping[str, Any]) -> list[str]:
                     f"{codes.format(str(detail.get('damaged')))} of {detail.get('lab')}")
         else:
             names = host_documents(detail)
+            documents = [str(d) for d in detail.get("documents") or ()]
             what = ("to print host documents (" + ", ".join(names) + ")" if names
+                    else "to print documents (" + ", ".join(documents) + ")" if documents
                     else "to print documents (the ledger does not name them)")
         late = "" if use.get("before_results") else ", after results had come in"
         out.append(f"{when}: the key was decrypted while sealed, {what}{late}")
@@ -206,9 +208,12 @@ def describe_key(key: Mapping[str, Any]) -> list[str]:
 
 def _prints_host(detail: Mapping[str, Any]) -> bool:
     """Return whether a "printed" event may have printed host documents (labels, prep sheet)."""
+    if detail.get("key_used") is False:
+        return False  # participants' documents only, made without the key
     names = host_documents(detail)
-    # An event that counts its documents without naming them may have printed the host's.
-    return names is None or bool(names)
+    # An event that counts its documents without naming them may have printed the host's;
+    # one that used the key for a laboratory's labels decrypted it all the same.
+    return names is None or bool(names) or bool(detail.get("key_used"))
 
 
 def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, *,

@@ -130,3 +130,20 @@ def test_the_participants_documents_need_no_key(trustee_round, runner):
     assert (folder / "labs" / "tor" / "run-sheet.pdf").is_file()
     labels = run_cli(runner, "print", study, "--round", ROUND, "--only", "labels")
     assert labels.exit_code == 2 and "sealed for its trustees" in labels.stderr
+
+
+def test_the_host_issues_a_spare_with_its_own_copy_and_status_shows_it(trustee_round, runner):
+    study, tmp_path, words = trustee_round
+    damaged = filled(study, "tor")[11].split(";")[2]  # tor's first unit, as on its form
+    alone = run_cli(runner, "spare", study, "--round", ROUND, "--lab", "tor",
+                    "--damaged", damaged)
+    assert alone.exit_code == 2 and "sealed for its trustees" in alone.stderr
+    issued = run_cli(runner, "spare", study, "--round", ROUND, "--lab", "tor", "--damaged",
+                     damaged, "--host-key", tmp_path / "kal.pem", "--passphrase-file", words)
+    assert issued.exit_code == 0, issued.stderr
+    labels = run_cli(runner, "print", study, "--round", ROUND, "--lab", "tor", "--only",
+                     "labels", "--host-key", tmp_path / "kal.pem", "--passphrase-file", words)
+    assert labels.exit_code == 0, labels.stderr
+    shown = " ".join(run_cli(runner, "status", study, "--round", ROUND).stdout.split())
+    assert "to issue spare" in shown and "labs/tor/labels.pdf" in shown
+    assert "sealed for 3 trustees (t1, t2, t3), any 2 of whom open it together" in shown
