@@ -337,7 +337,13 @@ def plan(
         _print_route(con, route.to_json())
     con.print(f"fingerprint {result.fingerprint}")
     con.print(f"wrote {folder}")
-    con.print("keep the passphrase safe: without it the key cannot be opened")
+    if study.sealing is None:
+        con.print("keep the passphrase safe: without it the key cannot be opened")
+    else:
+        con.print(f"the key is sealed for the trustees "
+                  f"{', '.join(x.id for x in study.sealing.trustees)} (any "
+                  f"{study.sealing.threshold} open it) and a copy for the host {host}, who prints "
+                  "its labels and preparation sheet with --host-key")
 
 
 def _date_option(name: str, value: str | None) -> date | None:
