@@ -82,10 +82,16 @@ def test_an_inserted_planned_event_cannot_clear_the_way_for_replanning(planned, 
     assert result.exit_code == 2 and "altered outside ringplan" in result.stderr
 
 
-def test_a_guard_left_dropped_is_named(planned, runner):
-    db = sqlite3.connect(planned / "ledger.sqlite")
-    db.execute("DROP TRIGGER result_rows_no_update")
+def _raw(study_dir, sql):
+    """Run one statement on the ledger file as it is, guards and all."""
+    db = sqlite3.connect(study_dir / "ledger.sqlite")
+    db.execute(sql)
+    db.commit()
     db.close()
+
+
+def test_a_guard_left_dropped_is_named(planned, runner):
+    _raw(planned, "DROP TRIGGER result_rows_no_update")
     _refused(planned, runner, "guard 'result_rows_no_update' is missing")
 
 
@@ -177,9 +183,7 @@ def test_a_ledger_of_schema_1_is_chained_when_opened(tmp_path):
 def test_an_added_trigger_with_a_name_like_sqlites_own_is_found(planned, runner):
     # LIKE 'sqlite_%' would let 'sqlitex_...' through ('_' is a wildcard); such a trigger
     # could rewrite every forced opening as it is recorded.
-    db = sqlite3.connect(planned / "ledger.sqlite")
-    db.execute("CREATE TRIGGER sqlitex_quiet BEFORE INSERT ON events BEGIN SELECT 1; END")
-    db.close()
+    _raw(planned, "CREATE TRIGGER sqlitex_quiet BEFORE INSERT ON events BEGIN SELECT 1; END")
     _refused(planned, runner, "'sqlitex_quiet', which ringplan never made")
 
 
@@ -198,9 +202,7 @@ def test_an_emptied_ledger_beside_planned_rounds_is_refused_not_started_again(pl
 
 
 def test_a_schema_version_set_back_by_hand_is_one_line(planned, runner):
-    db = sqlite3.connect(planned / "ledger.sqlite")
-    db.execute("PRAGMA user_version = 1")
-    db.close()
+    _raw(planned, "PRAGMA user_version = 1")
     result = run_cli(runner, "status", planned, "--round", ROUND)
     assert result.exit_code == 2 and "schema version (1) was altered" in result.stderr
     assert "Traceback" not in result.output
