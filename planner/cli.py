@@ -150,11 +150,21 @@ def new(folder: Annotated[Path, typer.Argument(help="A new study folder to creat
     target = folder / "study.yaml"
     if target.exists():
         raise PlannerError(f"{target} already exists; edit it, or choose a new folder")
-    folder.mkdir(parents=True, exist_ok=True)
+    bad = next((p for p in (folder, *folder.parents) if p.exists() and not p.is_dir()), None)
+    if bad is not None:
+        raise PlannerError(f"{bad} is a file, not a folder; choose a folder name that is free",
+                           _where(bad))
     text = template_path("study.yaml").read_text(encoding="utf-8")
     tmp = target.with_name(".study.yaml.tmp")
-    tmp.write_text(text, encoding="utf-8")
-    tmp.replace(target)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(target)
+    except OSError as exc:
+        if tmp.parent.is_dir():
+            tmp.unlink(missing_ok=True)
+        raise PlannerError(f"cannot write the study folder ({(exc.strerror or 'error').lower()})",
+                           _where(folder)) from None
     typer.echo(f"wrote {target}; edit it, then run: ringplan check {folder}")
 
 

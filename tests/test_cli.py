@@ -181,3 +181,11 @@ def test_a_label_shift_that_no_printer_needs_is_refused(example_dir, runner, val
     result = run_cli(runner, "print", example_dir, "--round", "R", "--offset-x", value)
     assert result.exit_code == 2 and "is not a usable shift" in result.stderr
     assert "Traceback" not in result.output
+
+
+@pytest.mark.parametrize("name", ["taken", "taken/sub"])
+def test_new_where_a_file_stands_is_one_line(tmp_path, runner, name):
+    (tmp_path / "taken").write_text("a file\n")
+    result = run_cli(runner, "new", tmp_path / name)
+    assert result.exit_code == 2 and "is a file, not a folder" in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.output
