@@ -134,6 +134,11 @@ def unseal_key(sealed: bytes, passphrase: str, *, name: str = SEALED_NAME) -> by
     except (ValueError, KeyError, TypeError, AttributeError):
         raise SealError("this is not a sealed ringplan key or it is damaged; restore it from "
                         "your backup", where) from None
+    if params != _SCRYPT or len(salt) != 16 or len(nonce) != 12:
+        # A header edited to other scrypt costs would make opening fail oddly, or take
+        # hours and gigabytes: only the cost ringplan seals with is read.
+        raise SealError("the sealed key's header was altered (its scrypt cost or sizes are "
+                        "not the ones ringplan writes); restore it from your backup", where)
     aes_key, check = _derive(passphrase, salt, params)
     if not hmac.compare_digest(check, verifier):
         raise SealError("wrong passphrase for this key; use the passphrase given when the round "

@@ -77,3 +77,13 @@ def test_read_key_json_returns_the_bytes_whatever_key_fingerprint_says(tmp_path)
     (tmp_path / seal.KEY_NAME).unlink()
     with pytest.raises(SealError, match="has not been unsealed yet"):
         seal.read_key_json(tmp_path)
+
+
+@pytest.mark.parametrize("field, value", [("n", 3), ("n", 2 ** 30), ("r", 0), ("p", -1)])
+def test_a_sealed_key_with_an_altered_scrypt_cost_is_one_clear_error(field, value):
+    from planner.errors import SealError
+
+    sealed = json.loads(seal.seal_key(b'{"a":1}', "maple tide lantern"))
+    sealed["kdf"][field] = value
+    with pytest.raises(SealError, match="header was altered"):
+        seal.unseal_key(json.dumps(sealed).encode(), "maple tide lantern")
