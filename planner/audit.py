@@ -197,6 +197,23 @@ def open_key(folder: Path, ledger: Ledger, round_id: str, *, passphrase: str,
     return key
 
 
+def _check_recipients(ledger: Ledger, round_id: str, info: Mapping[str, Any],
+                      where: Where) -> None:
+    """Raise SealError when the envelope is not sealed to the trustees planning recorded."""
+    planned = ledger.events(round_id, "planned")
+    sealing = planned[-1].detail.get("sealing") if planned else None
+    if not sealing or sealing.get("kind") != "trustees":
+        raise SealError("this round was planned with a passphrase, but its key.sealed is sealed "
+                        "for trustees; it was replaced after planning", where)
+    recorded = sealing.get("keys")
+    if (info["threshold"] != sealing.get("threshold")
+            or info["recipients"] != list(sealing.get("trustees") or ())
+            or (recorded is not None and info["keys"] != recorded)):
+        raise SealError("key.sealed is not sealed to the trustees planning recorded (their "
+                        "ids, keys or threshold differ); it was replaced after planning, for "
+                        "example by the host's copy", where)
+
+
 def _read_sealed(path: Path) -> bytes:
     try:
         return path.read_bytes()
@@ -234,6 +251,8 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
                             f"from {info['threshold']} of them "
                             f"({', '.join(info['recipients'])})",
                             Where(str(folder / seal.SEALED_NAME)))
+        _check_recipients(ledger, round_id, trustees.envelope_info(sealed),
+                          Where(str(folder / seal.SEALED_NAME)))
         key = dict(json.loads(trustees.open_envelope(sealed, releases)))
         released = sorted({str(json.loads(r).get("id")) for r in releases})
     else:

@@ -353,7 +353,8 @@ def plan(
         con.print(f"the key is sealed for the trustees "
                   f"{', '.join(x.id for x in study.sealing.trustees)} (any "
                   f"{study.sealing.threshold} open it) and a copy for the host {host}, who prints "
-                  "its labels and preparation sheet with --host-key")
+                  "its labels and preparation sheet with --host-key; the host's key opens the "
+                  "whole map, so keep it with the host alone")
 
 
 def _date_option(name: str, value: str | None) -> date | None:

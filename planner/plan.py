@@ -567,8 +567,12 @@ def sealing_of(study: Study) -> dict[str, Any]:
     """Return how a round of the study is sealed, as the ledger and the documents say it."""
     if study.sealing is None:
         return {"kind": "passphrase"}
+    from planner.sealing import trustees
+
+    # The keys' digests too: unseal holds the sealed file to exactly these recipients.
     return {"kind": "trustees", "threshold": study.sealing.threshold,
-            "trustees": [t.id for t in study.sealing.trustees]}
+            "trustees": [t.id for t in study.sealing.trustees],
+            "keys": {t.id: trustees.key_digest(t.public_key) for t in study.sealing.trustees}}
 
 
 def seal_round_key(study: Study, plan: RoundPlan, key_json: bytes, *,

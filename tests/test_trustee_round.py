@@ -147,3 +147,19 @@ def test_the_host_issues_a_spare_with_its_own_copy_and_status_shows_it(trustee_r
     shown = " ".join(run_cli(runner, "status", study, "--round", ROUND).stdout.split())
     assert "to issue spare" in shown and "labs/tor/labels.pdf" in shown
     assert "sealed for 3 trustees (t1, t2, t3), any 2 of whom open it together" in shown
+
+
+def test_the_hosts_copy_put_in_place_of_the_trustees_is_refused(trustee_round, runner):
+    # The coordinator copies the host's copy over key.sealed and asks the host alone for a
+    # release: the envelope is not sealed to the trustees planning recorded.
+    study, tmp_path, words = trustee_round
+    folder = plan.round_dir(study, ROUND)
+    (folder / "key.sealed").write_bytes((folder / plan.HOST_SEALED_NAME).read_bytes())
+    out = tmp_path / "release-kal.json"
+    assert run_cli(runner, "trustee", "release", folder / "key.sealed", "--key",
+                   tmp_path / "kal.pem", "--out", out, "--passphrase-file", words).exit_code == 0
+    tried = run_cli(runner, "unseal", study, "--round", ROUND, "--force", "--reason", "early",
+                    "--release", out)
+    assert tried.exit_code == 2
+    assert "not sealed to the trustees planning recorded" in tried.stderr
+    assert not (folder / "key.json").exists()

@@ -4,6 +4,7 @@ release that is damaged, changed, for another round or of no trustee is one clea
 from __future__ import annotations
 
 import base64
+import hashlib
 import itertools
 import json
 import shutil
@@ -321,8 +322,11 @@ def test_the_envelope_and_release_have_the_documented_fields(pairs):
     assert released == seal.canonical(json.loads(released))
     assert set(json.loads(released)) == {"format", "context", "id", "index", "share"}
     assert json.loads(released)["format"] == "ringplan-release/1"
-    assert trustees.envelope_info(sealed) == {"context": doc["context"], "threshold": 2,
-                                              "recipients": ["t1", "t2", "t3"]}
+    assert trustees.envelope_info(sealed) == {
+        "context": doc["context"], "threshold": 2, "recipients": ["t1", "t2", "t3"],
+        # SHA-256 of each raw public key, first 16 hex digits (hashlib, independently)
+        "keys": {r["id"]: hashlib.sha256(trustees.parse_public_key(r["public_key"])
+                                         ).hexdigest()[:16] for r in doc["recipients"]}}
 
 
 def test_the_envelope_holds_no_share_and_no_key_in_the_clear(pairs):

@@ -287,7 +287,15 @@ def envelope_info(data: bytes) -> dict[str, Any]:
     that is not a well-formed envelope."""
     envelope = _read_envelope(data)
     return {"context": dict(envelope.context), "threshold": envelope.threshold,
-            "recipients": [r.id for r in envelope.recipients]}
+            "recipients": [r.id for r in envelope.recipients],
+            "keys": {r.id: key_digest(r.public_key) for r in envelope.recipients}}
+
+
+def key_digest(public_key: bytes | str) -> str:
+    """Return a short SHA-256 (16 hex digits) of a public key, raw bytes or as study.yaml
+    writes it, for the ledger to remember whom a round's key was sealed to."""
+    raw = parse_public_key(public_key) if isinstance(public_key, str) else public_key
+    return hashlib.sha256(raw).hexdigest()[:16]
 
 
 def _read_envelope(data: bytes) -> _Envelope:
