@@ -271,6 +271,9 @@ def history_command(
         con.print(_table("Mean z per round (* hosted)", ["laboratory", *rounds], rows))
     else:
         con.print("no round of this study has been evaluated yet ('ringplan evaluate' makes one)")
+    for name in record.get("missing_statistics", ()):
+        con.print(f"round {name} was evaluated, but its report/statistics.json is missing; it "
+                  "is left out here (evaluate it again to restore the file)")
     effect = record["host_effect"]
     for lab, item in effect["labs"].items():
         con.print(item["statement"])

@@ -164,11 +164,16 @@ def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = ()
                 "mean_bias_pct": _mean(e["bias_pct"] for e in materials.values()),
             }
         table[lab] = {"rounds": per_round, "hosted": [k for k, v in per_round.items() if v["hosted"]]}
+    # Rounds the ledger evaluated whose statistics file is gone: said, not silently dropped.
+    shown = {r["round"] for r in rounds}
+    lost = sorted({row.round for row in ledger.rounds() if ledger.events(row.round, "evaluated")}
+                  - shown) if ledger is not None else []
     return {
         "format": HISTORY_FORMAT,
         "rounds": [{"round": r["round"], "host": r["host"], "date": r["date"]} for r in rounds],
         "labs": table,
         "host_effect": estimate_host_effect(table),
+        "missing_statistics": lost,
     }
 
 

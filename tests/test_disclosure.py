@@ -262,3 +262,15 @@ def test_history_refuses_statistics_copied_into_a_round_never_evaluated(forced, 
     assert len(lines) == 1 and lines[0] == (
         f"error: {fake}: the ledger records no evaluation of round '2027-9', so 'ringplan "
         "evaluate' did not write this file here; remove it, or evaluate the round")
+
+
+def test_history_says_when_an_evaluated_round_lost_its_statistics(forced, tmp_path, runner):
+    # Deleting a round's statistics must not make its scores vanish from the record quietly.
+    study_dir = _copy(forced, tmp_path)
+    (_report(study_dir) / "statistics.json").unlink()
+    result = run_cli(runner, "history", study_dir, "--no-pdf")
+    assert result.exit_code == 0, result.stderr
+    assert (f"round {ROUND} was evaluated, but its report/statistics.json is missing"
+            in " ".join(result.stdout.split()))
+    as_json = json.loads(run_cli(runner, "history", study_dir, "--json", "--no-pdf").stdout)
+    assert as_json["missing_statistics"] == [ROUND] and as_json["rounds"] == []
