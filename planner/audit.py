@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, plan, seal
+from planner import circulate, files, plan, seal
 from planner.errors import LedgerError, SealError, Where
 
 if TYPE_CHECKING:
@@ -267,6 +267,8 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
                         f"{key.get('round')!r}, not to this round", Where(str(folder)))
     key_json = seal.canonical(key)
     planned = check_fingerprint(folder, ledger, round_id, key_json, source=seal.SEALED_NAME)
+    # a link where key.json goes is refused before the opening is recorded
+    files.check_paths([target], root=study_dir)
     if not completing:
         # The opening is recorded (and committed) before key.json exists: no opened key
         # without its disclosure, even if the process is stopped right after.
@@ -276,7 +278,7 @@ def unseal_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
                 "reason": reason if force and missing else None, "missing": missing,
                 "sealing": "trustees" if released else "passphrase",
                 "releases": released})
-    seal.write_private(target, key_json)
+    files.write_bytes(target, key_json, root=study_dir, private=True)
     return target
 
 
@@ -376,7 +378,8 @@ def verify_key(key_json: bytes, manifest: Mapping[str, Any], *, fingerprint: str
         differences.append("key.json: its frame (laboratories, materials, design) is not the "
                            "round as planned")
     rebuilt = plan.build_units(frame, host=host, secret=secret,
-                               taken=set(key.get("skipped") or ()))
+                               taken=set(key.get("skipped") or ()),
+                               spares_in_parcels=plan.parcel_spares(key))
     found = plan.units_from_key(key)
     differences += plan.compare_units(rebuilt, found)
     published = plan.manifest_runs(dict(manifest))

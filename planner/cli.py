@@ -35,7 +35,22 @@ _F = TypeVar("_F", bound=Callable[..., Any])
 
 StudyDir = Annotated[Path, typer.Argument(metavar="STUDY_DIR",
                                           help="The study folder (holds study.yaml).")]
-RoundOpt = Annotated[str, typer.Option("--round", help="The round id, e.g. 2027-1.")]
+
+
+def _round_id(value: str | None) -> str | None:
+    """Check --round as soon as it is read: one line and exit status 2 for an id that is
+    not one (a path such as '../x', '' or 'a/b'), before anything is opened."""
+    from planner import spec
+
+    if value is not None and not spec.slug_ok(value):
+        _fail(f"--round {value!r} is not a usable round id; use letters, digits, '-', '_' "
+              "or '.', e.g. 2027-1")
+        raise typer.Exit(2)
+    return value
+
+
+RoundOpt = Annotated[str, typer.Option("--round", help="The round id, e.g. 2027-1.",
+                                       callback=_round_id)]
 PassFile = Annotated[Path | None, typer.Option(
     "--passphrase-file", help="Read the key passphrase from this file (first line). "
     "Otherwise RINGPLAN_PASSPHRASE, otherwise a hidden prompt.")]
@@ -58,6 +73,16 @@ def _command(func: _F) -> _F:
         except PlannerError as exc:
             for line in str(exc).splitlines():
                 _fail(line)
+            raise typer.Exit(2) from None
+        except OSError as exc:
+            # The last net under planner.files: what a user's disk refuses (rights, a
+            # read-only or full disk, a file in the way) is one line; any other OSError
+            # is our bug and keeps its traceback.
+            from planner import files
+
+            if exc.errno not in files.USER_ERRNOS:
+                raise
+            _fail(str(files.explain(exc)))
             raise typer.Exit(2) from None
     return wrapper  # type: ignore[return-value]
 
@@ -139,12 +164,22 @@ def _round_study(study_dir: Path, round_id: str, ledger: Any) -> Any:
     return plan.round_study(study_dir, round_id, ledger)
 
 
+def _tidy(study_dir: Path, round_id: str) -> tuple[list[Any], list[Any]]:
+    """Remove the temporary files that stopped commands left in the round folder; return
+    (removed, kept) as ``files.remove_stale`` does."""
+    from planner import files
+    from planner import plan as planning
+
+    return files.remove_stale(planning.round_dir(study_dir, round_id))
+
+
 # --- commands ------------------------------------------------------------------
 
 @app.command()
 @_command
 def new(folder: Annotated[Path, typer.Argument(help="A new study folder to create.")]) -> None:
     """Write a new study folder with a fully commented study.yaml to edit."""
+    from planner import files
     from planner.resources import template_path
 
     target = folder / "study.yaml"
@@ -155,16 +190,7 @@ def new(folder: Annotated[Path, typer.Argument(help="A new study folder to creat
         raise PlannerError(f"{bad} is a file, not a folder; choose a folder name that is free",
                            _where(bad))
     text = template_path("study.yaml").read_text(encoding="utf-8")
-    tmp = target.with_name(".study.yaml.tmp")
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-        tmp.write_text(text, encoding="utf-8")
-        tmp.replace(target)
-    except OSError as exc:
-        if tmp.parent.is_dir():
-            tmp.unlink(missing_ok=True)
-        raise PlannerError(f"cannot write the study folder ({(exc.strerror or 'error').lower()})",
-                           _where(folder)) from None
+    files.write_text(target, text, root=folder, private=False)
     typer.echo(f"wrote {target}; edit it, then run: ringplan check {folder}")
 
 
@@ -201,6 +227,10 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
     _print_schedule(con, info["schedule"])
     if info.get("route"):
         _print_route(con, info["route"])
+    for text in info["warnings"]:
+        typer.echo(f"warning: {text}", err=True)
+    for text in info["notes"]:
+        typer.echo(f"note: {text}", err=True)
     con.print("study spec is valid")
 
 
@@ -312,14 +342,11 @@ def plan(
     passphrase_file: PassFile = None,
 ) -> None:
     """Draw codes and run orders for a round, seal the key, write the round folder."""
-    from planner import draw, overview, rotation, spec
+    from planner import draw, overview, rotation
     from planner import plan as planning
     from planner.ledger import Ledger
 
     study = _load(study_dir)
-    if not spec.slug_ok(round_id):
-        raise PlannerError(f"--round {round_id!r} is not a usable round id; use letters, digits, "
-                           "'-', '_' or '.', e.g. 2027-1")
     when = _date_option("--receive-by", receive_by)
     if when is not None and when < date.today():
         typer.echo(f"warning: --receive-by {when} is in the past; the round's dates are "
@@ -350,6 +377,10 @@ def plan(
         _print_route(con, route.to_json())
     con.print(f"fingerprint {result.fingerprint}")
     con.print(f"wrote {folder}")
+    for text in overview.warnings(study):
+        typer.echo(f"warning: {text}", err=True)
+    for text in overview.notes(study):
+        typer.echo(f"note: {text}", err=True)
     if study.sealing is None:
         con.print("keep the passphrase safe: without it the key cannot be opened")
     else:
@@ -410,7 +441,8 @@ def verify(
     study_dir: Annotated[Path | None, typer.Argument(
         help="The study folder (leave out with --key and --manifest).")] = None,
     round_id: Annotated[str | None, typer.Option(
-        "--round", help="The round id, e.g. 2027-1 (with the study folder).")] = None,
+        "--round", help="The round id, e.g. 2027-1 (with the study folder).",
+        callback=_round_id)] = None,
     fingerprint: Annotated[str | None, typer.Option(
         help="The round fingerprint as printed on your packing list (spaces and case do not "
         "matter); key.json must have this SHA-256.")] = None,
@@ -530,6 +562,7 @@ def receive(
 
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
+        _tidy(study_dir, round_id)
         receipts = returns.receive(study, study_dir, round_id, files, ledger, lab=lab,
                                    check_only=check_only, after_unseal=after_unseal,
                                    reason=reason, _pause=_test_pause())
@@ -571,6 +604,7 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
     """Show per laboratory whether results are in, and whether the key may be opened."""
     from dataclasses import asdict
 
+    from planner import plan as planning
     from planner import status as standing
     from planner.ledger import Ledger
 
@@ -578,8 +612,10 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
         study = _round_study(study_dir, round_id, ledger)
         info = standing.round_status_table(study, study_dir, round_id, ledger,
                                            today=date.today())
+    left = standing.leftovers(planning.round_dir(study_dir, round_id),
+                              *_tidy(study_dir, round_id))
     if as_json:
-        _print_json(asdict(info))
+        _print_json({**asdict(info), "leftovers": left})
         return
     con = _console()
     con.print(_table(
@@ -601,6 +637,8 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
         con.print("the key may be opened: every laboratory has reported; run 'ringplan unseal'")
     else:
         con.print("the key stays sealed: waiting for " + ", ".join(info.waiting_for))
+    for line in standing.describe_leftovers(left):
+        con.print(line, markup=False)
 
 
 @app.command()
@@ -614,7 +652,7 @@ def spare(
     host_key: Annotated[Path | None, typer.Option(
         "--host-key", help="The host's private key, for a round sealed for trustees.")] = None,
 ) -> None:
-    """Tell a laboratory which of its spare codes replaces a damaged or failed unit."""
+    """Pick the unit the host sends to replace a laboratory's damaged or failed unit."""
     from planner import audit, codes, spares
     from planner import plan as planning
     from planner.ledger import Ledger
@@ -630,9 +668,19 @@ def spare(
                              host_key=_read_bytes(host_key) if host_key else None)
         swap = spares.issue_spare(study, study_dir, round_id, ledger, lab=lab, damaged=damaged,
                                   key=key)
-    typer.echo(f"laboratory {swap.lab}: use spare {codes.format(swap.spare)} in place of "
-               f"{codes.format(swap.damaged)} (trial {swap.trial}, position {swap.position}); "
-               "report its result under the spare's code")
+    sent = codes.format(swap.spare)
+    # The first lines are for the coordinator and the host only: the unit and where it
+    # comes from would tell the laboratory more than that a replacement is coming.
+    typer.echo("for the coordinator and the host only:")
+    typer.echo(f"  host {swap.host}: send unit {sent} to laboratory {swap.lab}"
+               + (" (a retained unit: the host's spares of this material are all issued)"
+                  if swap.source == "retained" else " (a spare)"))
+    typer.echo(f"  its label says 'spare' and no laboratory; to print it: ringplan print "
+               f"{study_dir} --round {round_id} --codes {sent}")
+    typer.echo(f"tell laboratory {swap.lab}: a replacement for unit "
+               f"{codes.format(swap.damaged)} is on its way from the host; test it in that "
+               f"unit's place (trial {swap.trial}, run {swap.position}) and report its result "
+               "under the code on its label")
 
 
 @app.command()
@@ -645,6 +693,7 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
 
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
+        _tidy(study_dir, round_id)
         folder = evaluation.evaluate_round(study, study_dir, round_id, ledger,
                                            workers=min(2, os.cpu_count() or 1))
     result = json.loads((folder / evaluation.STATISTICS_NAME).read_text(encoding="utf-8"))
@@ -825,7 +874,8 @@ def demo(out: Annotated[Path | None, typer.Argument(
 def print_documents(
     study_dir: StudyDir,
     round_id: Annotated[str | None, typer.Option(
-        "--round", help="The round id, e.g. 2027-1 (not needed with --calibration).")] = None,
+        "--round", help="The round id, e.g. 2027-1 (not needed with --calibration).",
+        callback=_round_id)] = None,
     only: Annotated[str | None, typer.Option(
         help="Print one kind: labels, prep, packing, runsheets or forms.")] = None,
     lab: Annotated[str | None, typer.Option(help="Print for one laboratory only.")] = None,
@@ -847,7 +897,7 @@ def print_documents(
         "host's own copy of the key; --passphrase-file then gives its passphrase).")] = None,
 ) -> None:
     """Print the labels, prep sheet, packing lists, run sheets and result forms of a round."""
-    from planner import audit, render, seal
+    from planner import audit, files, intake, render, seal
     from planner import plan as planning
     from planner.ledger import Ledger
 
@@ -874,6 +924,12 @@ def print_documents(
     manifest = planning.read_manifest(folder)
     wanted, geometry = render.check_options(study, study_dir, manifest, only=only, lab=lab,
                                             codes=chosen, sheet=sheet)
+    _tidy(study_dir, round_id)
+    # a link, or a file where a folder belongs, is named before the key is asked for or its
+    # use recorded (planner.files)
+    files.check_paths([folder / name for name in render.planned_documents(
+        study, manifest, wanted=wanted, labels=geometry is not None, lab=lab, codes=chosen)],
+        root=study_dir)
     # the key must match the fingerprint recorded in the ledger, so that no document is
     # printed with a fingerprint someone wrote into the manifest afterwards
     with Ledger.open(study_dir, create=False) as ledger:
@@ -901,13 +957,37 @@ def print_documents(
                 "only": only, "lab": lab, "codes": chosen, "start_at": start_at,
                 "sheet": sheet or study.study.label_sheet, "offset_mm": list(offset),
                 "key_used": key is not None})
+        issued = intake.issued_spares(ledger, round_id)  # a retained unit sent: a spare label
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
-                               workers=min(2, os.cpu_count() or 1))
+                               workers=min(2, os.cpu_count() or 1), issued=set(issued))
     for path in paths:
         typer.echo(f"wrote {path}")
 
 
+def _is(exc: BaseException, name: str) -> bool:
+    """Return whether ``exc`` is a click exception of class ``name`` (click may come with
+    typer or on its own, so the class is matched by name)."""
+    return any(k.__name__ == name for k in type(exc).__mro__)
+
+
 def main() -> None:
-    """Entry point of the ``ringplan`` console script."""
-    app()
+    """Entry point of the ``ringplan`` console script: a usage error is one line, exit 2."""
+    try:
+        code = app(standalone_mode=False, prog_name="ringplan")
+    except Exception as exc:
+        if _is(exc, "Abort"):
+            typer.echo("error: stopped", err=True)
+            sys.exit(1)
+        if not _is(exc, "ClickException"):
+            raise
+        if _is(exc, "NoArgsIsHelpError"):  # plain 'ringplan': the help, as --help shows it
+            typer.echo(exc.format_message())  # type: ignore[attr-defined]
+            sys.exit(0)
+        message = " ".join(str(exc.format_message()).split()).rstrip(".")  # type: ignore[attr-defined]
+        ctx = getattr(exc, "ctx", None)
+        hint = (f"; see '{ctx.command_path} --help'" if _is(exc, "UsageError") and ctx
+                else "")
+        typer.echo(f"error: {message}{hint}", err=True)
+        sys.exit(getattr(exc, "exit_code", 2))
+    sys.exit(code if isinstance(code, int) else 0)

@@ -3,8 +3,8 @@
 ``build_demo`` copies the bundled example study (the invented company Norrvik
 Polymers and five of its laboratories) into a folder and runs a whole round
 there, as the people of the study would: the coordinator plans it, the host
-prints the documents, one laboratory reports a damaged unit and gets a
-spare, every laboratory fills in its result form (in its own decimal
+prints the documents, one laboratory reports a damaged unit and the host
+sends it a spare, every laboratory fills in its result form (in its own decimal
 convention; one returns the spreadsheet instead of the CSV), the coordinator
 receives the forms, opens the key and evaluates.
 
@@ -22,12 +22,12 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
-import shutil
 from collections.abc import Callable, Mapping
 from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
 from typing import Any
 
+from planner import files
 from planner.errors import PlannerError, Where
 
 __all__ = ["build_demo", "check_target", "example_spec", "TRUE_VALUES", "BIASED", "BIAS", "PASSPHRASE",
@@ -86,9 +86,13 @@ def _secret(seed: int) -> bytes:
     return hashlib.sha256(f"ringplan demo round secret {seed}".encode()).digest()
 
 
-def _simulate(study: Any, units: Any, *, seed: int,
-              biased: str) -> dict[str, tuple[float, float | None]]:
-    """Return code -> (value, expanded uncertainty or None) for every test and spare unit."""
+def _simulate(study: Any, units: Any, *, seed: int, biased: str,
+              sent: Mapping[str, str]) -> dict[str, tuple[float, float | None]]:
+    """Return code -> (value, expanded uncertainty or None) for every test and spare unit.
+
+    A spare is measured by the laboratory it was ``sent`` to (spare code -> laboratory);
+    one still with the host, by the host.
+    """
     import numpy as np
 
     rng = np.random.Generator(np.random.PCG64(seed))
@@ -102,10 +106,11 @@ def _simulate(study: Any, units: Any, *, seed: int,
         if u.kind not in ("test", "spare"):
             continue
         true = TRUE_VALUES.get(u.material, 5.0)
-        x = true * (1 + bias[u.lab] + inter[(u.lab, u.material)]
+        lab = sent.get(u.code, u.lab)
+        x = true * (1 + bias[lab] + inter[(lab, u.material)]
                     + float(rng.normal(0.0, _REPEAT_SD)))
         value = float(f"{x:.4g}")
-        rel_u = _WITH_U.get(u.lab)
+        rel_u = _WITH_U.get(lab)
         out[u.code] = (value, float(f"{value * rel_u:.2g}") if rel_u else None)
     return out
 
@@ -175,7 +180,8 @@ def _fill_xlsx(source: Path, target: Path, values: Mapping[str, tuple[float, flo
         trial = int(sheet.cell(row=r, column=col["trial"]).value)
         sheet.cell(row=r, column=col["date"]).value = day_of(trial)
         sheet.cell(row=r, column=col["analyst"]).value = analyst
-    book.save(target)
+    files.write_atomic(target, lambda temp: book.save(temp), root=target.parent,
+                       private=False)
 
 
 def check_target(out: Path) -> None:
@@ -200,8 +206,8 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
 
     out = Path(out)
     check_target(out)
-    out.mkdir(parents=True, exist_ok=True)
-    shutil.copyfile(example_spec(), out / spec.SPEC_NAME)
+    files.write_bytes(out / spec.SPEC_NAME, example_spec().read_bytes(), root=out,
+                      private=False)
     study = spec.load(out)
     host = rotation.propose(study, overview.past_rounds(study, out), rounds=1)[0].host
     dates, route = planning.dates_for(study, host)
@@ -229,14 +235,14 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
                 "documents": [p.relative_to(folder).as_posix() for p in printed]})
 
         biased = next(lab for lab in BIASED if lab != host)
-        values = _simulate(study, result.units, seed=seed, biased=biased)
         manifest = planning.read_manifest(folder)
         clock.set(test_start)
         damaged = manifest["labs"][_DAMAGED_LAB]["trials"][0][0]
         swap = spares.issue_spare(study, out, ROUND, ledger, lab=_DAMAGED_LAB, damaged=damaged,
                                   key=key)
-        returned = out / "returned"
-        returned.mkdir()
+        values = _simulate(study, result.units, seed=seed, biased=biased,
+                           sent={swap.spare: swap.lab})
+        returned = files.make_folders(out / "returned", root=out)
         forms = []
         for lab in study.laboratories:
             lab_dir = folder / "labs" / lab.id
@@ -248,10 +254,11 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
             else:
                 target = returned / f"{lab.id}.csv"
                 text = (lab_dir / "result-form.csv").read_text(encoding="utf-8")
-                target.write_text(_fill_csv(text, values, decimal=lab.decimal,
-                                            swap={swap.damaged: swap.spare}
-                                            if lab.id == swap.lab else {},
-                                            day_of=day_of, analyst=analyst), encoding="utf-8")
+                files.write_text(target, _fill_csv(text, values, decimal=lab.decimal,
+                                                   swap={swap.damaged: swap.spare}
+                                                   if lab.id == swap.lab else {},
+                                                   day_of=day_of, analyst=analyst),
+                                 root=out, private=False)
             forms.append(target)
         clock.set(min(test_end + timedelta(days=1), due))
         receipts = returns.receive(study, out, ROUND, forms, ledger)

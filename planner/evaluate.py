@@ -39,7 +39,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, draw, plan, seal
+from planner import circulate, codes, draw, files, plan, seal
 from planner.errors import DataError, LedgerError, Where
 from planner.results import Unblinded
 
@@ -102,17 +102,22 @@ def _shown(code: str, raw: str) -> _Shown:
     return _Shown(code, raw)
 
 
-def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
+def unblind(key: Mapping[str, Any], results: Iterable[Any], *,
+            issued: Mapping[str, str] | None = None) -> list[Unblinded]:
     """Return the results joined to the key's units: material, lab, trial, code, value, flags.
 
     Each result (a mapping or an object) gives ``lab``, ``code``, ``value`` and
     optionally ``uncertainty``, ``trial`` (needed for a spare or a circulating
-    artefact) and ``flags`` ("late", "after-unseal", ...). Raises DataError for a code
+    artefact) and ``flags`` ("late", "after-unseal", ...). ``issued`` maps each unit
+    the host sent to replace a damaged one (a spare, or a retained unit once the
+    spares of its material were gone; ``intake.issued_spares``) to the laboratory it
+    went to; such a result is flagged "spare-used". Raises DataError for a code
     that is not in the key, belongs to another laboratory or to a unit nobody tests,
     a spare without a trial, or a unit (or material and trial) reported twice. Rows
     come sorted by material, laboratory and trial.
     """
     units = {u.code: u for u in plan.units_from_key(dict(key))}
+    sent = issued or {}
     host = str(key.get("host", ""))
     rows: list[Unblinded] = []
     seen: set[tuple[str, str]] = set()
@@ -128,10 +133,11 @@ def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
             raise DataError(f"laboratory {lab!r} reported code {shown}, which is not a unit of "
                             "this round; check the result form against the packing list")
         shared = unit.kind == "artefact"  # a circulating artefact is tested by everyone
-        if unit.lab != lab and not shared:
+        holder = sent.get(code, unit.lab)
+        if holder != lab and not shared:
             raise DataError(f"laboratory {lab!r} reported code {shown}, but that unit was sent "
-                            f"to {unit.lab!r}; check the result form")
-        if unit.kind not in ("test", "spare", "artefact"):
+                            f"to {holder!r}; check the result form")
+        if unit.kind not in ("test", "spare", "artefact") and code not in sent:
             raise DataError(f"code {shown} is a {unit.kind} unit kept by the host, not a "
                             f"unit to test; laboratory {lab!r} should not report it")
         if (lab, code) in seen and not shared:
@@ -147,7 +153,7 @@ def unblind(key: Mapping[str, Any], results: Iterable[Any]) -> list[Unblinded]:
                 raise DataError(f"{unit.kind} unit {shown} of {lab!r} has no trial; the result "
                                 "form line must say which trial it was tested in")
             trial = int(trial_raw)
-            if unit.kind == "spare":
+            if unit.kind == "spare" or code in sent:
                 flags.append("spare-used")
         slot = (unit.material, lab, trial)
         if slot in taken_slots:
@@ -448,13 +454,9 @@ def _missing_circulating(manifest: Mapping[str, Any], key: Mapping[str, Any],
     return out
 
 
-def _write_text(path: Path, text: str) -> None:
-    from planner.render import _layout
-
-    def write(temp: Path) -> None:
-        temp.write_text(text, encoding="utf-8")
-
-    _layout.write_atomic(path, write)
+def _write_text(path: Path, text: str, *, root: Path) -> None:
+    # report/ is owner-only until the coordinator sends it out (see planner.files)
+    files.write_text(path, text, root=root, private=True)
 
 
 # Row flags written by intake that name the same thing as ours.
@@ -513,6 +515,7 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     SealError when key.json does not match the published fingerprint, DataError when
     the results cannot be joined to the key.
     """
+    from planner import intake
     from planner import status as standing
     from planner.render import letter, report
 
@@ -533,6 +536,7 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
                           f"{key.get('round')!r}, not to this round", Where(str(folder)))
     manifest = plan.read_manifest(folder)
     opening = standing.read_key_history(ledger, round_id)
+    issued = intake.issued_spares(ledger, round_id)  # the units the host sent, and to whom
     accepted = (list(results) if results is not None else
                 accepted_results(study, ledger, round_id, manifest=manifest))
     if manifest.get("mode") == "circulate":
@@ -548,7 +552,7 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
         statistics = round_statistics(study, key, rows, visits=visits, opening=opening,
                                       missing=_missing_circulating(manifest, key, accepted))
     else:
-        rows = _ordered(unblind(key, accepted), study)
+        rows = _ordered(unblind(key, accepted, issued=issued), study)
         statistics = round_statistics(study, key, rows, missing=_missing(key, rows),
                                       opening=opening)
     # The record this evaluation rests on: the chain head goes onto every letter, so a
@@ -556,10 +560,14 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     head = ledger.head()
     statistics["ledger"] = {"link": head.seq, "at": head.at, "head": head.head}
     out = folder / REPORT_DIR
-    out.mkdir(parents=True, exist_ok=True)
-    _write_text(out / RESULTS_NAME, results_csv(rows))
+    # A link or a folder in the way is named before any file of the report is written.
+    files.check_paths([out / name for name in (RESULTS_NAME, STATISTICS_NAME, REPORT_NAME)]
+                      + [out / letter_name(lab.id) for lab in study.laboratories],
+                      root=study_dir)
+    _write_text(out / RESULTS_NAME, results_csv(rows), root=study_dir)
     _write_text(out / STATISTICS_NAME,
-                json.dumps(statistics, indent=1, ensure_ascii=False, allow_nan=False) + "\n")
+                json.dumps(statistics, indent=1, ensure_ascii=False, allow_nan=False) + "\n",
+                root=study_dir)
     # The bytes as they lie on disk, so that history can tell this file from an edited one.
     written = hashlib.sha256((out / STATISTICS_NAME).read_bytes()).hexdigest()
     paper = study.study.paper

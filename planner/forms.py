@@ -11,6 +11,15 @@ identity lines in the first cells of the rows above the header. An old-style
 
 ``read_form`` only reads: it keeps every cell as found, with its line (CSV) or
 row (XLSX), and leaves checking against the round to ``planner.intake``.
+
+A form is small (a row per unit), so a file that could only be an attack or a
+slip is refused before it is parsed: more than ``MAX_BYTES`` on disk, a workbook
+that would unpack to more than ``MAX_UNPACKED`` bytes, an XML part that declares
+a document type or entities (a spreadsheet program never writes them; they are
+how a few hundred bytes grow into gigabytes), more than ``MAX_ROWS`` rows. A cell
+of a workbook's table that holds a formula is refused too: its stored value is
+what the program computed when the file was last saved, not necessarily what the
+laboratory saw or meant.
 """
 
 from __future__ import annotations
@@ -25,11 +34,19 @@ from typing import Any
 
 from planner.errors import IntakeError, Where
 
-__all__ = ["IDENTITY_KEYS", "Form", "FormRow", "cell_text", "read_form"]
+__all__ = ["IDENTITY_KEYS", "MAX_BYTES", "MAX_ROWS", "MAX_UNPACKED", "Form", "FormRow",
+           "cell_text", "read_form"]
 
 IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
 """Identity lines a returned form must carry."""
 _MORE_IDENTITY = ("decimal", "measurand", "results due", "visit", "submission token")
+
+MAX_BYTES = 20_000_000
+"""Largest form file read, in bytes (a form of 20,000 rows is about 2 MB)."""
+MAX_UNPACKED = 200_000_000
+"""Largest total size of a workbook's parts once unpacked, in bytes."""
+MAX_ROWS = 100_000
+"""Most rows a form may have (a laboratory of a 30,000-unit round has a few thousand)."""
 
 _XLSX_MAGIC = b"PK\x03\x04"
 _OLD_XLS_MAGIC = b"\xd0\xcf\x11\xe0"
@@ -86,6 +103,11 @@ def read_form(path: Path) -> Form:
     """Return the form in a CSV or XLSX file; raise IntakeError if it cannot be read as one."""
     name = str(path)
     try:
+        size = Path(path).stat().st_size
+        if size > MAX_BYTES:
+            raise IntakeError(f"the file is {size:,} bytes, more than a result form can be "
+                              f"({MAX_BYTES:,}); send the form that 'ringplan plan' wrote",
+                              Where(name))
         data = Path(path).read_bytes()
     except OSError as exc:
         raise IntakeError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
@@ -125,6 +147,10 @@ def _read_csv(name: str, data: bytes) -> Form:
     if "\x00" in text:
         raise IntakeError("the file holds NUL bytes; it is not a CSV text file", Where(name))
     lines = text.splitlines()
+    if len(lines) > MAX_ROWS:
+        raise IntakeError(f"the file has {len(lines):,} lines, more than a result form can "
+                          f"have ({MAX_ROWS:,}); send the form that 'ringplan plan' wrote",
+                          Where(name))
     header_at = next((i for i, line in enumerate(lines)
                       if line.strip() and not line.lstrip(' "').startswith("#")), None)
     if header_at is None:
@@ -180,21 +206,40 @@ def _read_xlsx(name: str, data: bytes) -> Form:
 
     from planner.render.result_form import SHEET
 
+    _check_parts(name, data)
     try:
-        book = load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+        # data_only=False: a formula cell shows as a formula, not as its stored result
+        book = load_workbook(io.BytesIO(data), read_only=True, data_only=False)
     except (BadZipFile, KeyError, ValueError, OSError):
         raise IntakeError("this zip file is not an .xlsx workbook; save the form as .xlsx or "
                           "CSV", Where(name)) from None
+    except Exception as exc:  # noqa: BLE001 - a parser's error on a hostile file
+        raise IntakeError(f"the workbook cannot be read ({type(exc).__name__}); save the form "
+                          "again as .xlsx or send it as CSV", Where(name)) from None
     try:
         sheet = book[SHEET] if SHEET in book.sheetnames else book.worksheets[0]
-        grid = [tuple(row) for row in sheet.iter_rows(min_row=1, values_only=True)]
+        grid = _grid(name, sheet)
+    except IntakeError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - a parser's error on a hostile file
+        raise IntakeError(f"the workbook cannot be read ({type(exc).__name__}); save the form "
+                          "again as .xlsx or send it as CSV", Where(name)) from None
     finally:
         book.close()
     identity: list[tuple[str, str, int]] = []
     rows: list[FormRow] = []
     columns: tuple[str, ...] = ()
     header_line = 0
-    for number, raw in enumerate(grid, start=1):
+    for number, (raw, formulas) in enumerate(grid, start=1):
+        if columns and formulas and not (isinstance(raw[0], str)
+                                         and raw[0].lstrip().startswith("#")):
+            column = formulas[0]
+            named = columns[column] if column < len(columns) and columns[column] else None
+            raise IntakeError(
+                f"the cell in column {named or _letter(column)!r} holds a formula "
+                f"({str(raw[column])[:40]}); its stored result may not be what the laboratory "
+                "saw; type the number itself and save again", Where(name, None, f"row {number}"))
+        raw = tuple(None if i in formulas else c for i, c in enumerate(raw))
         cells = [cell_text(c) if not isinstance(c, (int, float, date)) else c for c in raw]
         filled = [c for c in cells if c not in (None, "")]
         if not filled:
@@ -222,6 +267,69 @@ def _read_xlsx(name: str, data: bytes) -> Form:
                           Where(name))
     return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
                 columns, len(columns), None, tuple(rows), data)
+
+
+def _check_parts(name: str, data: bytes) -> None:
+    """Refuse a workbook that unpacks too large or whose XML declares a DTD or entities,
+    reading each part as a stream and never more than MAX_UNPACKED bytes in all."""
+    from zipfile import BadZipFile, ZipFile
+
+    try:
+        with ZipFile(io.BytesIO(data)) as archive:
+            declared = sum(info.file_size for info in archive.infolist())
+            if declared > MAX_UNPACKED:
+                raise IntakeError(f"the workbook would unpack to {declared:,} bytes, more than "
+                                  f"a result form can be ({MAX_UNPACKED:,}); send the form that "
+                                  "'ringplan plan' wrote", Where(name))
+            total = 0
+            for info in archive.infolist():
+                if not info.filename.endswith((".xml", ".rels")):
+                    continue
+                tail = b""
+                with archive.open(info) as part:
+                    while chunk := part.read(1 << 16):
+                        total += len(chunk)
+                        if total > MAX_UNPACKED:
+                            raise IntakeError("the workbook unpacks to more than a result "
+                                              f"form can be ({MAX_UNPACKED:,} bytes); send "
+                                              "the form that 'ringplan plan' wrote", Where(name))
+                        window = tail + chunk
+                        if b"<!DOCTYPE" in window or b"<!ENTITY" in window:
+                            raise IntakeError(
+                                f"the workbook's part {info.filename!r} declares XML entities "
+                                "(<!DOCTYPE or <!ENTITY), which no spreadsheet program writes "
+                                "and which can make a small file expand without end; save the "
+                                "form again as .xlsx or send it as CSV", Where(name))
+                        tail = chunk[-16:]
+    except (BadZipFile, OSError, RuntimeError, ValueError, EOFError):
+        raise IntakeError("this zip file is not an .xlsx workbook (a part cannot be unpacked); "
+                          "save the form as .xlsx or CSV", Where(name)) from None
+
+
+def _grid(name: str, sheet: Any) -> list[tuple[tuple[Any, ...], tuple[int, ...]]]:
+    """Return (values, columns holding a formula) of every row, refusing more than MAX_ROWS."""
+    out = []
+    # A sheet's stored dimension may be wrong or forged; read every row the XML holds.
+    sheet.reset_dimensions()
+    for count, row in enumerate(sheet.iter_rows(min_row=1), start=1):
+        if count > MAX_ROWS:
+            raise IntakeError(f"the sheet {sheet.title!r} reaches past row {MAX_ROWS:,}, "
+                              "further than a result form can; delete what lies below the "
+                              "table, or send the form that 'ringplan plan' wrote", Where(name))
+        values = tuple(getattr(c, "value", None) for c in row)
+        formulas = tuple(i for i, c in enumerate(row) if getattr(c, "data_type", None) == "f")
+        out.append((values, formulas))
+    return out
+
+
+def _letter(index: int) -> str:
+    """Return the spreadsheet column letters of a 0-based column index (0 -> A, 26 -> AA)."""
+    text = ""
+    index += 1
+    while index:
+        index, rest = divmod(index - 1, 26)
+        text = chr(65 + rest) + text
+    return text
 
 
 def cell_text(value: Any) -> str:

@@ -4,7 +4,10 @@
 manifest and reports every problem at once, each as ``file:line: what is
 wrong``; a form with any problem is not recorded. Accepted forms are recorded
 by ``planner.returns``, spares are issued in ``planner.spares``, and
-``planner.status`` says where a round stands.
+``planner.status`` says where a round stands. A unit the host keeps (a spare, or
+a retained unit once the spares of its material are gone) is expected from a
+laboratory only after the ledger's ``spare-swap`` event issued it to that
+laboratory in place of a damaged unit.
 
 A circulating set (manifest ``mode: circulate``) is one set of artefacts that
 every laboratory measures: each artefact code appears once in every trial (the
@@ -17,7 +20,11 @@ set has no spares.
 Numbers follow the laboratory's ``decimal`` setting in the study (point or
 comma). A number with both marks, with a mark twice, or with spaces or
 apostrophes between digits is refused: thousands separators read differently
-from one country to the next, so they are ambiguous.
+from one country to the next, so they are ambiguous. The minus sign U+2212 reads
+as a minus; a dash before a number, a limit (``<0,5``) and a marker without
+digits (``n.d.``, ``ND``, ``-``) are refused with what was found, and the
+message says to leave the value empty and give the reason under remarks.
+Spaces around a number, no-break spaces included, are dropped.
 """
 
 from __future__ import annotations
@@ -45,6 +52,7 @@ __all__ = [
     "describe_slot",
     "expected_codes",
     "inspect_form",
+    "issued_spares",
     "spare_swaps",
 ]
 
@@ -80,8 +88,14 @@ class Checked:
 
 
 def spare_swaps(ledger: Ledger, round_id: str) -> dict[str, str]:
-    """Return damaged code -> spare code for every spare issued in a round."""
+    """Return damaged code -> spare code for every spare issued in a round, in issue order."""
     return {str(e.detail["damaged"]): str(e.detail["spare"])
+            for e in ledger.events(round_id, "spare-swap")}
+
+
+def issued_spares(ledger: Ledger, round_id: str) -> dict[str, str]:
+    """Return spare code -> the laboratory it was issued to, for every spare issued in a round."""
+    return {str(e.detail["spare"]): str(e.detail["lab"])
             for e in ledger.events(round_id, "spare-swap")}
 
 
@@ -103,15 +117,19 @@ def _last_spare(code: str, swaps: Mapping[str, str]) -> str:
     return code
 
 
-def _owners(manifest: Mapping[str, Any]) -> dict[str, tuple[str, str]]:
-    """Return code -> (laboratory, kind) for every code in the manifest."""
+def _owners(manifest: Mapping[str, Any], swaps: Mapping[str, str]) -> dict[str, tuple[str, str]]:
+    """Return code -> (laboratory, kind) for every code in the manifest, a unit the host sent
+    as a replacement (``swaps``, in issue order) belonging to the laboratory it went to."""
     out: dict[str, tuple[str, str]] = {}
     for lab, info in manifest["labs"].items():
         for run in info["trials"]:
             out.update((c, (lab, "test")) for c in run)
+        # a round planned while every parcel carried spares of each material
         out.update((c, (lab, "spare")) for c in info.get("spares", ()))
     for kind, found in manifest.get("host_units", {}).items():
         out.update((c, (str(manifest["host"]), kind)) for c in found)
+    for damaged, spare in swaps.items():
+        out[spare] = (out.get(damaged, ("", ""))[0], "spare")
     return out
 
 
@@ -151,7 +169,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         return _inspect_circulating(study, manifest, form, unsealed=unsealed, today=today,
                                     elsewhere=elsewhere)
     expected = expected_codes(manifest, form_lab, swaps)
-    owners = _owners(manifest)
+    owners = _owners(manifest, swaps)
     rows = form.rows
     mine = sum(1 for r in rows if codes.is_valid(str(r.get("code")))
                and codes.compact(str(r.get("code"))) in expected)
@@ -190,7 +208,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                                         f"{form.header_width}{hint}", where))
             continue
         code = _check_code(row, where, found, expected=expected, replaced=replaced,
-                           owners=owners, lab=form_lab, round_id=str(manifest["round"]),
+                           owners=owners, lab=form_lab, host=str(manifest["host"]),
+                           round_id=str(manifest["round"]),
                            elsewhere=elsewhere, first_seen=first_seen, form=form)
         value, uncertainty, remarks = _check_values(row, decimal, where, found)
         tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
@@ -402,7 +421,7 @@ def _check_artefact(row: forms.FormRow, where: Where, found: list[PlannerError],
     if isinstance(raw, bool):
         trial = None
     elif isinstance(raw, (int, float)):
-        trial = int(raw) if float(raw).is_integer() else None
+        trial = int(raw) if math.isfinite(raw) and float(raw).is_integer() else None
     else:
         trial = int(str(raw).strip()) if str(raw).strip().isdigit() else None
     if trial is None or not 1 <= trial <= trials:
@@ -498,7 +517,7 @@ def _read_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
 
 def _check_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
                 expected: Mapping[str, tuple[int, int]], replaced: Mapping[str, str],
-                owners: Mapping[str, tuple[str, str]], lab: str, round_id: str,
+                owners: Mapping[str, tuple[str, str]], lab: str, host: str, round_id: str,
                 elsewhere: Mapping[str, str], first_seen: dict[str, int],
                 form: forms.Form) -> str | None:
     """Return the row's compact code if it is this laboratory's; else note why and return None."""
@@ -521,6 +540,9 @@ def _check_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
     elif owner == (lab, "spare"):
         msg = (f"{shown} is a spare of this laboratory that was not issued; run 'ringplan spare' "
                "for the damaged unit first, or correct the code")
+    elif owner == (host, "spare"):
+        msg = (f"{shown} is a spare kept by the host that was not issued to laboratory {lab!r}; "
+               "run 'ringplan spare' for the damaged unit first, or correct the code")
     elif owner is not None and owner[1] in ("test", "spare"):
         msg = f"code {shown} belongs to laboratory {owner[0]!r}, not to {lab!r}"
     elif owner is not None:
@@ -544,7 +566,7 @@ def _check_slot(row: forms.FormRow, where: Where, found: list[PlannerError], *, 
             continue
         try:
             number = int(float(str(raw).replace(",", "."))) if not isinstance(raw, int) else raw
-        except ValueError:
+        except (ValueError, OverflowError):  # not a number, or 1e400 / inf
             number = None
         if number != want:
             given.append(f"{column} {raw!r}")
@@ -573,9 +595,10 @@ def _number(raw: Any, decimal: str, what: str) -> float:
     if isinstance(raw, (int, float)):
         value = float(raw)
     else:
-        text = str(raw).strip()
+        text = str(raw).strip().replace("\u2212", "-")  # the minus sign of typeset text
         mark = _MARK[decimal]
         other = "point" if decimal == "comma" else "comma"
+        _refuse_marker(text, what, decimal)
         if (_GROUPED.search(text) or ("." in text and "," in text)
                 or text.count(".") > 1 or text.count(",") > 1):
             raise IntakeError(
@@ -600,6 +623,20 @@ def _number(raw: Any, decimal: str, what: str) -> float:
         raise IntakeError(f"{what} {raw!r} is out of any plausible range (1e-100 to 1e100 in "
                           "size); check the number, or report in another unit")
     return value
+
+
+def _refuse_marker(text: str, what: str, decimal: str) -> None:
+    """Raise IntakeError for a cell that holds a marker or a limit where a number belongs."""
+    empty = (f"; leave the {what} empty" + (" and write it under remarks" if what == "value"
+                                              else ""))
+    if text[:1] in "<>\u2264\u2265":
+        raise IntakeError(f"{what} {text!r} is a limit, not a result, and cannot be scored{empty}")
+    if text[:1] in "\u2010\u2011\u2012\u2013\u2014" and any(c.isdigit() for c in text):
+        raise IntakeError(f"{what} {text!r} starts with a dash (U+{ord(text[0]):04X}), not a "
+                          f"minus sign; write {'-' + text[1:].strip()!r}")
+    if not any(c.isdigit() for c in text) and sum(c.isalpha() for c in text) <= 4:
+        raise IntakeError(f"{what} {text!r} is a marker (such as 'not determined'), not a "
+                          f"number{empty}")
 
 
 def _check_date(raw: Any, where: Where, found: list[PlannerError], *, start: date, end: date,

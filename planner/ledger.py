@@ -195,6 +195,25 @@ def _utc_now() -> datetime:
     return datetime.now(UTC)
 
 
+# SQLite's primary result codes of a disk that will not take the write.
+_SQLITE_PERM, _SQLITE_READONLY, _SQLITE_FULL, _SQLITE_CANTOPEN = 3, 8, 13, 14
+
+
+def _storage_problem(exc: BaseException, path: Path) -> LedgerError | None:
+    """Return the LedgerError for a ledger the disk will not let us write, else None."""
+    if not isinstance(exc, sqlite3.OperationalError):
+        return None
+    code = (getattr(exc, "sqlite_errorcode", 0) or 0) & 0xFF
+    if code in (_SQLITE_PERM, _SQLITE_READONLY, _SQLITE_CANTOPEN):
+        return LedgerError("the ledger cannot be written here (a read-only disk or folder, or "
+                           "not yours); make the study folder and the ledger writable by you, "
+                           "or work on a copy; nothing was recorded", Where(str(path)))
+    if code == _SQLITE_FULL:
+        return LedgerError("no space left on the disk for the ledger; free some space and run "
+                           "the command again; nothing was recorded", Where(str(path)))
+    return None
+
+
 class Ledger:
     """An open ledger file. Use as a context manager, or call close()."""
 
@@ -202,13 +221,22 @@ class Ledger:
                  create: bool = True) -> None:
         self.path = path
         self._clock = clock
-        self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
+        try:
+            self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
+        except sqlite3.OperationalError as exc:
+            problem = _storage_problem(exc, path)
+            if problem is not None:
+                raise problem from None
+            raise
         try:
             self.db.execute("PRAGMA foreign_keys = ON")
             self._migrate(create=create)
             self.check()
-        except BaseException:
+        except BaseException as exc:
             self.db.close()
+            problem = _storage_problem(exc, path)
+            if problem is not None:
+                raise problem from None
             raise
 
     @classmethod
@@ -286,6 +314,9 @@ class Ledger:
         try:
             self.db.execute("BEGIN IMMEDIATE")
         except sqlite3.OperationalError as exc:
+            problem = _storage_problem(exc, self.path)
+            if problem is not None:
+                raise problem from None
             raise LedgerError(f"the ledger is busy ({exc}); another ringplan command is "
                               "writing to it, try again when it has finished",
                               Where(str(self.path))) from None
@@ -293,11 +324,14 @@ class Ledger:
             yield self.db
             if self._has_chain():
                 self._link()
-        except BaseException:
-            self.db.execute("ROLLBACK")
-            raise
-        else:
             self.db.execute("COMMIT")
+        except BaseException as exc:
+            if self.db.in_transaction:  # SQLite ends some failed transactions itself
+                self.db.execute("ROLLBACK")
+            problem = _storage_problem(exc, self.path)
+            if problem is not None:
+                raise problem from None
+            raise
 
     # --- the chain -----------------------------------------------------------
 

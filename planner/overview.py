@@ -15,7 +15,7 @@ from planner import design
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["past_rounds", "summarize"]
+__all__ = ["notes", "past_rounds", "summarize", "warnings"]
 
 
 def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, date]]:
@@ -81,4 +81,29 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
         "next_host": {"host": host, "reason": proposals[0].reason},
         "schedule": dates.to_json(),
         "route": route.to_json() if route else None,
+        "warnings": warnings(study),
+        "notes": notes(study),
     }
+
+
+def warnings(study: Study) -> list[str]:
+    """Return what ``check`` and ``plan`` warn of: what could tell materials apart to a
+    laboratory (``parcel.tells``)."""
+    from planner import parcel
+
+    return parcel.tells(study)
+
+
+def notes(study: Study) -> list[str]:
+    """Return what ``check`` and ``plan`` note: what every unit carries because some
+    material needs it (``parcel.notes``), and balanced run orders that can balance only
+    approximately with these numbers (``design.balance_note``)."""
+    from planner import parcel
+
+    out = parcel.notes(study)
+    d = study.design
+    if d.run_order == "balanced" and d.mode == "split":
+        note = design.balance_note(len(study.laboratories), len(study.materials), d.trials)
+        if note:
+            out.append(f"balanced run orders: {note}")
+    return out

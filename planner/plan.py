@@ -21,8 +21,8 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, design, draw, seal, tokens
-from planner.errors import LedgerError, SealError, Where
+from planner import circulate, codes, design, draw, files, seal, tokens
+from planner.errors import LedgerError, PlannerError, SealError, Where
 
 if TYPE_CHECKING:
     from planner.calendar import RoundDates
@@ -36,7 +36,8 @@ __all__ = [
     "HOST_SEALED_NAME", "sealing_of", "seal_round_key",
     "Frame", "frame_of",
     "frame_from_key",
-    "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "compare_units",
+    "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "parcel_spares",
+    "compare_units",
     "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
     "expected_runs", "manifest_runs",
 ]
@@ -45,7 +46,10 @@ MANIFEST_NAME = "manifest.json"
 HOST_SEALED_NAME = "key.host.sealed"  # the host's own copy, with trustees
 KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
-_KEY_FORMAT = "ringplan-key/2"
+_KEY_FORMAT = "ringplan-key/3"
+# Keys of rounds planned while every parcel carried spares of each material (their spare
+# units belong to the laboratories); since ringplan-key/3 the host keeps every spare.
+_PARCEL_SPARE_FORMATS = frozenset({"ringplan-key/1", "ringplan-key/2"})
 _DEFINITION_FORMAT = "ringplan-round/1"
 
 
@@ -162,13 +166,21 @@ def run_orders(study: Study | Frame, *, host: str, secret: bytes
 
 
 def build_units(study: Study | Frame, *, host: str, secret: bytes,
-                taken: Iterable[str] = (), skipped: list[str] | None = None) -> tuple[Unit, ...]:
+                taken: Iterable[str] = (), skipped: list[str] | None = None,
+                spares_in_parcels: bool = False) -> tuple[Unit, ...]:
     """Return every unit of a round (tests, spares, retained, homogeneity) with codes and positions.
 
     Codes come from the secret's "codes" stream in a fixed unit order; run orders
     from its "orders" stream. A circulating set has one unit per material, the
     artefact, held by the host between stops. Codes in ``taken`` (issued in earlier
     rounds) are passed over and appended to ``skipped``.
+
+    Spares are a pool per material kept by the host (``spares_per_lab`` for each
+    laboratory), sent one at a time as replacements (``planner.spares``): a parcel
+    that carried spares of each material would let a laboratory learn from the
+    answers to its spare requests which of its units share a material.
+    ``spares_in_parcels`` rebuilds a round planned before that (``parcel_spares``),
+    whose spares belong to the laboratories; the codes are the same either way.
     """
     d = study.design
     material_ids = [m.id for m in study.materials]
@@ -182,8 +194,11 @@ def build_units(study: Study | Frame, *, host: str, secret: bytes,
                 for trial in range(1, d.trials + 1):
                     position = orders[(lab.id, trial)].index(material) + 1
                     skeleton.append((material, "test", lab.id, trial, position))
+            # One run per laboratory, as when spares went in the parcels, so that the
+            # codes drawn from a secret stay where they were.
             for lab in study.laboratories:
-                skeleton += [(material, "spare", lab.id, None, None)] * d.spares_per_lab
+                keeper = lab.id if spares_in_parcels else host
+                skeleton += [(material, "spare", keeper, None, None)] * d.spares_per_lab
             skeleton += [(material, "retained", host, None, None)] * d.retained_by_host
             skeleton += [(material, "homogeneity", host, None, None)] * d.homogeneity_units
     drawn = codes.new_codes(draw.Stream(secret, "codes"), len(skeleton), taken=set(taken),
@@ -246,6 +261,11 @@ def key_of(plan: RoundPlan) -> dict[str, Any]:
     }
 
 
+def parcel_spares(key: dict[str, Any]) -> bool:
+    """Return whether a key's round was planned with spares in the laboratories' parcels."""
+    return key.get("format") in _PARCEL_SPARE_FORMATS
+
+
 def units_from_key(key: dict[str, Any]) -> tuple[Unit, ...]:
     """Return the units written in a decoded key, sorted by code."""
     try:
@@ -280,22 +300,21 @@ def compare_units(expected: Iterable[Unit], found: Iterable[Unit]) -> list[str]:
 def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
     """Return the public manifest: per laboratory its codes by trial in run order, no materials.
 
-    A circulating round also carries its route, the host's later stops and the artefacts.
+    The units the host keeps (its spare pool, retained and homogeneity units) are listed
+    under ``host_units`` by kind. A manifest of a round planned while parcels carried
+    spares also lists each laboratory's ``spares``; intake still reads those. A
+    circulating round also carries its route, the host's later stops and the artefacts.
     """
     runs = expected_runs(study, host=plan.host, secret=plan.secret, units=plan.units)
     dates = plan.dates.to_json()["labs"]
-    spares: dict[str, list[str]] = {}
-    for u in plan.units:
-        if u.kind == "spare":
-            spares.setdefault(u.lab, []).append(u.code)
     out: dict[str, Any] = {
         **_manifest_head(study, plan),
-        "labs": {lab.id: {"trials": runs[lab.id], "spares": sorted(spares.get(lab.id, [])),
-                          **dates.get(lab.id, {})} for lab in study.laboratories},
+        "labs": {lab.id: {"trials": runs[lab.id], **dates.get(lab.id, {})}
+                 for lab in study.laboratories},
     }
     if plan.route is None:
         out["host_units"] = {kind: sorted(u.code for u in plan.units if u.kind == kind)
-                             for kind in ("retained", "homogeneity")}
+                             for kind in ("spare", "retained", "homogeneity")}
     else:
         out["route"] = plan.route.to_json()
         out["host_visits"] = {s.visit: runs[s.key] for s in plan.route.stations
@@ -469,7 +488,13 @@ def check_manifest(manifest: dict[str, Any], ledger: Ledger, round_id: str, *,
 
 
 def round_dir(study_dir: Path, round_id: str) -> Path:
-    """Return the folder of a round inside a study folder."""
+    """Return the folder of a round inside a study folder; raise PlannerError for a round id
+    that is not one (a path such as '../x', '' or 'a/b' would lead out of ``rounds/``)."""
+    from planner import spec
+
+    if not spec.slug_ok(round_id):
+        raise PlannerError(f"{round_id!r} is not a usable round id; use letters, digits, '-', "
+                           "'_' or '.', e.g. 2027-1")
     return Path(study_dir) / "rounds" / round_id
 
 
@@ -486,9 +511,8 @@ def read_manifest(folder: Path) -> dict[str, Any]:
                           Where(str(path))) from None
 
 
-def _write(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
+def _write(path: Path, text: str, *, root: Path) -> None:
+    files.write_text(path, text, root=root, private=False)
 
 
 def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, *,
@@ -523,22 +547,24 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
         # command mistakes them for the leftovers of a plan that was killed.
         with ledger.transaction():
             settle_round(study_dir, plan.round_id, ledger)
-            staging.mkdir(parents=True)
+            files.make_folders(staging, root=study_dir)
             _write(staging / MANIFEST_NAME,
-                   json.dumps(manifest, indent=1, ensure_ascii=False) + "\n")
-            seal.write_private(staging / seal.SEALED_NAME, sealed)
+                   json.dumps(manifest, indent=1, ensure_ascii=False) + "\n", root=study_dir)
+            files.write_bytes(staging / seal.SEALED_NAME, sealed, root=study_dir, private=True)
             if host_copy is not None:
-                seal.write_private(staging / HOST_SEALED_NAME, host_copy)
-            _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n")
+                files.write_bytes(staging / HOST_SEALED_NAME, host_copy, root=study_dir,
+                                  private=True)
+            _write(staging / seal.FINGERPRINT_NAME, plan.fingerprint + "\n", root=study_dir)
             token = {lab.id: tokens.submission_token(plan.secret, lab.id)
                      for lab in study.laboratories}
             for lab in study.laboratories:
                 _write(staging / "labs" / lab.id / "result-form.csv",
-                       result_form_csv(study, manifest, lab.id, token=token[lab.id]))
+                       result_form_csv(study, manifest, lab.id, token=token[lab.id]),
+                       root=study_dir)
             for visit, name in host_visit_forms(manifest):
                 _write(staging / "labs" / plan.host / name,
                        result_form_csv(study, manifest, plan.host, visit,
-                                       token=token[plan.host]))
+                                       token=token[plan.host]), root=study_dir)
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,
                 fingerprint=plan.fingerprint, dates=manifest["dates"],

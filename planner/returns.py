@@ -5,7 +5,8 @@ records each as a new version of its laboratory's submission; a form identical
 to the last version recorded changes nothing.
 
 Recording is one decision, the ledger commit. The form's bytes are first
-written (temp name, fsync, rename) to the round's hidden staging folder
+written (``files.write_bytes``: temp name, fsync, rename; owner-only and
+read-only, as are the receipts) to the round's hidden staging folder
 ``.intake/`` inside the ledger transaction, the commit follows, and only then
 is the file renamed into ``results/<sha256>.<ext>``. A process killed before
 the commit leaves the ledger and ``results/`` as they were (the staged copy is
@@ -17,14 +18,13 @@ ledger knows into ``results/``.
 from __future__ import annotations
 
 import os
-import secrets
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import forms, plan
+from planner import files, forms, plan
 from planner.errors import IntakeError, LedgerError, PlannerError, Where
 from planner.intake import Checked, condense, describe_slot, inspect_form, spare_swaps
 
@@ -82,18 +82,13 @@ def _results_name(sha256: str, kind: str) -> str:
     return f"{sha256}.{kind}"
 
 
-def _write_staged(path: Path, data: bytes) -> None:
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
-    try:
-        with open(tmp, "xb") as out:
-            out.write(data)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(tmp, 0o444)  # a received form is never changed
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
+def _study_of(round_folder: Path) -> Path:
+    return round_folder.parent.parent  # <study>/rounds/<round>
+
+
+def _write_staged(path: Path, data: bytes, *, root: Path) -> None:
+    # owner-only, and never changed: a received form is evidence
+    files.write_bytes(path, data, root=root, private=True, read_only=True)
 
 
 def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[str]:
@@ -116,7 +111,7 @@ def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[st
         if target.exists():
             item.unlink(missing_ok=True)
         else:
-            target.parent.mkdir(exist_ok=True)
+            files.make_folders(target.parent, root=_study_of(round_folder))
             os.replace(item, target)
             moved.append(item.name)
     return moved
@@ -268,6 +263,9 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     if check_only:
         return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
     staging, results = folder / STAGING_DIR, folder / RESULTS_DIR
+    # Links or files in the way are refused before anything is recorded.
+    files.make_folders(staging, root=study_dir)
+    files.make_folders(results, root=study_dir)
     staged: list[Path] = []
     try:
         with ledger.transaction():
@@ -278,10 +276,9 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
                 if last is not None and last.sha256 == form.sha256:
                     receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
                     continue
-                staging.mkdir(exist_ok=True)
                 target = staging / _results_name(form.sha256, form.kind)
                 if not target.exists():
-                    _write_staged(target, form.data)
+                    _write_staged(target, form.data, root=study_dir)
                     staged.append(target)
                 version = ledger.add_submission(
                     round_id=round_id, lab=str(checked.lab), sha256=form.sha256,
@@ -301,7 +298,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
         raise
     if _pause is not None:
         _pause("after-commit")
-    results.mkdir(exist_ok=True)
+    files.make_folders(results, root=study_dir)
     for path in staged:
         try:
             os.replace(path, results / path.name)
@@ -368,20 +365,10 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
             "long as the study lasts; 'ringplan chain DIR --link N' shows the head of link N.",
             "A ledger that does not has been rewritten since your form was recorded.",
         ]
-        (folder / RESULTS_DIR).mkdir(exist_ok=True)
-        _write_receipt(folder / name, "\n".join(lines) + "\n")
+        files.write_text(folder / name, "\n".join(lines) + "\n", root=_study_of(folder),
+                         private=True)
         out[(sub.lab, sub.version)] = (name, str(link))
     return out
-
-
-def _write_receipt(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.part")
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
 
 
 def _receipt(form: forms.Form, checked: Checked, last: Any, version: int | None,

@@ -19,7 +19,6 @@ import base64
 import hashlib
 import hmac
 import json
-import os
 import secrets
 from pathlib import Path
 from typing import Any
@@ -157,18 +156,12 @@ def unseal_key(sealed: bytes, passphrase: str, *, name: str = SEALED_NAME) -> by
 
 
 def write_private(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` atomically with owner-only permissions (0600)."""
-    tmp = path.with_name(f".{path.name}.{secrets.token_hex(4)}.tmp")
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    try:
-        with os.fdopen(fd, "wb") as out:
-            out.write(data)
-            out.flush()
-            os.fsync(out.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
+    """Write ``data`` to ``path`` atomically with owner-only permissions (0600); a link at
+    ``path`` is refused (``files.write_bytes``; inside a study folder, call that with the
+    study folder as root, so the folders on the way are checked too)."""
+    from planner import files
+
+    files.write_bytes(Path(path), data, root=Path(path).parent, private=True)
 
 
 def open_key(round_dir: Path, passphrase: str) -> dict[str, Any]:

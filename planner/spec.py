@@ -89,6 +89,12 @@ class Material(_Model):
     hazard: Hazard | None = None
 
 
+class Parcel(_Model):
+    """What every unit a laboratory receives shows, whatever its material (planner.parcel)."""
+
+    storage: str | None = Field(default=None, min_length=1, max_length=200)
+
+
 class Design(_Model):
     mode: Literal["split", "circulate"] = "split"
     trials: int = Field(ge=2, le=20)
@@ -220,6 +226,7 @@ class Study(_Model):
     study: StudyInfo
     laboratories: tuple[Lab, ...] = Field(min_length=2)
     materials: tuple[Material, ...] = Field(min_length=2)
+    parcel: Parcel | None = None
     design: Design
     schedule: Schedule
     evaluation: Evaluation = Evaluation()

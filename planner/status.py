@@ -27,11 +27,12 @@ from planner import circulate, codes, intake, plan, returns
 from planner.errors import LedgerError
 
 if TYPE_CHECKING:
+    from planner.files import Leftover
     from planner.ledger import Ledger, ResultRow, Submission
     from planner.spec import Study
 
 __all__ = ["RoundStatus", "round_status_table", "read_key_history", "describe_key",
-           "host_documents", "ledger_time", "HOST_FOLDER"]
+           "host_documents", "ledger_time", "HOST_FOLDER", "leftovers", "describe_leftovers"]
 
 HOST_FOLDER = "host/"
 """Where a round's host documents lie; printing them shows which material each code is."""
@@ -63,6 +64,7 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
                           "this study folder")
     due = date.fromisoformat(manifest["dates"]["results_due"])
     swaps = intake.spare_swaps(ledger, round_id)
+    issued_to = list(intake.issued_spares(ledger, round_id).values())
     unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
     key = read_key_history(ledger, round_id)
     if manifest.get("mode") == "circulate":
@@ -79,9 +81,9 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
         state = returns.slot_state(manifest, ledger, round_id, lab.id, swaps=swaps)
         got = [r for _, r in state.rows]
         missing = [codes.format(c) for c in state.outstanding]
-        spares = sum(1 for s in swaps.values() if s in manifest["labs"][lab.id].get("spares", ()))
         rows.append(_row(lab.id, history, got, expected=len(expected), missing=missing,
-                         spares=spares, today=today, due=due, merged=state.merged))
+                         spares=issued_to.count(lab.id), today=today, due=due,
+                         merged=state.merged))
     waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
                        tuple(rows), key)
@@ -265,3 +267,40 @@ def _row(slot: str, history: Sequence[Submission], got: Sequence[ResultRow], *, 
         "spares_issued": spares,
         "days_left": None if last else (due - today).days,
     }
+
+
+def leftovers(folder: Path, removed: Sequence[Leftover], kept: Sequence[Leftover]
+              ) -> dict[str, list[str]]:
+    """Return what stopped commands left in a round folder, as paths inside it.
+
+    ``removed``: temporary files removed now (``files.remove_stale``); ``kept``: those of a
+    process that still runs (or that could not be removed), each with its process id;
+    ``intake``: forms staged in ``.intake/``, which the next receive records or removes.
+    """
+    def inside(path: Path) -> str:
+        return Path(path).relative_to(folder).as_posix()
+
+    staging = Path(folder) / returns.STAGING_DIR
+    staged = sorted(p.name for p in staging.iterdir()) if staging.is_dir() else []
+    return {"removed": [inside(x.path) for x in removed],
+            "kept": [f"{inside(x.path)} (process {x.pid})" for x in kept],
+            "intake": [f"{returns.STAGING_DIR}/{name}" for name in staged]}
+
+
+def describe_leftovers(found: Mapping[str, Sequence[str]]) -> list[str]:
+    """Return the lines that name what ``leftovers`` found (none when nothing was left)."""
+    def count(items: Sequence[str], noun: str) -> str:
+        return f"{len(items)} {noun}{'' if len(items) == 1 else 's'}"
+
+    out = []
+    if found.get("removed"):
+        out.append(f"removed {count(found['removed'], 'temporary file')} left by a stopped "
+                   "command: " + ", ".join(found["removed"]))
+    if found.get("kept"):
+        out.append(f"left in place {count(found['kept'], 'temporary file')} (its command is "
+                   "still running, or it cannot be removed): " + ", ".join(found["kept"]))
+    if found.get("intake"):
+        out.append(f"{count(found['intake'], 'form')} staged by a receive that was stopped or "
+                   "is running: " + ", ".join(found["intake"]) + "; the next 'ringplan "
+                   "receive' records or removes them")
+    return out

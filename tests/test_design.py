@@ -80,16 +80,38 @@ def test_williams_is_carryover_balanced(n):
 
 # --- balanced run orders ---
 
+def _is_rows_of_a_relabelled_williams_square(orders, n):
+    # Some relabelling of the materials turns every order into a distinct Williams row.
+    rows = set(design.williams(n))
+    for row in rows:
+        label = dict(zip(orders[0], row))
+        mapped = {tuple(label[m] for m in order) for order in orders}
+        if len(mapped) == len(orders) and mapped <= rows:
+            return True
+    return False
+
+
+def _is_balanced(orders, materials):
+    positions = _position_counts(orders)
+    pairs = _neighbour_counts(orders)
+    return (len(set(positions.values())) == 1 and len(positions) == len(materials) ** 2
+            and len(set(pairs.values())) <= 1 and set(pairs) == set(
+                itertools.permutations(materials, 2)))
+
+
 @pytest.mark.parametrize(("materials", "labs", "trials", "by_trial"), [
-    ("ABCD", 3, 4, False), ("ABCD", 4, 3, True), ("ABC", 6, 2, False),
-    ("ABC", 2, 6, True), ("ABCDE", 5, 4, True), ("AB", 3, 2, False),
-], ids=["4m-by-lab", "4m-by-trial", "3m-by-lab", "3m-by-trial", "5m", "2m"])
+    ("ABCD", 4, 3, False), ("ABCD", 6, 2, True), ("ABC", 6, 2, False),
+    ("ABC", 9, 2, True), ("ABCDE", 10, 2, False), ("ABCDEF", 8, 3, False), ("AB", 3, 2, False),
+], ids=["4m-4labs", "4m-6labs", "3m-6labs", "3m-9labs", "5m-10labs", "6m-8labs", "2m"])
 def test_balanced_orders_are_balanced_over_complete_sets(materials, labs, trials, by_trial):
+    # At least as many laboratories as rows, and laboratories x trials a multiple of the rows:
+    # every set is complete, so positions and neighbours balance as in Williams (1949).
     slots = _slots(labs, trials, by_trial=by_trial)
     n = len(materials)
     rows = n if n % 2 == 0 else 2 * n
-    assert len(slots) % rows == 0
+    assert labs >= rows and len(slots) % rows == 0
     sets = len(slots) // rows
+    assert design.balance_note(labs, n, trials) is None
     for i in range(5):
         plan = design.run_orders(list(materials), slots, scheme="balanced", stream=_stream(i))
         assert list(plan) == slots
@@ -102,8 +124,41 @@ def test_balanced_orders_are_balanced_over_complete_sets(materials, labs, trials
         assert set(pairs.values()) == {sets * rows // n}
 
 
+@pytest.mark.parametrize(("materials", "labs", "trials"), [
+    ("ABCDEF", 5, 3), ("ABCDE", 3, 2), ("ABCD", 3, 4), ("ABC", 2, 3),
+], ids=["6m-5labs", "5m-3labs", "4m-3labs", "3m-2labs"])
+def test_fewer_laboratories_than_rows_get_part_of_a_relabelled_square_per_trial(
+        materials, labs, trials):
+    slots = _slots(labs, trials)
+    for i in range(10):
+        plan = design.run_orders(list(materials), slots, scheme="balanced", stream=_stream(i))
+        for trial in range(1, trials + 1):
+            orders = [order for slot, order in plan.items() if slot[1] == trial]
+            assert len(orders) == labs
+            assert _is_rows_of_a_relabelled_williams_square(orders, len(materials))
+            # A square of n rows (even n) holds each material once per position, one of 2n
+            # rows (odd n) twice.
+            most = 1 if len(materials) % 2 == 0 else 2
+            assert max(_position_counts(orders).values()) <= most
+
+
+def test_each_trial_gets_its_own_relabelling():
+    # 4 laboratories, 4 materials: one complete set per trial. One relabelling shared by the
+    # round would put both trials' orders in one square every time; a fresh one per set does
+    # so only by chance (3 / 23, the chance for two different random orders: the 24 orders
+    # fall into 6 squares of 4).
+    slots = _slots(4, 2)
+    together = 0
+    for i in range(200):
+        plan = design.run_orders(list("ABCD"), slots, scheme="balanced", stream=_stream(i))
+        trial_1 = [order for slot, order in plan.items() if slot[1] == 1]
+        assert _is_rows_of_a_relabelled_williams_square(trial_1, 4)
+        together += plan[("L01", 2)] in trial_1
+    assert together < 60
+
+
 @pytest.mark.parametrize("by_trial", [False, True], ids=["by-lab", "by-trial"])
-def test_balanced_orders_give_a_laboratory_different_rows_when_possible(by_trial):
+def test_balanced_orders_give_a_laboratory_different_orders_when_possible(by_trial):
     # 4 materials give 4 rows; 5 labs x 4 trials dealt in 5 sets.
     slots = _slots(5, 4, by_trial=by_trial)
     for i in range(20):
@@ -111,6 +166,15 @@ def test_balanced_orders_give_a_laboratory_different_rows_when_possible(by_trial
         for lab in {s[0] for s in slots}:
             mine = [order for slot, order in plan.items() if slot[0] == lab]
             assert len(set(mine)) == len(mine)
+
+
+def test_balanced_deals_trial_by_trial_whatever_the_slot_order():
+    by_lab, by_trial = _slots(7, 3), _slots(7, 3, by_trial=True)
+    for i in range(5):
+        a = design.run_orders(list("ABCDEF"), by_lab, scheme="balanced", stream=_stream(i))
+        b = design.run_orders(list("ABCDEF"), by_trial, scheme="balanced", stream=_stream(i))
+        assert a == b
+        assert list(a) == by_lab and list(b) == by_trial
 
 
 def test_balanced_relabels_materials_at_random():
@@ -122,10 +186,66 @@ def test_balanced_relabels_materials_at_random():
     assert set(firsts) == set("ABCD")
 
 
-def test_balanced_partial_set_still_gives_permutations():
-    plan = design.run_orders(list("ABC"), _slots(2, 2), scheme="balanced", stream=_stream())
-    assert len(plan) == 4 and all(sorted(o) == list("ABC") for o in plan.values())
-    assert len(set(plan.values())) == 4  # 4 of the 6 distinct rows
+def test_balanced_orders_are_deterministic_where_relabellings_are_redrawn():
+    # 7 laboratories x 3 trials of 4 materials: mixed sets, where relabellings get redrawn.
+    slots = _slots(7, 3)
+    runs = [design.run_orders(list("ABCD"), slots, scheme="balanced", stream=_stream(i))
+            for i in range(20)]
+    again = [design.run_orders(list("ABCD"), slots, scheme="balanced", stream=_stream(i))
+             for i in range(20)]
+    assert runs == again
+    assert len({tuple(run.values()) for run in runs}) == 20
+
+
+# --- balance_note ---
+
+def test_balance_note_for_too_few_laboratories():
+    assert design.balance_note(5, 6, 1) == (
+        "5 laboratories are fewer than the 6 rows of a balanced design for 6 materials, so "
+        "each trial gets 5 of the 6 rows with its own relabelling: each material stands at "
+        "most once in each position per trial, but positions and neighbours are balanced only "
+        "approximately; 6 laboratories (or 12, 18, …) would balance them exactly")
+    # With 3 trials any even number of laboratories from 6 up makes whole sets of 6 rows.
+    assert "6 laboratories (or 8, 10, …)" in design.balance_note(5, 6, 3)
+    assert design.balance_note(1, 2, 2).startswith("1 laboratory is fewer than the 2 rows")
+
+
+def test_balance_note_for_an_incomplete_last_set():
+    assert design.balance_note(7, 6, 3) == (
+        "7 laboratories with 3 trials make 21 run orders, not a multiple of the 6 rows of a "
+        "balanced design for 6 materials, so the last 3 come from an incomplete set of rows: "
+        "positions and neighbours are balanced only approximately; 6 or 8 laboratories would "
+        "balance them exactly")
+    assert design.balance_note(11, 5, 3).endswith("; 10 or 20 laboratories would balance "
+                                                  "them exactly")
+
+
+@pytest.mark.parametrize(("labs", "materials", "trials"), [
+    (6, 6, 3), (8, 6, 3), (5, 6, 3), (7, 6, 3), (6, 3, 1), (7, 3, 2), (10, 5, 3), (11, 5, 3),
+    (3, 5, 2), (4, 4, 2), (3, 4, 2), (2, 2, 1), (4, 1, 2),
+])
+def test_balance_note_is_none_exactly_when_the_orders_balance(labs, materials, trials):
+    # Balance as Williams (1949) defines it: every material equally often in each position,
+    # every ordered pair of neighbours equally often.
+    names = "ABCDEF"[:materials]
+    slots = _slots(labs, trials)
+    balanced = [_is_balanced(list(design.run_orders(list(names), slots, scheme="balanced",
+                                                    stream=_stream(i)).values()), names)
+                for i in range(8)]
+    note = design.balance_note(labs, materials, trials)
+    if note is None:
+        assert all(balanced)
+    else:
+        assert not all(balanced)
+        assert f"{labs} laborator" in note and f"{materials} materials" in note
+
+
+def test_balance_note_suggestions_balance():
+    for labs, materials, trials, suggested in [(5, 6, 3, (6, 8, 10)), (5, 6, 1, (6, 12, 18)),
+                                               (7, 6, 3, (6, 8)), (11, 5, 3, (10, 20))]:
+        note = design.balance_note(labs, materials, trials)
+        assert all(str(k) in note for k in suggested)
+        assert all(design.balance_note(k, materials, trials) is None for k in suggested)
 
 
 # --- random run orders ---

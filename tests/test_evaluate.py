@@ -79,17 +79,23 @@ def test_host_results_are_marked_in_house(example_dir):
     assert {r.lab for r in rows if "in-house" in r.flags} == {"kal"}
 
 
-def test_spare_takes_the_trial_of_its_form_line_and_is_flagged(example_dir):
+@pytest.mark.parametrize("kind", ["spare", "retained"])
+def test_a_unit_the_host_sent_takes_the_trial_of_its_form_line_and_is_flagged(example_dir,
+                                                                            kind):
     _, result = _plan(example_dir)
     key = planning.key_of(result)
-    spare = next(u for u in result.units if u.kind == "spare" and u.lab == "hel")
+    sent = next(u for u in result.units if u.kind == kind)
+    assert sent.lab == "kal"  # the host keeps it until it is sent as a replacement
     replaced = next(u for u in result.units if u.kind == "test" and u.lab == "hel"
-                    and u.material == spare.material and u.trial == 2)
+                    and u.material == sent.material and u.trial == 2)
     records = [r for r in _records(result) if r["code"] != replaced.code]
-    records.append({"lab": "hel", "code": spare.code, "trial": 2, "value": 1.0})
-    rows = evaluate.unblind(key, records)
-    row = next(r for r in rows if r.code == spare.code)
-    assert (row.material, row.trial, row.flags) == (spare.material, 2, ("spare-used",))
+    records.append({"lab": "hel", "code": sent.code, "trial": 2, "value": 1.0})
+    with pytest.raises(DataError, match="but that unit was sent to 'kal'"):
+        evaluate.unblind(key, records)  # not issued to hel
+    rows = evaluate.unblind(key, records, issued={sent.code: "hel"})
+    row = next(r for r in rows if r.code == sent.code)
+    assert (row.material, row.lab, row.trial, row.flags) == (sent.material, "hel", 2,
+                                                             ("spare-used",))
 
 
 @pytest.mark.parametrize("case, message", [

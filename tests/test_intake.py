@@ -98,9 +98,11 @@ CASES = [
     ("unit-kept-by-host", "kal",
      lambda ls, m: set_cell(ls, FIRST_ROW, "code", codes.format(m["host_units"]["retained"][0]), "kal"),
      FIRST_ROW, "is a unit kept by the host", ()),
-    ("spare-not-issued", "kal",
-     lambda ls, m: set_cell(ls, FIRST_ROW, "code", codes.format(m["labs"]["kal"]["spares"][0]), "kal"),
-     FIRST_ROW, "is a spare of this laboratory that was not issued", ()),
+    ("spare-not-issued", "tor",
+     lambda ls, m: set_cell(ls, FIRST_ROW, "code", codes.format(m["host_units"]["spare"][0]),
+                            "tor"),
+     FIRST_ROW, "is a spare kept by the host that was not issued to laboratory 'tor'; run "
+     "'ringplan spare' for the damaged unit first", ()),
     ("misspelt-column", "kal", lambda ls, m: ls.__setitem__(
         HEADER_LINE - 1, ls[HEADER_LINE - 1].replace("remarks", "remark")), HEADER_LINE, "did you mean 'remarks'?", ()),
 ]
@@ -222,8 +224,8 @@ def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
     result = receive(runner, planned, path)
     assert result.exit_code == 2
     assert result.stderr.strip().splitlines() == [
-        (f"error: {path}: row {header + 3}: value 'n/a' is not a number; write it like "
-         "'12,5', or leave it empty and say why in remarks")]
+        (f"error: {path}: row {header + 3}: value 'n/a' is a marker (such as 'not determined'), "
+         "not a number; leave the value empty and write it under remarks")]
     assert nothing_recorded(planned)
 
 
@@ -231,6 +233,7 @@ def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
 
 @pytest.mark.parametrize("text, decimal, expected", [
     ("12,5", "comma", 12.5), ("12.5", "point", 12.5), ("-0,25", "comma", -0.25),
+    ("\u22120,25", "comma", -0.25), ("\u00a012,5\u00a0", "comma", 12.5),
     (",5", "comma", 0.5), ("1e-3", "point", 0.001), ("7", "comma", 7.0),
 ], ids=str)
 def test_numbers_in_the_laboratory_convention(text, decimal, expected):
@@ -242,7 +245,8 @@ def test_numbers_in_the_laboratory_convention(text, decimal, expected):
     ("1.234.567", "point", "thousands"), ("1'234", "point", "thousands"),
     ("1,5", "point", "decimal comma"), ("1.5", "comma", "decimal point"),
     ("nan", "point", "not a number"), ("inf", "point", "not a number"),
-    ("1_000", "point", "not a number"), ("<0.1", "point", "not a number"),
+    ("1_000", "point", "not a number"), ("<0.1", "point", "is a limit, not a result"),
+    ("n.d.", "comma", "is a marker"), ("\u2013 0,5", "comma", "starts with a dash"),
     ("1e999", "point", "not a finite number"),
 ], ids=str)
 def test_numbers_refused(text, decimal, fragment):

@@ -66,10 +66,16 @@ def test_golden_manifest():
     is to catch a change, not to prove correctness)."""
     golden = json.loads((ROOT / "tests" / "data" / "golden_small_round.json").read_text())
     study = spec.parse(SMALL)
-    manifest = plan.manifest_of(study, _plan(study))
+    result = _plan(study)
+    manifest = plan.manifest_of(study, result)
     assert manifest["fingerprint"] == golden["fingerprint"]
     assert {lab: v["trials"] for lab, v in manifest["labs"].items()} == golden["trials"]
-    assert {lab: v["spares"] for lab, v in manifest["labs"].items()} == golden["spares"]
+    assert manifest["host_units"]["spare"] == golden["host_spares"]
+    # a round planned while parcels carried spares rebuilds with each spare where it was
+    before = plan.build_units(study, host=result.host, secret=SECRET, spares_in_parcels=True)
+    assert {lab: sorted(u.code for u in before if u.kind == "spare" and u.lab == lab)
+            for lab in ("a", "b")} == golden["parcel_spares"]
+    assert [(u.code, u.kind) for u in before] == [(u.code, u.kind) for u in result.units]
 
 
 def test_codes_avoid_every_code_issued_before():
@@ -186,6 +192,9 @@ if __name__ == "__main__":  # regenerate the golden pin deliberately, never in a
                 "tests/test_plan.py with secret bytes(range(32)); regenerate only on purpose",
         "fingerprint": manifest["fingerprint"],
         "trials": {lab: v["trials"] for lab, v in manifest["labs"].items()},
-        "spares": {lab: v["spares"] for lab, v in manifest["labs"].items()},
+        "host_spares": manifest["host_units"]["spare"],
+        "parcel_spares": {lab.id: sorted(u.code for u in plan.build_units(
+            study, host=manifest["host"], secret=SECRET, spares_in_parcels=True)
+            if u.kind == "spare" and u.lab == lab.id) for lab in study.laboratories},
     }, indent=1) + "\n")
     print("wrote golden", os.getcwd(), EXAMPLE.name)

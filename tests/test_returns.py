@@ -58,7 +58,7 @@ def test_good_comma_form_is_copied_hashed_and_recorded(planned, runner, tmp_path
     assert f"kal: recorded version 1 from {path}: 18 values, 0 without value" in result.stdout
     assert stored.read_bytes() == data
     assert not os.access(stored, os.W_OK) or os.geteuid() == 0   # written read-only
-    assert oct(stored.stat().st_mode & 0o777) == "0o444"
+    assert oct(stored.stat().st_mode & 0o777) == "0o400"   # and owner-only: planner.files
     manifest = manifest_of(planned)
     slots = {c: (t, p) for t, run in enumerate(manifest["labs"]["kal"]["trials"], 1)
              for p, c in enumerate(run, 1)}

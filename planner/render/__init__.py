@@ -22,7 +22,7 @@ material.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -89,13 +89,14 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
                 only: str | None = None, lab: str | None = None,
                 codes: Sequence[str] | None = None, start_at: int = 1,
                 sheet: str | None = None, offset_mm: tuple[float, float] = (0.0, 0.0),
-                workers: int = 1) -> list[Path]:
+                workers: int = 1, issued: Collection[str] = ()) -> list[Path]:
     """Write the documents of a round into its folder and return their paths.
 
     ``only`` picks one kind of ``KINDS``; ``lab`` limits every document to one
     laboratory (its labels then go to ``labs/<lab>/labels.pdf`` without
     separators, and the prep sheet is left out); ``codes`` reprints the labels
-    of those codes only, to ``labels-reprint.pdf``. Raises LedgerError if the
+    of those codes only, to ``labels-reprint.pdf``; ``issued`` are the codes the host sent
+    as replacements, labelled as spares (``labels.host_labels``). Raises LedgerError if the
     round was not planned, SealError if the key is not the round's,
     PlannerError for an unknown kind, laboratory or sheet.
     """
@@ -123,7 +124,7 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
             items = labels.lab_labels(study, manifest, key, lab)
             target = folder / "labs" / lab
         else:
-            items = labels.host_labels(study, manifest, key)
+            items = labels.host_labels(study, manifest, key, issued=issued)
             target = folder / "host"
         name = "labels.pdf"
         if codes:

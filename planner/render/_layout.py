@@ -13,7 +13,6 @@ cover Latin-1, which is enough for the names and addresses of our studies.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -110,16 +109,15 @@ class Running:
 
 
 def write_atomic(path: Path, write: Callable[[Path], None]) -> Path:
-    """Call ``write`` with a temporary name beside ``path``, then rename it into place; return ``path``."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        write(temp)
-        os.replace(temp, path)
-    finally:
-        if temp.exists():
-            temp.unlink()
-    return path
+    """Call ``write`` with a temporary name beside ``path``, then rename it into place; return ``path``.
+
+    Through ``planner.files``: never through a link, owner-only where the round's layout
+    says so (host documents, the report and letters); PlannerError when the disk refuses.
+    """
+    from planner import files
+
+    root, private = files.placement(path)
+    return files.write_atomic(path, write, root=root, private=private)
 
 
 def _numbered_canvas(running: Running) -> type:

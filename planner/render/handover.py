@@ -9,9 +9,9 @@ prepares and sends the set, in the middle it receives it back and sends it on,
 at the end it receives it back.
 
 Built from the public manifest and the spec alone: no key, so no material.
-Storage conditions are listed without saying which artefact needs which (the
-label says that), and hazard cautions repeat only the hazard words already on
-the labels, deferring to the safety data sheet and local rules.
+Every artefact is stored and handled alike (``planner.parcel``): one storage
+text and the cautions of every material, as every label says, deferring to the
+safety data sheet and local rules.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes
+from planner import codes, parcel
 from planner.render import _layout
 
 if TYPE_CHECKING:
@@ -217,17 +217,17 @@ def render(path: Path, study: Study, manifest: dict[str, Any], station: dict[str
         Paragraph("Signatures", st["h2"]),
         _layout.sign_lines(width, (first_signer, second_signer))]))
 
-    storage = sorted({m.storage for m in study.materials})
     story += [CondPageBreak(45 * _MM),
               Paragraph("Handling: read before you open the set", st["h2"])]
     story += [Paragraph(esc(text), st["bullet"], bulletText="•")
               for text in handling_notes(station)]
-    story.append(Paragraph("Storage conditions in this set (each label says which applies): "
-                           + "; ".join(esc(s) for s in storage) + ".", st["body"]))
-    hazards: dict[str, str] = {}
-    for m in study.materials:
-        if m.hazard:
-            hazards[m.hazard.word] = m.hazard.note
+    story.append(Paragraph(f"Store every artefact of the set: <b>{esc(parcel.storage(study))}"
+                           "</b>.", st["body"]))
+    hazards = parcel.cautions(study)
+    if hazards:
+        story.append(Paragraph("Every label of the set carries the hazard words of all its "
+                               "artefacts, so that no label tells them apart: handle every "
+                               "artefact with all the cautions below.", st["body"]))
     story += _layout.hazard_cautions(
         hazards, none_text="No artefact of this set carries a hazard word.")
     story.append(Paragraph(SDS_NOTE, st["small"]))

@@ -4,44 +4,53 @@ A label carries the code large in a monospaced bold face (``K7QM-4X9PA``),
 a QR code of the same text, and as much of the following as fits, listed
 from the field kept longest to the field dropped first:
 
-1. the hazard word of the material (safety before everything but the code),
+1. the hazard words of the round (safety before everything but the code),
 2. the trial and run position, or "spare", "retained", "homogeneity",
-3. the destination laboratory (its name, else its id),
+3. the destination laboratory (its name, else its id; none on a spare),
 4. the use-by date,
 5. the study and the round,
-6. the storage condition.
+6. the storage text of the round.
 
 The code and the QR always stay. A field that is too wide is first set in a
 smaller size (down to 5 pt), then wrapped; if the fields still do not fit the
 height of the label, the lowest of the list is dropped, then the next. Nothing
 is clipped and nothing is drawn past the label's padding.
 
-The material is never printed on a unit label. The use-by date is the same on
-every label of a round: the preparation date plus the *shortest* stability of
-the round's materials, because a date per material would tell the laboratory
-which units hold the less stable material. The storage condition and the
-hazard word stay per material: they decide how the unit is handled safely.
+The material is never printed on a unit label, and apart from the code and the
+run position every label of a round says the same (``planner.parcel``): one
+use-by date (the preparation date plus the *shortest* stability of the round's
+materials), one storage text and the hazard words of every material. A date, a
+storage text or a hazard word per material would tell a laboratory which of its
+units hold the same material; so every unit is stored and handled as the most
+demanding one is.
 
 Host labels are sorted material by material, each material led by a
 separator label (no QR) that names the material and how many labels follow;
-within a material by destination laboratory (in study order) and trial.
+within a material the test units by destination laboratory (in study order)
+and trial, then the units the host keeps: spares, retained, homogeneity.
+
+Spares stay with the host until one is sent to replace a damaged unit
+(``planner.spares``), so a spare's label names no destination and a
+laboratory's own labels (``lab_labels``) have none. A retained unit sent as a
+replacement is printed as a spare (``issued``), so that nothing on the unit a
+laboratory receives says where it came from.
 
 A circulating set has one label per artefact, printed by the host: the code,
-"circulating artefact", the study and round and the storage condition (and
-the hazard word), but no destination and no use-by date, because the same
+"circulating artefact", the study and round, the storage text and the hazard
+words, but no destination and no use-by date, because the same
 piece goes to every laboratory. Its separator still tells the host which
 artefact the label that follows belongs on.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Collection, Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes
+from planner import codes, parcel
 from planner.errors import PlannerError, Where
 from planner.render import _layout, _qr
 from planner.render._sheets import MM, Geometry
@@ -101,10 +110,7 @@ class Separator:
 def use_by(study: Study, manifest: dict[str, Any]) -> date | None:
     """Return the preparation date plus the shortest stability of the study's materials."""
     prepared = manifest.get("dates", {}).get("prepare_on")
-    if not prepared:
-        return None
-    shortest = min(m.stability_days for m in study.materials)
-    return date.fromisoformat(prepared) + timedelta(days=shortest)
+    return parcel.use_by(study, date.fromisoformat(prepared) if prepared else None)
 
 
 def _kind_text(unit: dict[str, Any], host: str) -> str:
@@ -118,23 +124,26 @@ def _kind_text(unit: dict[str, Any], host: str) -> str:
 
 def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
            expiry: str) -> Label:
-    material = study.material(unit["material"])
+    # Nothing of the unit's material: the same hazard and storage text on every label.
     lab = study.lab(unit["lab"])
     host = manifest["host"]
     suffix = " (host)" if lab.id == host and unit["kind"] in ("retained", "homogeneity") else ""
+    # A spare waits with the host for whichever laboratory needs one.
+    destination = () if unit["kind"] == "spare" else (f"for {lab.name}{suffix}",
+                                                      f"for {lab.id}{suffix}")
     if unit["kind"] == "artefact":
         # The same piece visits every laboratory: no destination, no use-by date.
-        return Label(code=unit["code"], hazard=material.hazard.word if material.hazard else "",
+        return Label(code=unit["code"], hazard=parcel.hazard_word(study),
                      trial=_kind_text(unit, host), study=f"{study.id} · round {manifest['round']}",
-                     storage=material.storage)
+                     storage=parcel.storage(study))
     return Label(
         code=unit["code"],
-        hazard=material.hazard.word if material.hazard else "",
+        hazard=parcel.hazard_word(study),
         trial=_kind_text(unit, host),
-        lab=(f"for {lab.name}{suffix}", f"for {lab.id}{suffix}"),
+        lab=destination,
         use_by=f"use by {expiry}" if expiry else "",
         study=f"{study.id} · round {manifest['round']}",
-        storage=material.storage,
+        storage=parcel.storage(study),
     )
 
 
@@ -147,14 +156,17 @@ _KIND_RANK = {"test": 0, "spare": 1, "retained": 2, "homogeneity": 3}
 
 def _unit_order(study: Study) -> Any:
     labs = _lab_rank(study)
-    return lambda u: (labs.get(u["lab"], len(labs)), _KIND_RANK.get(u["kind"], 9),
+    return lambda u: (_KIND_RANK.get(u["kind"], 9), labs.get(u["lab"], len(labs)),
                       u["trial"] or 0, u["position"] or 0, u["code"])
 
 
-def host_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any]
-                ) -> list[Label | Separator]:
+def host_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any], *,
+                issued: Collection[str] = ()) -> list[Label | Separator]:
     """Return every label of the round for the host's sheet: per material a separator, then
-    its units by laboratory, kind and trial."""
+    its test units by laboratory and trial, then its spares, retained and homogeneity units.
+
+    ``issued`` are the codes the host sent as replacements (``intake.issued_spares``): a
+    retained unit among them is labelled as a spare."""
     expiry = use_by(study, manifest)
     text = expiry.isoformat() if expiry else ""
     by_material: dict[str, list[dict[str, Any]]] = {}
@@ -168,17 +180,20 @@ def host_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any]
             continue
         out.append(Separator(material.id, material.description, len(units),
                              f"{study.id} · round {manifest['round']}"))
-        out += [_label(study, manifest, u, text) for u in units]
+        out += [_label(study, manifest, {**u, "kind": "spare"} if u["code"] in issued else u,
+                       text) for u in units]
     return out
 
 
 def lab_labels(study: Study, manifest: dict[str, Any], key: dict[str, Any],
                lab_id: str) -> list[Label | Separator]:
-    """Return the labels of one laboratory's units (no separators): by trial and run position,
-    then spares."""
+    """Return the labels of the units in one laboratory's parcel (no separators), by trial and
+    run position; spares stay with the host (the host's own retained and homogeneity units
+    follow its test units)."""
     expiry = use_by(study, manifest)
     text = expiry.isoformat() if expiry else ""
-    units = sorted((u for u in key["units"] if u["lab"] == lab_id), key=_unit_order(study))
+    units = sorted((u for u in key["units"] if u["lab"] == lab_id and u["kind"] != "spare"),
+                   key=_unit_order(study))
     return [_label(study, manifest, u, text) for u in units]
 
 
@@ -445,10 +460,10 @@ def _symbols(items: Sequence[Label | Separator], workers: int) -> Iterator[str]:
         for text in texts:
             yield _qr.image_mask(_qr.matrix(text))
         return
-    from concurrent.futures import ProcessPoolExecutor
+    from planner.render import _workers
 
     chunks = [texts[i:i + CHUNK] for i in range(0, len(texts), CHUNK)]
-    with ProcessPoolExecutor(max_workers=workers) as pool:
+    with _workers.pool(workers) as pool:
         for result in pool.map(_qr.image_masks, chunks):
             yield from result
 

@@ -5,7 +5,9 @@ participant appears under its participant code of this round (``P-07``),
 drawn from the round secret, so the codes change from round to round and a
 laboratory cannot follow another through the rounds. The host is not marked
 among the others (everyone knows who shipped the parcels, so marking it would
-name it); the host's own letter says that its results were prepared in-house.
+name it), and only the host's own letter gives the consensus without the host:
+with it any participant could leave out each code in turn, recompute, and find
+the host's code. The host's letter says that its results were prepared in-house.
 Numbers are written with the laboratory's decimal sign.
 
 Contents: the round, how the decoding key was opened as the ledger shows it
@@ -372,14 +374,15 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any) -> str:
     text += (" D% = 100 (your mean - x_pt) / x_pt. z' is used where u(x_pt) > 0.3 sigma_pt. "
              "|score| <= 2 satisfactory, 2 to 3 questionable, >= 3 unsatisfactory; |En| <= 1 "
              "satisfactory (U with k = 2).")
+    # Only the host's own letter gives the consensus without the host: in anyone else's,
+    # leaving out each participant code in turn and recomputing would single the host out.
     diffs = []
-    for m in s["materials"]:
+    for m in s["materials"] if in_house else ():
         wh = s["scores"].get(m, {}).get("without_host") or {}
         if wh.get("assigned_value") is not None:
             diffs.append(f"{m} {n(wh['assigned_value'])} ({n(wh['difference'], 2)})")
     if diffs:
-        who = "your" if in_house else "the host's"
-        text += (f" Without {who} results the consensus would be (difference in brackets): "
+        text += (" Without your results the consensus would be (difference in brackets): "
                  + "; ".join(diffs) + ".")
     return text
 
@@ -440,13 +443,10 @@ def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unbli
             return [_one(job) for job in jobs]
         finally:
             _SHARED.clear()
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
+    from planner.render import _workers
 
     # fork shares the parent's memory (no pickling of the statistics) where it exists.
-    methods = multiprocessing.get_all_start_methods()
-    ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
     chunk = max(1, len(jobs) // (workers * 4))
-    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init,
-                             initargs=(statistics, by_lab, paper, True)) as pool:
+    with _workers.pool(workers, initializer=_init, initargs=(statistics, by_lab, paper, True),
+                       fork=True) as pool:
         return list(pool.map(_one, jobs, chunksize=chunk))

@@ -3,9 +3,12 @@
 From host to laboratory with both addresses, the dates of the round for that
 laboratory, the round fingerprint, and a table of the parcel's codes sorted by
 code, so that the order in which the host prepared the materials cannot be
-read from it. Nothing on it names a material: the hazard column repeats only
-the hazard word already on the label, and storage conditions are listed
-without saying which unit needs which (the label says that).
+read from it. Spares are not in any parcel: they stay with the host, which sends
+one when a laboratory reports a unit damaged (``planner.spares``), so a
+laboratory holds nothing of which it could learn the materials by asking for
+spares. Nothing on it names a material or tells units apart: every unit
+of the round is stored and handled alike (``planner.parcel``), with one storage
+text and the cautions of every material, as every label says.
 """
 
 from __future__ import annotations
@@ -13,7 +16,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes
+from planner import codes, parcel
 from planner.render import _layout
 
 if TYPE_CHECKING:
@@ -43,7 +46,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     """Write the packing list of ``lab_id``'s parcel to ``path``; return ``path``.
 
     Built from the manifest alone, without the key: it lists codes, never which material a
-    code is, and gives the storage texts and cautions of every material of the round, the
+    code is, and gives one storage text and the cautions of every material of the round, the
     same on every laboratory's list, so that none of them singles a unit out.
     """
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
@@ -54,10 +57,9 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     host = study.lab(manifest["host"])
     entry = manifest["labs"][lab_id]
     dates = manifest["dates"]
-    units = sorted([{"code": code, "kind": "test", "trial": trial}
-                    for trial, run in enumerate(entry["trials"], start=1) for code in run]
-                   + [{"code": code, "kind": "spare", "trial": None}
-                      for code in entry.get("spares", ())], key=lambda u: u["code"])
+    units = sorted(({"code": code, "kind": "test", "trial": trial}
+                    for trial, run in enumerate(entry["trials"], start=1) for code in run),
+                   key=lambda u: u["code"])
     width = _layout.content_width(paper)
 
     story: list[Any] = [
@@ -88,11 +90,11 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
                         "this page: when the key is opened, its fingerprint must be the same.",
                         st["small"])]
 
-    tests = sum(1 for u in units if u["kind"] == "test")
-    spares = len(units) - tests
     story += [Paragraph("Contents", st["h2"]),
-              Paragraph(f"<b>{len(units)} units</b>: {tests} for testing "
-                        f"({manifest['trials']} trials) and {spares} spare.", st["body"]),
+              Paragraph(f"<b>{len(units)} units</b> for testing ({manifest['trials']} trials). "
+                        "Spares stay with the host: if a unit is lost or damaged, tell the "
+                        "coordinator its code, and the host sends a replacement unit.",
+                        st["body"]),
               Spacer(1, 2.5 * _MM)]
     box = 3.6 * _MM
     rows: list[list[Any]] = [["code", "kind", "trial", "packed", "received"]]
@@ -107,17 +109,18 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
                                         ("ALIGN", (2, 0), (2, -1), "CENTER")]), repeatRows=1)
     story.append(contents)
 
-    storage = sorted({m.storage for m in study.materials})
-    story += [Paragraph("Storage and handling", st["h2"])]
-    story += [Paragraph(esc(text), st["bullet"], bulletText="•") for text in storage]
-    story.append(Paragraph("These are the storage conditions of the round's materials; each "
-                           "label gives its unit's. Keep units closed until they are tested; "
-                           "do not open, mix or split them before the test. Report a damaged "
-                           "unit and use a spare.", st["body"]))
-    hazards = {m.hazard.word: m.hazard.note for m in study.materials if m.hazard}
+    story += [Paragraph("Storage and handling", st["h2"]),
+              Paragraph(f"Store every unit: <b>{esc(parcel.storage(study))}</b>.", st["body"]),
+              Paragraph("Keep units closed until they are tested; do not open, mix or split "
+                        "them before the test. Report a damaged unit to the coordinator.",
+                        st["body"])]
+    hazards = parcel.cautions(study)
     if hazards:
-        story.append(Paragraph("Some materials of this round carry a hazard word; handle every "
-                               "unit of the parcel with the cautions below.", st["body"]))
+        story.append(Paragraph(
+            "Every label of this round carries the hazard words of all its materials, so that "
+            "no label tells which units hold which material: a word on a label does not mean "
+            "that unit is hazardous, but handle <b>every</b> unit of the parcel with all the "
+            "cautions below.", st["body"]))
     story += _layout.hazard_cautions(
         hazards, none_text="No material of this round carries a hazard word.")
     story.append(Paragraph(SDS_NOTE, st["small"]))

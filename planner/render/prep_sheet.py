@@ -4,7 +4,9 @@ Confidential: it links every code to its material, so it stays with the host
 and is kept with the sealed key, never sent to a participant. Per material the
 units by kind and the total amount to prepare, a checklist, and then per
 material the list of its codes with destination and kind, in the order the
-host's label sheet prints them.
+host's label sheet prints them: the test units, then the host's spare pool
+(spares go in no parcel; ``planner.spares`` picks the one to send), the
+retained and the homogeneity units.
 """
 
 from __future__ import annotations
@@ -32,6 +34,9 @@ CHECKLIST = (
     "two materials open on the bench at once."),
     "Set the homogeneity units aside at once and test them before the parcels leave.",
     "Keep the retained units in their storage condition until the round is evaluated.",
+    ("Keep the spares too, in their storage condition: they are the pool from which a "
+     "replacement is sent when a laboratory reports a unit damaged ('ringplan spare' names the "
+     "unit); no spare goes into a parcel."),
     "Pack each laboratory's parcel against its packing list; a second person checks it.",
     "Store this sheet with the sealed key, away from the units and the parcels.",
 )
@@ -94,19 +99,22 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
     story.append(_layout.table(rows, [w * width for w in widths], _layout.table_style(extra=[
         ("ALIGN", (1, 0), (-1, -1), "RIGHT"), ("FONT", (5, 1), (5, -1), _layout.BOLD, 9),
         ("FONT", (7, 1), (7, -1), _layout.BOLD, 9)]), repeatRows=1))
-    story.append(Paragraph("The amount to prepare includes spares, retained and homogeneity "
-                           "units; add what your splitting method loses.", st["small"]))
+    story.append(Paragraph("The amount to prepare includes the spares (kept by the host as a "
+                           "pool for replacements), retained and homogeneity units; add what "
+                           "your splitting method loses.", st["small"]))
 
     _storage_and_checklist(story, study, manifest, CHECKLIST, width)
 
     for material in study.materials:
         units = sorted(by_material.get(material.id, []), key=lambda u: (
-            lab_rank.get(u["lab"], 99), kind_rank.get(u["kind"], 9), u["trial"] or 0,
+            kind_rank.get(u["kind"], 9), lab_rank.get(u["lab"], 99), u["trial"] or 0,
             u["position"] or 0, u["code"]))
         if not units:
             continue
         rows = [["code", "for", "kind", "trial", "run"]]
-        rows += [[codes.format(u["code"]), u["lab"], u["kind"],
+        rows += [[codes.format(u["code"]),
+                  "host's pool" if u["kind"] == "spare" and u["lab"] == host.id else u["lab"],
+                  u["kind"],
                   u["trial"] if u["trial"] is not None else "",
                   u["position"] if u["position"] is not None else ""] for u in units]
         table = _layout.table(rows, [w * width for w in (0.28, 0.2, 0.22, 0.15, 0.15)],

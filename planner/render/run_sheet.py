@@ -30,8 +30,9 @@ INSTRUCTIONS = (
     "next, and do not look back at earlier results."),
     ("Report every result, including failed or doubtful tests: leave the value empty and say "
     "what happened under remarks. Do not repeat a test to get a better value."),
-    ("If a unit is lost or damaged, ask the coordinator which spare replaces it; test the spare "
-    "in the unit's place and write the spare's code in the code column of the result form."),
+    ("If a unit is lost or damaged, tell the coordinator its code; the host sends a replacement "
+    "unit. Test it in the lost unit's place and write the code on its label in the code column "
+    "of the result form."),
     ("The decoding key stays sealed with the coordinator until every laboratory has reported; "
     "do not try to find out which material a unit holds."),
 )
@@ -88,7 +89,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     if circulating:
         station = _station(manifest, lab_id, visit)
         entry = {"trials": manifest["host_visits"][visit] if visit
-                 else manifest["labs"][lab_id]["trials"], "spares": []}
+                 else manifest["labs"][lab_id]["trials"]}
         stop = (f"stop {station['index']} of {len(manifest['route'])}"
                 + (f" ({station['visit']})" if station.get("visit") else ""))
         passing = (f"pass the set on by {esc(station['pass_on'])}" if station.get("pass_on")
@@ -141,13 +142,6 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
             Paragraph(f"Trial {trial} of {len(entry['trials'])}", st["h2"]),
             Paragraph("one session; started on ____________ at ________", st["small"]),
             Spacer(1, 2 * _MM), table]))
-    spares = entry.get("spares", [])
-    if spares:
-        story.append(KeepTogether([
-            Paragraph("Spares", st["h2"]),
-            Paragraph("Not part of any trial. " + ", ".join(
-                f"<font name='{_layout.MONO}'>{codes.format(c)}</font>" for c in spares),
-                st["body"])]))
     name = f"{lab.id}@{visit}" if visit else lab.id
     running = _layout.Running(study.id, study.study.title, manifest["round"],
                               f"run sheet · {name}")

@@ -20,8 +20,8 @@ command's normal run time (measured once while the states are prepared). Then it
   done, or "already unsealed" with key.json matching; evaluate: report, letters and
   the statistics.json the ledger's 'evaluated' event names).
 
-Leftover temp files and folders (``.*.tmp``, ``.*.part``, ``.*.staging``, ``.*.replaced``)
-after the second run are listed and counted as findings, not failures.
+Leftover temp files and folders (``.*.ringplan-tmp``, ``.*.tmp``, ``.*.part``, ``.*.staging``,
+``.*.replaced``) after the second run are listed and counted as findings, not failures.
 
 The killed command runs in its own session and the whole process group is killed, so that
 a worker process (labels and letters may use a pool) cannot go on writing after the
@@ -71,7 +71,7 @@ BEFORE = {"plan": "fresh", "print": "planned", "receive": "printed", "unseal": "
           "evaluate": "unsealed"}
 AFTER = {"plan": "planned", "print": "printed", "receive": "received", "unseal": "unsealed",
          "evaluate": "evaluated"}
-LEFTOVER_PATTERNS = (".*.tmp", ".*.part", ".*.staging", ".*.replaced")
+LEFTOVER_PATTERNS = (".*.ringplan-tmp", ".*.tmp", ".*.part", ".*.staging", ".*.replaced")
 _TIMEOUT = 120  # seconds; a command that hangs is a failure, not a stuck benchmark
 
 
@@ -467,8 +467,10 @@ def _pattern(name: str) -> str:
     """Return a leftover's path with its random or process-id part shown as '*'."""
     parts = name.split("/")
     stem = parts[-1].split(".")
-    # .NAME.<random or pid>.tmp -> .NAME.*.tmp
-    if len(stem) >= 4:
+    # .NAME.<random or pid>.tmp -> .NAME.*.tmp; .NAME.<pid>.<random>.ringplan-tmp likewise
+    if stem[-1] == "ringplan-tmp" and len(stem) >= 5:
+        stem[-3:-1] = ["*", "*"]
+    elif len(stem) >= 4:
         stem[-2] = "*"
     parts[-1] = ".".join(stem)
     return "/".join(parts)
