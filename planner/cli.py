@@ -563,9 +563,20 @@ def receive(
     with Ledger.open(study_dir, create=False) as ledger:
         study = _round_study(study_dir, round_id, ledger)
         _tidy(study_dir, round_id)
-        receipts = returns.receive(study, study_dir, round_id, files, ledger, lab=lab,
-                                   check_only=check_only, after_unseal=after_unseal,
-                                   reason=reason, _pause=_test_pause())
+        try:
+            receipts = returns.receive(study, study_dir, round_id, files, ledger, lab=lab,
+                                       check_only=check_only, after_unseal=after_unseal,
+                                       reason=reason, _pause=_test_pause())
+        except PlannerError as exc:
+            if len(files) < 2 or check_only:
+                raise
+            # A batch is recorded whole or not at all: say so after the problems.
+            for line in str(exc).splitlines():
+                _fail(line)
+            _fail(f"nothing was recorded: the {len(files)} forms are recorded together or not "
+                  "at all; fix the forms named above and receive them again (or receive the "
+                  "good ones on their own)")
+            raise typer.Exit(2) from None
     for r in receipts:
         counts = f"{r.values} values, {r.failed} without value"
         if r.repeat_of is not None:

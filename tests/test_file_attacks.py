@@ -224,18 +224,23 @@ def test_print_in_a_read_only_study_folder_is_one_line(planned, runner, passphra
     assert _tree(planned) == before
 
 
+def _refuse_mkdir(monkeypatch, target, code: int, text: str) -> None:
+    """Make os.mkdir of ``target`` fail as the disk would, with errno ``code``."""
+    real_mkdir = os.mkdir
+
+    def refused(path, mode=0o777, **kw):
+        if os.fspath(path) == os.fspath(target):
+            raise OSError(code, text, os.fspath(path))
+        return real_mkdir(path, mode, **kw)
+
+    monkeypatch.setattr(os, "mkdir", refused)
+
+
 def test_print_where_the_host_folder_cannot_be_made_is_one_line(planned, runner, passphrase,
                                                                 monkeypatch):
     # what a read-only round folder does to print, for root as well: mkdir is refused
     folder = plan.round_dir(planned, ROUND)
-    real_mkdir = os.mkdir
-
-    def refused(path, mode=0o777, **kw):
-        if os.fspath(path) == os.fspath(folder / "host"):
-            raise PermissionError(errno.EACCES, "Permission denied", os.fspath(path))
-        return real_mkdir(path, mode, **kw)
-
-    monkeypatch.setattr(os, "mkdir", refused)
+    _refuse_mkdir(monkeypatch, folder / "host", errno.EACCES, "Permission denied")
     before = _tree(folder)
     line = _one_line(run_cli(runner, "print", planned, "--round", ROUND))
     assert line == (f"error: {folder / 'host'}: permission denied; the study folder and its "
@@ -245,14 +250,7 @@ def test_print_where_the_host_folder_cannot_be_made_is_one_line(planned, runner,
 
 def test_plan_where_rounds_cannot_be_made_records_nothing(example_dir, runner, passphrase,
                                                           monkeypatch):
-    real_mkdir = os.mkdir
-
-    def refused(path, mode=0o777, **kw):
-        if os.fspath(path) == os.fspath(example_dir / "rounds"):
-            raise OSError(errno.EROFS, "Read-only file system", os.fspath(path))
-        return real_mkdir(path, mode, **kw)
-
-    monkeypatch.setattr(os, "mkdir", refused)
+    _refuse_mkdir(monkeypatch, example_dir / "rounds", errno.EROFS, "Read-only file system")
     line = _one_line(run_cli(runner, "plan", example_dir, "--round", ROUND, "--host", "kal"))
     assert line == (f"error: {example_dir / 'rounds'}: the disk is read-only; work on a copy "
                     "of the study folder on a writable disk")

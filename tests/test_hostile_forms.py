@@ -39,16 +39,17 @@ def _rezip(source, target, replace: dict[str, bytes], *, level: int = 6) -> None
             new.writestr(info.filename, replace.get(info.filename, old.read(info.filename)))
 
 
-def _sheet_part(path) -> str:
-    with zipfile.ZipFile(path) as z:
-        return next(n for n in z.namelist() if n.startswith("xl/worksheets/sheet"))
+def _sheet(planned, tmp_path) -> tuple:
+    """Return a good filled workbook of kal, the name of its sheet part and that part's XML."""
+    good, _ = _xlsx_form(planned, tmp_path, "kal")
+    with zipfile.ZipFile(good) as z:
+        part = next(n for n in z.namelist() if n.startswith("xl/worksheets/sheet"))
+        return good, part, z.read(part)
 
 
 def test_an_entity_expansion_in_a_workbook_is_refused_before_parsing(planned, runner, tmp_path):
-    good, _ = _xlsx_form(planned, tmp_path, "kal")
-    part = _sheet_part(good)
-    with zipfile.ZipFile(good) as z:
-        xml = z.read(part).decode("utf-8")
+    good, part, raw = _sheet(planned, tmp_path)
+    xml = raw.decode("utf-8")
     lol = ['<!ENTITY lol0 "lol">'] + [
         f'<!ENTITY lol{i} "{("&lol" + str(i - 1) + ";") * 10}">' for i in range(1, 10)]
     head, _, body = xml.partition("?>")
@@ -64,10 +65,7 @@ def test_an_entity_expansion_in_a_workbook_is_refused_before_parsing(planned, ru
 
 
 def test_a_workbook_that_would_unpack_to_hundreds_of_mb_is_refused(planned, runner, tmp_path):
-    good, _ = _xlsx_form(planned, tmp_path, "kal")
-    part = _sheet_part(good)
-    with zipfile.ZipFile(good) as z:
-        xml = z.read(part)
+    good, part, xml = _sheet(planned, tmp_path)
     # 250 MB of blank rows compress to a few hundred kB.
     filler = b"<row/>" * (250_000_000 // 6)
     bomb = xml.replace(b"</sheetData>", filler + b"</sheetData>")
@@ -82,10 +80,7 @@ def test_a_workbook_that_would_unpack_to_hundreds_of_mb_is_refused(planned, runn
 
 
 def test_a_sheet_reaching_past_the_row_limit_is_refused(planned, runner, tmp_path):
-    good, _ = _xlsx_form(planned, tmp_path, "kal")
-    part = _sheet_part(good)
-    with zipfile.ZipFile(good) as z:
-        xml = z.read(part)
+    good, part, xml = _sheet(planned, tmp_path)
     far = f'<row r="{forms.MAX_ROWS + 5}"><c r="A{forms.MAX_ROWS + 5}" t="inlineStr"><is><t>x'
     far += "</t></is></c></row>"
     path = tmp_path / "long.xlsx"
@@ -170,4 +165,16 @@ def test_an_overflowing_trial_or_position_is_one_line(planned, runner, tmp_path,
     path = write(tmp_path, "kal.csv", lines)
     message = one_error(receive(runner, planned, path), path, FIRST)
     assert f"{column} '1E400'" in message
+    assert nothing_recorded(planned)
+
+
+def test_a_batch_with_one_bad_form_says_that_nothing_was_recorded(planned, runner, tmp_path):
+    good = write(tmp_path, "kal.csv", filled(planned, "kal"))
+    bad = tmp_path / "hel.csv"
+    bad.write_text("garbage\n", encoding="utf-8")
+    done = receive(runner, planned, good, bad)
+    assert done.exit_code == 2
+    lines = done.stderr.strip().splitlines()
+    assert lines[0].startswith(f"error: {bad}:1: expected the header row")
+    assert lines[-1].startswith("error: nothing was recorded: the 2 forms are recorded together")
     assert nothing_recorded(planned)

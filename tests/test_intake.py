@@ -178,7 +178,11 @@ def test_one_bad_form_stops_the_good_one_too(planned, runner, tmp_path):
     lines = filled(planned, "kal")
     set_cell(lines, 12, "value", "abc", "kal")
     bad = write(tmp_path, "bad.csv", lines)
-    one_error(receive(runner, planned, good, bad), bad, 12)
+    done = receive(runner, planned, good, bad)
+    assert done.exit_code == 2
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 2 and lines[0].startswith(f"error: {bad}:12: ")
+    assert lines[1].startswith("error: nothing was recorded")
     assert nothing_recorded(planned)
 
 
