@@ -22,6 +22,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import random
 from collections.abc import Callable, Mapping
 from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
@@ -239,7 +240,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
         clock.set(test_start)
         damaged = manifest["labs"][_DAMAGED_LAB]["trials"][0][0]
         swap = spares.issue_spare(study, out, ROUND, ledger, lab=_DAMAGED_LAB, damaged=damaged,
-                                  key=key)
+                                  key=key, pick=random.Random(seed).choice)
         values = _simulate(study, result.units, seed=seed, biased=biased,
                            sent={swap.spare: swap.lab})
         returned = files.make_folders(out / "returned", root=out)

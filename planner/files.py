@@ -14,11 +14,11 @@ that part of the path is the user's.
 Private files are owner-only (0600) and so are their folders (0700): whatever maps codes
 to materials or holds a laboratory's results before the coordinator sends them out.
 That is ``host/`` (labels, preparation sheet), ``results/`` and ``.intake/`` (returned
-forms, receipts), ``report/`` (statistics, the report, one letter per laboratory) and the
+forms, receipts), ``report/`` (statistics, the report, one letter per laboratory),
+``labs/`` (each laboratory's documents carry its submission token, for it alone) and the
 key files (``key.sealed``, ``key.host.sealed``, ``key.json``). A private folder that an
 older version made with wider rights is narrowed when a file is written into it. The
-participants' documents (``labs/<lab>/``), the manifest and ``key.fingerprint`` follow
-the user's umask.
+manifest and ``key.fingerprint`` follow the user's umask.
 
 A temporary file is named ``.<name>.<pid>.<random>.ringplan-tmp``. A command killed
 part-way leaves it behind; ``remove_stale`` removes the ones in a round folder whose
@@ -71,7 +71,7 @@ or a link in the way); any other OSError is a bug."""
 # The round folder's layout, as plan, print, receive, unseal and evaluate write it; the
 # names are those of seal, plan, returns, evaluate and ledger (a test holds them equal).
 _ROUNDS = "rounds"
-_PRIVATE_FOLDERS = frozenset({"host", "results", ".intake", "report"})
+_PRIVATE_FOLDERS = frozenset({"host", "labs", "results", ".intake", "report"})
 _PRIVATE_FILES = frozenset({"key.sealed", "key.host.sealed", "key.json"})
 _STUDY_MARKERS = ("study.yaml", "ledger.sqlite")
 _INTAKE = ".intake"  # its leftovers are settled by the next receive (returns.settle_results)

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import sqlite3
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
@@ -214,6 +215,20 @@ def _storage_problem(exc: BaseException, path: Path) -> LedgerError | None:
     return None
 
 
+def _keep_private(path: Path, *, create: bool) -> None:
+    """Create the ledger file owner-only, and narrow one made wider (by an older version or
+    a copy): it holds every laboratory's results before they are sent out. SQLite gives its
+    journal the database file's permissions."""
+    try:
+        if create and not os.path.lexists(path):
+            os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o600))
+        elif os.path.isfile(path) and os.stat(path).st_mode & 0o077 \
+                and os.stat(path).st_uid == os.geteuid():
+            os.chmod(path, 0o600)
+    except OSError:
+        pass  # sqlite3.connect below reports what is wrong with the place in one line
+
+
 class Ledger:
     """An open ledger file. Use as a context manager, or call close()."""
 
@@ -221,6 +236,7 @@ class Ledger:
                  create: bool = True) -> None:
         self.path = path
         self._clock = clock
+        _keep_private(path, create=create)
         try:
             self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
         except sqlite3.OperationalError as exc:

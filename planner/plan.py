@@ -512,7 +512,9 @@ def read_manifest(folder: Path) -> dict[str, Any]:
 
 
 def _write(path: Path, text: str, *, root: Path) -> None:
-    files.write_text(path, text, root=root, private=False)
+    # A laboratory's form carries its submission token: for it alone (planner.files).
+    private = "labs" in Path(path).relative_to(root).parts
+    files.write_text(path, text, root=root, private=private)
 
 
 def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, *,
@@ -568,7 +570,10 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,
                 fingerprint=plan.fingerprint, dates=manifest["dates"],
-                units=[(u.code, u.lab, u.kind, u.trial, u.position) for u in plan.units],
+                # In code order: the order units are drawn in (material by material) would
+                # tell a reader of the ledger which units share a material.
+                units=[(u.code, u.lab, u.kind, u.trial, u.position)
+                       for u in sorted(plan.units, key=lambda u: u.code)],
                 replaces=current.row if current else None)
             ledger.record_event(plan.round_id, "planned",
                                 {"fingerprint": plan.fingerprint, "host": plan.host,

@@ -2,9 +2,9 @@
 
 Spares stay with the host: per material a pool of ``spares_per_lab`` units for
 each laboratory (``plan.build_units``). When a laboratory reports a unit
-damaged, ``issue_spare`` picks the lowest unused spare of that unit's material
-from the pool, or, once the pool of that material is empty, the lowest unused
-unit of it that the host retained, and records the swap as a ``spare-swap``
+damaged, ``issue_spare`` picks an unused spare of that unit's material from the
+pool at random, or, once the pool of that material is empty, an unused unit of
+it that the host retained, and records the swap as a ``spare-swap``
 event in the ledger; from then on intake expects the replacement's result in
 place of the damaged unit (``intake.spare_swaps``, ``intake.expected_codes``).
 
@@ -19,7 +19,8 @@ A circulating set has no spares.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import secrets
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -57,14 +58,17 @@ class Swap:
 
 
 def issue_spare(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *, lab: str,
-                damaged: str, key: Mapping[str, Any]) -> Swap:
+                damaged: str, key: Mapping[str, Any],
+                pick: Callable[[Sequence[str]], str] = secrets.choice) -> Swap:
     """Return and record the unit the host sends to replace a laboratory's damaged unit.
 
     ``key`` is the decoded key (``seal.open_key``), needed for the material of the
-    damaged unit; the replacement is the lowest unused spare of that material the host
-    keeps, else the lowest unused unit of it the host retained. Raises CodeError for a
+    damaged unit; the replacement is an unused spare of that material the host keeps,
+    drawn at random (the lowest would rank a laboratory's replacements, so that their codes
+    would link its units of one material), else an unused unit of it the host retained. Raises CodeError for a
     malformed code and IntakeError when the unit is not the laboratory's, was replaced
     already, or the host has no unit of its material left (nothing is recorded then).
+    ``pick`` draws one code of the unused ones (the demo passes a seeded one).
     """
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
@@ -105,7 +109,7 @@ def issue_spare(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *,
                           "with the host (its spares and retained units are all issued), so "
                           "nothing was recorded; the host prepares a replacement from its "
                           f"stock; tell laboratory {lab!r} only that a replacement is on its way")
-    spare = free[0]
+    spare = pick(free)
     trial, position = expected[code]
     with ledger.transaction():
         ledger.record_event(round_id, "spare-swap", {"lab": lab, "damaged": code,

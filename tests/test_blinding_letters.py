@@ -99,3 +99,16 @@ def test_the_report_keeps_the_consensus_without_the_host_for_the_coordinator(rou
     stats, _ = round_
     assert all(stats["scores"][m]["without_host"].get("assigned_value") is not None
                for m in stats["materials"])
+
+
+def test_no_letter_names_the_participant_code_a_spare_went_to(round_):
+    # The host sent the spare, so it knows to whom: a P-code beside "spare" would name that
+    # laboratory to the host. The demo issues one spare, to hel.
+    stats, letters = round_
+    for lab, text in letters.items():
+        assert "to issue a spare unit to" in text, lab
+        if lab == "hel":
+            assert "to issue a spare unit to your laboratory" in text
+        else:
+            assert "to issue a spare unit to a participant" in text, lab
+            assert f"spare unit to {stats['participants']['hel']}" not in text, lab

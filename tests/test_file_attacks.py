@@ -90,7 +90,7 @@ def test_after_a_whole_round_the_private_files_are_the_owners_alone(example_dir,
     ok("evaluate", example_dir, "--round", ROUND)
     folder = plan.round_dir(example_dir, ROUND)
 
-    for name in ("host", "results", ".intake", "report"):
+    for name in ("host", "labs", "results", ".intake", "report"):
         assert _mode(folder / name) == 0o700, name
     host = sorted(p.name for p in (folder / "host").iterdir())
     assert host == ["labels.pdf", "prep-sheet.pdf"]
@@ -104,10 +104,13 @@ def test_after_a_whole_round_the_private_files_are_the_owners_alone(example_dir,
     for path in stored:  # the forms as received are read-only as well
         assert _mode(path) == (0o400 if path.suffix == ".csv" else 0o600), path
 
+    # labs/: each laboratory's documents carry its submission token, for it alone
     documents = list((folder / "labs").rglob("*"))
     assert len([p for p in documents if p.suffix == ".pdf"]) == 2 * len(LABS)
-    for path in [*documents, folder / "manifest.json", folder / "key.fingerprint"]:
-        assert _mode(path) == (0o755 if path.is_dir() else 0o644), path
+    for path in documents:
+        assert _mode(path) == (0o700 if path.is_dir() else 0o600), path
+    for path in (folder / "manifest.json", folder / "key.fingerprint"):
+        assert _mode(path) == 0o644, path
     assert not [p for p in example_dir.rglob("*") if p.name.endswith(files.TEMP_SUFFIX)]
 
 

@@ -65,7 +65,7 @@ def test_a_private_file_and_its_folders_are_owner_only(study):
 def test_a_public_file_follows_the_umask_and_is_not_executable(study):
     old = os.umask(0o022)
     try:
-        target = files.write_text(study / "rounds" / ROUND / "labs" / "kal" / "form.csv",
+        target = files.write_text(study / "rounds" / ROUND / "notes" / "form.csv",
                                   "a;b\n", root=study, private=False)
     finally:
         os.umask(old)
@@ -254,8 +254,8 @@ def test_explain_names_the_file_in_the_way(study):
     (".intake/abc.csv", True), ("report/letter-kal.pdf", True),
     ("report/statistics.json", True), ("key.sealed", True), ("key.host.sealed", True),
     ("key.json", True), ("key.fingerprint", False), ("manifest.json", False),
-    ("labs/kal/run-sheet.pdf", False), ("labs/kal/result-form.csv", False),
-    ("labs/host/labels.pdf", False),
+    ("labs/kal/run-sheet.pdf", True), ("labs/kal/result-form.csv", True),
+    ("labs/host/labels.pdf", True),
 ])
 def test_what_is_private_in_a_round_folder(relative, private):
     assert files.is_private(relative) is private
@@ -263,7 +263,8 @@ def test_what_is_private_in_a_round_folder(relative, private):
 
 def test_placement_finds_the_study_folder_and_the_privacy(study):
     assert files.placement(study / "rounds" / ROUND / "host" / "labels.pdf") == (study, True)
-    assert files.placement(study / "rounds" / ROUND / "labs" / "kal" / "x.pdf") == (study, False)
+    assert files.placement(study / "rounds" / ROUND / "labs" / "kal" / "x.pdf") == (study, True)
+    assert files.placement(study / "rounds" / ROUND / "manifest.json") == (study, False)
     assert files.placement(study / "rounds" / ROUND / "key.json") == (study, True)
     assert files.placement(study / "history.pdf") == (study, False)
 

@@ -100,7 +100,29 @@ def test_a_second_unit_of_the_same_material_gets_the_next_spare(planned, runner,
     assert (a.exit_code, b.exit_code) == (0, 0), (a.stderr, b.stderr)
     assert _sent(a) != _sent(b)
     assert units[_sent(b)]["material"] == units[twin]["material"]
-    assert _sent(a) < _sent(b)  # the lowest unused spare first
+
+
+def test_the_spare_sent_is_drawn_at_random_from_the_pool(planned, runner, passphrase):
+    # Sending the lowest unused code first would rank a laboratory's replacements: the
+    # codes of its second and third replacement of one material would come in order,
+    # linking its units across trials. Over repeated first requests every spare of the
+    # pool comes up (5 spares; 60 draws miss one with probability 5 * 0.8**60 < 1e-5).
+    import shutil
+
+    manifest = manifest_of(planned)
+    first = manifest["labs"]["crx"]["trials"][0][0]
+    units = {u["code"]: u for u in _key(planned)["units"]}
+    pool = {c for c, u in units.items() if u["kind"] == "spare"
+            and u["material"] == units[first]["material"]}
+    seen = set()
+    for i in range(60):
+        copy = planned.parent / f"copy{i}"
+        shutil.copytree(planned, copy)
+        done = _spare(runner, copy, "crx", first)
+        assert done.exit_code == 0, done.stderr
+        seen.add(_sent(done))
+        shutil.rmtree(copy)
+    assert seen == pool
 
 
 def test_an_empty_pool_falls_back_to_retained_units_then_to_the_coordinator(planned):
@@ -115,8 +137,10 @@ def test_an_empty_pool_falls_back_to_retained_units_then_to_the_coordinator(plan
     with Ledger.open(planned) as ledger:
         swaps = [spares.issue_spare(study, planned, ROUND, ledger, lab=lab, damaged=code,
                                     key=key) for lab, code in damaged[:7]]
-        assert [(s.spare, s.source) for s in swaps] == (
-            [(c, "spare") for c in pool] + [(c, "retained") for c in kept])
+        # the whole pool first (in an order drawn at random), then the retained units
+        assert sorted(s.spare for s in swaps[:5]) == pool
+        assert sorted(s.spare for s in swaps[5:]) == kept
+        assert [s.source for s in swaps] == ["spare"] * 5 + ["retained"] * 2
         lab, code = damaged[7]
         with pytest.raises(IntakeError) as caught:
             spares.issue_spare(study, planned, ROUND, ledger, lab=lab, damaged=code, key=key)

@@ -50,9 +50,15 @@ def opening_sentence(opening: Mapping[str, Any] | None, *, name_of: Callable[[st
             f"coordinator, {why}; results missing at that moment: {missing}.")
 
 
-def later_sentences(opening: Mapping[str, Any] | None, *,
-                    name_of: Callable[[str], str]) -> list[str]:
-    """Return the sentences on the key's decryptions while sealed and on results after opening."""
+def later_sentences(opening: Mapping[str, Any] | None, *, name_of: Callable[[str], str],
+                    spare_to: Callable[[str], str] | None = None) -> list[str]:
+    """Return the sentences on the key's decryptions while sealed and on results after opening.
+
+    ``spare_to`` names the laboratory a spare was sent to (default ``name_of``); a letter
+    names none but its own, since the host, which sent the spare, would otherwise learn that
+    laboratory's participant code.
+    """
+    spare_to = spare_to or name_of
     if not opening or not opening.get("at"):
         return []
     uses = []
@@ -60,7 +66,7 @@ def later_sentences(opening: Mapping[str, Any] | None, *,
         when = status.ledger_time(str(use.get("at")))
         detail = use.get("detail") or {}
         if use.get("kind") == "spare-swap":
-            what = f"on {when} to issue a spare unit to {name_of(str(detail.get('lab')))}"
+            what = f"on {when} to issue a spare unit to {spare_to(str(detail.get('lab')))}"
         else:
             names = status.host_documents(detail)
             what = (f"on {when} to print the host's documents ("

@@ -306,8 +306,9 @@ def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
         first = f"<b>{first}</b>"
     from planner import status
 
-    text = " ".join([first, *(esc(t) for t in _opening.later_sentences(opening,
-                                                                       name_of=name_of)),
+    text = " ".join([first, *(esc(t) for t in _opening.later_sentences(
+        opening, name_of=name_of,
+        spare_to=lambda slot: "your laboratory" if slot == to.lab else "a participant")),
                      esc(status.sealing_sentence(opening or {}))]).strip()
     sheet = "hand-over sheet" if "drift" in s else "packing list"
     return [
