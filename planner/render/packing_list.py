@@ -57,7 +57,7 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     host = study.lab(manifest["host"])
     entry = manifest["labs"][lab_id]
     dates = manifest["dates"]
-    units = sorted(({"code": code, "kind": "test", "trial": trial}
+    units = sorted(({"code": code, "trial": trial}
                     for trial, run in enumerate(entry["trials"], start=1) for code in run),
                    key=lambda u: u["code"])
     width = _layout.content_width(paper)
@@ -97,16 +97,14 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
                         st["body"]),
               Spacer(1, 2.5 * _MM)]
     box = 3.6 * _MM
-    rows: list[list[Any]] = [["code", "kind", "trial", "packed", "received"]]
+    rows: list[list[Any]] = [["code", "trial", "packed", "received"]]
     for unit in units:
-        rows.append([codes.format(unit["code"]), unit["kind"],
-                     unit["trial"] if unit["trial"] is not None else "",
+        rows.append([codes.format(unit["code"]), unit["trial"],
                      _layout.check_box(box), _layout.check_box(box)])
-    contents = _layout.table(rows, [0.3 * width, 0.2 * width, 0.14 * width, 0.18 * width,
-                                    0.18 * width], _layout.table_style(extra=[
-                                        ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
-                                        ("ALIGN", (3, 0), (-1, -1), "CENTER"),
-                                        ("ALIGN", (2, 0), (2, -1), "CENTER")]), repeatRows=1)
+    contents = _layout.table(rows, [0.34 * width, 0.2 * width, 0.23 * width, 0.23 * width],
+                             _layout.table_style(extra=[
+                                 ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
+                                 ("ALIGN", (1, 0), (-1, -1), "CENTER")]), repeatRows=1)
     story.append(contents)
 
     story += [Paragraph("Storage and handling", st["h2"]),
