@@ -215,18 +215,27 @@ def _storage_problem(exc: BaseException, path: Path) -> LedgerError | None:
     return None
 
 
-def _keep_private(path: Path, *, create: bool) -> None:
-    """Create the ledger file owner-only, and narrow one made wider (by an older version or
-    a copy): it holds every laboratory's results before they are sent out. SQLite gives its
-    journal the database file's permissions."""
+def _keep_private(path: Path) -> None:
+    """Narrow a ledger file made wider (by an older version or a copy) to its owner: it
+    holds every laboratory's results before they are sent out. SQLite gives its journal the
+    database file's permissions."""
     try:
-        if create and not os.path.lexists(path):
-            os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o600))
-        elif os.path.isfile(path) and os.stat(path).st_mode & 0o077 \
-                and os.stat(path).st_uid == os.geteuid():
+        info = os.stat(path)
+        if info.st_mode & 0o077 and info.st_uid == os.geteuid():
             os.chmod(path, 0o600)
     except OSError:
-        pass  # sqlite3.connect below reports what is wrong with the place in one line
+        pass  # sqlite3.connect reports what is wrong with the place in one line
+
+
+def _stale_starts(path: Path) -> None:
+    """Remove ledgers begun by a command that was killed before it put them in place."""
+    from planner import files
+
+    for temp in path.parent.glob(f".{path.name}.*{files.TEMP_SUFFIX}*"):
+        parts = temp.name.split(".")
+        pid = next((int(p) for p in parts if p.isdigit()), 0)
+        if not files.process_alive(pid):
+            temp.unlink(missing_ok=True)
 
 
 class Ledger:
@@ -236,7 +245,9 @@ class Ledger:
                  create: bool = True) -> None:
         self.path = path
         self._clock = clock
-        _keep_private(path, create=create)
+        if create and not os.path.lexists(path):
+            self._start(path)
+        _keep_private(path)
         try:
             self.db = sqlite3.connect(path, isolation_level=None, timeout=10.0)
         except sqlite3.OperationalError as exc:
@@ -254,6 +265,42 @@ class Ledger:
             if problem is not None:
                 raise problem from None
             raise
+
+    def _start(self, path: Path) -> None:
+        """Build a new ledger beside ``path``, owner-only, and put it in place whole: a
+        command killed while starting the ledger leaves no empty or half-made one behind."""
+        import secrets
+
+        from planner import files
+
+        _stale_starts(path)
+        temp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(4)}"
+                              f"{files.TEMP_SUFFIX}")
+        try:
+            os.close(os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o600))
+            self.db = sqlite3.connect(temp, isolation_level=None)
+            try:
+                self.db.execute("PRAGMA foreign_keys = ON")
+                self._migrate(create=True)
+            finally:
+                self.db.close()
+            try:
+                os.link(temp, path)  # never replaces a ledger another command put there
+            except FileExistsError:
+                pass
+            except OSError:  # a file system without hard links
+                if not os.path.lexists(path):
+                    os.replace(temp, path)
+        except (OSError, sqlite3.OperationalError) as exc:
+            problem = _storage_problem(exc, path) if isinstance(exc, sqlite3.Error) else None
+            if problem is not None:
+                raise problem from None
+            if isinstance(exc, OSError) and exc.errno in files.USER_ERRNOS:
+                raise files.explain(exc, path) from None
+            raise
+        finally:
+            for leftover in (temp, Path(f"{temp}-journal")):
+                leftover.unlink(missing_ok=True)
 
     @classmethod
     def open(cls, study_dir: Path, *, clock: Callable[[], datetime] = _utc_now,

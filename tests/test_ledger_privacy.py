@@ -49,3 +49,29 @@ def test_units_are_stored_in_code_order_not_material_by_material(example_dir, pa
     # (6 materials: 1 in 6), not nearly always as in material-by-material blocks
     same = sum(material[a] == material[b] for a, b in zip(stored, stored[1:]))
     assert same / (len(stored) - 1) < 0.35
+
+
+def test_a_new_ledger_appears_whole_or_not_at_all(tmp_path, monkeypatch):
+    # A plan killed while the ledger was being started once left an empty ledger.sqlite,
+    # which every later command refused as a lost ledger.
+    study = tmp_path / "study"
+    study.mkdir()
+    dead = study / f".{LEDGER_NAME}.999999999.0000.ringplan-tmp"  # a start that was killed
+    dead.write_bytes(b"")
+
+    def broken(self, *, create):
+        raise KeyboardInterrupt  # stopped while the schema is being made
+
+    real = Ledger._migrate
+    monkeypatch.setattr(Ledger, "_migrate", broken)
+    try:
+        Ledger.open(study)
+    except KeyboardInterrupt:
+        pass
+    monkeypatch.setattr(Ledger, "_migrate", real)
+    # no ledger, no temp file: neither the stopped start's nor the stale one of a dead process
+    assert list(study.iterdir()) == []
+    with Ledger.open(study) as ledger:
+        assert ledger.rounds() == []
+    assert sorted(p.name for p in study.iterdir()) == [LEDGER_NAME]
+    assert _mode(study / LEDGER_NAME) == 0o600
