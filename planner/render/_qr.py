@@ -21,7 +21,8 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from reportlab.pdfgen.canvas import Canvas
 
-__all__ = ["QUIET", "draw", "flowable", "image_mask", "image_masks", "matrix", "modules"]
+__all__ = ["QUIET", "draw", "flowable", "image_mask", "image_masks", "matrices", "matrix",
+           "modules"]
 
 QUIET = 4
 """Width of the blank quiet zone around a symbol, in modules."""
@@ -29,13 +30,146 @@ QUIET = 4
 
 def matrix(text: str) -> list[list[bool]]:
     """Return the QR matrix of ``text`` (True = dark module), without quiet zone."""
+    return matrices([text])[0]
+
+
+def matrices(texts: Sequence[str]) -> list[list[list[bool]]]:
+    """Return the QR matrix of every text, each with the mask ``qrcode`` itself would choose.
+
+    ``qrcode`` tries the 8 masks of ISO/IEC 18004 and keeps the one with the lowest
+    penalty, building and scoring each masked symbol in pure Python (about 1.7 ms a code).
+    Here each symbol is built once; its 8 masked variants differ only in the data modules,
+    so they are made by one XOR each and all variants of all texts are scored together
+    with numpy (``_penalties``: the four rules and weights of ``qrcode.util.lost_point``);
+    ``qrcode`` then writes the chosen mask's format bits. A test compares the result with
+    ``qrcode``'s own choice over thousands of codes.
+    """
+    if len(texts) > _BATCH:  # numpy works best on arrays that stay in the cache
+        return [grid for i in range(0, len(texts), _BATCH)
+                for grid in matrices(texts[i:i + _BATCH])]
+    import numpy as np
     import qrcode
     from qrcode.constants import ERROR_CORRECT_Q
+    from qrcode.exceptions import DataOverflowError
 
-    symbol = qrcode.QRCode(version=None, error_correction=ERROR_CORRECT_Q, border=0)
-    symbol.add_data(text)
-    symbol.make(fit=True)
-    return [list(row) for row in symbol.get_matrix()]
+    symbols = []
+    for text in texts:
+        # Version 1 holds a code (16 alphanumeric characters at level Q); a longer text
+        # gets the smallest version that holds it, as qrcode's fitting would choose.
+        symbol = qrcode.QRCode(version=1, error_correction=ERROR_CORRECT_Q, border=0,
+                               mask_pattern=0)
+        symbol.add_data(text)
+        try:
+            symbol.make(fit=False)  # data encoded, mask 0 applied
+        except DataOverflowError:
+            symbol = qrcode.QRCode(version=None, error_correction=ERROR_CORRECT_Q, border=0,
+                                   mask_pattern=0)
+            symbol.add_data(text)
+            symbol.make(fit=True)
+        symbols.append(symbol)
+    out: list[list[list[bool]]] = [[] for _ in symbols]
+    for version in sorted({s.version for s in symbols}):
+        chosen = [i for i, s in enumerate(symbols) if s.version == version]
+        data, function = _layout_of(symbols[chosen[0]])
+        masks = _mask_grids(data.shape[0])
+        flip = data[None, :, :] & (masks[0][None, :, :] ^ masks)  # mask 0 -> mask k
+        base = np.array([symbols[i].modules for i in chosen], dtype=bool)
+        # What qrcode scores: each symbol with its format modules and dark module light.
+        test = np.where(data[None, :, :], base, function[None, :, :])
+        variants = test[:, None, :, :] ^ flip[None, :, :, :]
+        n = data.shape[0]
+        scores = _penalties(variants.reshape(-1, n, n)).reshape(len(chosen), 8)
+        best = np.argmin(scores, axis=1)  # the first of equals, as qrcode
+        for row, i in enumerate(chosen):
+            symbol = symbols[i]
+            symbol.modules = (base[row] ^ flip[best[row]]).tolist()
+            symbol.setup_type_info(False, int(best[row]))
+            out[i] = [list(r) for r in symbol.modules]
+    return out
+
+
+_BATCH = 64
+"""Symbols scored together (0.36 ms a code in batches of 64, 0.52 ms one by one)."""
+
+_LAYOUTS: dict[int, Any] = {}
+
+
+def _layout_of(symbol: Any) -> tuple[Any, Any]:
+    """Return, for the symbol's version, the grid of the modules ``map_data`` fills (data and
+    error correction) and the function patterns as qrcode scores them (format info light)."""
+    import numpy as np
+    from qrcode.main import copy_2d_array, precomputed_qr_blanks
+
+    if symbol.version not in _LAYOUTS:
+        kept = symbol.modules
+        symbol.modules = copy_2d_array(precomputed_qr_blanks[symbol.version])
+        symbol.setup_type_info(True, 0)
+        if symbol.version >= 7:
+            symbol.setup_type_number(True)
+        cells = symbol.modules
+        symbol.modules = kept
+        _LAYOUTS[symbol.version] = (
+            np.array([[cell is None for cell in row] for row in cells], dtype=bool),
+            np.array([[bool(cell) for cell in row] for row in cells], dtype=bool))
+    return _LAYOUTS[symbol.version]
+
+
+_MASKS: dict[int, Any] = {}
+
+
+def _mask_grids(n: int) -> Any:
+    """Return the 8 mask patterns of ISO/IEC 18004 on an n x n grid (True = invert)."""
+    import numpy as np
+    from qrcode import util
+
+    if n not in _MASKS:
+        _MASKS[n] = np.array([[[util.mask_func(k)(i, j) for j in range(n)] for i in range(n)]
+                              for k in range(8)], dtype=bool)
+    return _MASKS[n]
+
+
+def _runs_penalty(grids: Any) -> Any:
+    """N1: every run of 5 or more same-colour modules along a row costs its length - 2."""
+    import numpy as np
+
+    k, rows, n = grids.shape
+    flat = grids.reshape(k * rows, n)
+    change = np.ones((k * rows, n + 1), dtype=bool)
+    change[:, 1:n] = flat[:, 1:] != flat[:, :-1]
+    row, col = np.nonzero(change)
+    lengths = np.diff(col)
+    inside = row[1:] == row[:-1]
+    lengths, owner = lengths[inside], row[1:][inside]
+    cost = np.where(lengths >= 5, lengths - 2, 0)
+    per_row = np.bincount(owner, weights=cost, minlength=k * rows)
+    return per_row.reshape(k, rows).sum(axis=1).astype(np.int64)
+
+
+def _penalties(grids: Any) -> Any:
+    """Return the penalty of each of a stack of symbols, as ``qrcode.util.lost_point``."""
+    import numpy as np
+
+    k, n, _ = grids.shape
+    n1 = _runs_penalty(grids) + _runs_penalty(grids.transpose(0, 2, 1))
+    same = ((grids[:, :-1, :-1] == grids[:, :-1, 1:]) & (grids[:, :-1, :-1] == grids[:, 1:, :-1])
+            & (grids[:, :-1, :-1] == grids[:, 1:, 1:]))
+    n2 = 3 * same.reshape(k, -1).sum(axis=1)
+    # N3: a 1:1:3:1:1 finder-like run with 4 light modules on one side, read as 11-bit
+    # numbers along rows and columns.
+    weights = 1 << np.arange(10, -1, -1)
+    n3 = np.zeros(k, dtype=np.int64)
+    for g in (grids, grids.transpose(0, 2, 1)):
+        value = np.lib.stride_tricks.sliding_window_view(g, 11, axis=2) @ weights
+        n3 += 40 * ((value == _FINDER_LIKE) | (value == _FINDER_LIKE_REVERSED)).reshape(
+            k, -1).sum(axis=1)
+    # N4: 10 for every full 5 % the share of dark modules is off 50 % (qrcode's arithmetic).
+    share = grids.reshape(k, -1).sum(axis=1) / float(n ** 2)
+    n4 = (np.abs(share * 100 - 50) / 5).astype(np.int64) * 10
+    return n1 + n2 + n3 + n4
+
+
+_FINDER_LIKE = int("10111010000", 2)
+_FINDER_LIKE_REVERSED = int("00001011101", 2)
 
 
 def modules(ops: str) -> int:
@@ -59,7 +193,7 @@ def image_mask(grid: Sequence[Sequence[bool]]) -> str:
 
 def image_masks(texts: Iterable[str]) -> list[str]:
     """Return ``image_mask(matrix(t))`` for every text; the unit of work of a worker process."""
-    return [image_mask(matrix(text)) for text in texts]
+    return [image_mask(grid) for grid in matrices(list(texts))]
 
 
 def draw(canvas: Canvas, ops: str, x: float, y: float, side: float) -> None:
