@@ -278,8 +278,10 @@ def history_command(
     else:
         record = history.collect(study_dir, None, labs=labs)  # nothing planned, nothing to read
     if pdf:
+        from planner import render
         from planner.render import history as history_page
 
+        render.use_fonts(study, study_dir)
         out = history_page.render(Path(study_dir) / "history.pdf", record, study_id=study.id,
                                   title=study.study.title, paper=study.study.paper)
     if as_json:
@@ -377,7 +379,7 @@ def plan(
         _print_route(con, route.to_json())
     con.print(f"fingerprint {result.fingerprint}")
     con.print(f"wrote {folder}")
-    for text in overview.warnings(study):
+    for text in overview.warnings(study, study_dir):
         typer.echo(f"warning: {text}", err=True)
     for text in overview.notes(study):
         typer.echo(f"note: {text}", err=True)

@@ -39,7 +39,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, draw, files, plan, seal
+from planner import circulate, codes, draw, files, language, plan, seal
 from planner.errors import DataError, LedgerError, Where
 from planner.results import Unblinded
 
@@ -515,7 +515,7 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     SealError when key.json does not match the published fingerprint, DataError when
     the results cannot be joined to the key.
     """
-    from planner import intake
+    from planner import intake, render
     from planner import status as standing
     from planner.render import letter, report
 
@@ -560,7 +560,9 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     head = ledger.head()
     statistics["ledger"] = {"link": head.seq, "at": head.at, "head": head.head}
     out = folder / REPORT_DIR
-    # A link or a folder in the way is named before any file of the report is written.
+    # A font file that cannot be used is named before any file of the report is written,
+    render.use_fonts(study, study_dir)
+    # and so is a link or a folder in the way.
     files.check_paths([out / name for name in (RESULTS_NAME, STATISTICS_NAME, REPORT_NAME)]
                       + [out / letter_name(lab.id) for lab in study.laboratories],
                       root=study_dir)
@@ -573,7 +575,7 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
     paper = study.study.paper
     report.render(out / REPORT_NAME, statistics, rows, paper=paper)
     addressees = [letter.Addressee(lab.id, lab.name, tuple(lab.address), lab.contact.name,
-                                   lab.decimal) for lab in study.laboratories]
+                                   lab.decimal, language.of(lab)) for lab in study.laboratories]
     letter.render_all(out, statistics, rows, addressees, paper=paper,
                       workers=workers if len(addressees) >= _PARALLEL_FROM else 1)
     with ledger.transaction():

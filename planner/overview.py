@@ -15,7 +15,7 @@ from planner import design
 if TYPE_CHECKING:
     from planner.spec import Study
 
-__all__ = ["notes", "past_rounds", "summarize", "warnings"]
+__all__ = ["notes", "past_rounds", "summarize", "undrawable", "warnings"]
 
 
 def past_rounds(study: Study, study_dir: Path | None) -> list[tuple[str, str, date]]:
@@ -81,17 +81,68 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
         "next_host": {"host": host, "reason": proposals[0].reason},
         "schedule": dates.to_json(),
         "route": route.to_json() if route else None,
-        "warnings": warnings(study),
+        "warnings": warnings(study, study_dir),
         "notes": notes(study),
     }
 
 
-def warnings(study: Study) -> list[str]:
+def warnings(study: Study, study_dir: Path | None = None) -> list[str]:
     """Return what ``check`` and ``plan`` warn of: what could tell materials apart to a
-    laboratory (``parcel.tells``)."""
+    laboratory (``parcel.tells``), and text the fonts cannot draw (``undrawable``)."""
     from planner import parcel
 
-    return parcel.tells(study)
+    return parcel.tells(study) + undrawable(study, study_dir)
+
+
+_SHOWN_AT_MOST = 8  # characters named in one warning
+
+
+def undrawable(study: Study, study_dir: Path | None = None) -> list[str]:
+    """Return one warning per text of the spec with characters that the regular or the bold
+    font cannot draw (they would print as empty boxes), naming the field and the characters.
+
+    The fonts are the study's own (``study.fonts``, relative to ``study_dir``; nothing is
+    said without the folder) or the bundled DejaVu family. Raises SpecError for a named
+    font file that cannot be used.
+    """
+    from planner import fonts
+
+    if study.study.fonts is None:
+        chosen = fonts.BUNDLED
+    elif study_dir is None:
+        return []
+    else:
+        chosen = fonts.for_study(study, study_dir)
+    # Any text may be set in either face (names in bold on most documents).
+    drawable = fonts.characters(chosen.regular) & fonts.characters(chosen.bold)
+    named = ("the bundled DejaVu Sans" if study.study.fonts is None else
+             "the fonts of study.fonts")
+    out = []
+    for field, text in _texts(study.model_dump(mode="json", by_alias=True, exclude_none=True)):
+        missing = list(dict.fromkeys(ch for ch in text if ord(ch) not in drawable
+                                     and ch not in "\t\n\r"))
+        if not missing:
+            continue
+        shown = ", ".join(f"{ch} (U+{ord(ch):04X})" if ch.isprintable() else f"U+{ord(ch):04X}"
+                          for ch in missing[:_SHOWN_AT_MOST])
+        more = (f" and {len(missing) - _SHOWN_AT_MOST} more" if len(missing) > _SHOWN_AT_MOST
+                else "")
+        out.append(f"{field}: {shown}{more} cannot be drawn with {named} and would print as "
+                   "empty boxes; name TrueType fonts that have them under study.fonts")
+    return out
+
+
+def _texts(value: Any, path: str = "") -> list[tuple[str, str]]:
+    """Return (field path, text) of every string in a dumped spec, as ``laboratories[3].name``;
+    the font files' own paths are not printed and left out."""
+    if isinstance(value, str):
+        return [(path, value)]
+    if isinstance(value, dict):
+        return [found for key, item in value.items() if f"{path}.{key}" != "study.fonts"
+                for found in _texts(item, f"{path}.{key}" if path else str(key))]
+    if isinstance(value, list):
+        return [found for i, item in enumerate(value) for found in _texts(item, f"{path}[{i}]")]
+    return []
 
 
 def notes(study: Study) -> list[str]:

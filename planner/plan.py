@@ -21,7 +21,7 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, design, draw, files, seal, tokens
+from planner import circulate, codes, design, draw, files, language, seal, tokens
 from planner.errors import LedgerError, PlannerError, SealError, Where
 
 if TYPE_CHECKING:
@@ -38,7 +38,8 @@ __all__ = [
     "frame_from_key",
     "write_round", "round_dir", "dates_for", "read_manifest", "units_from_key", "parcel_spares",
     "compare_units",
-    "FORM_COLUMNS", "MANIFEST_NAME", "KINDS", "run_orders", "build_units", "host_visit_forms",
+    "FORM_COLUMNS", "FORM_IDENTITY", "MANIFEST_NAME", "KINDS", "run_orders", "build_units",
+    "host_visit_forms",
     "expected_runs", "manifest_runs",
 ]
 
@@ -46,6 +47,9 @@ MANIFEST_NAME = "manifest.json"
 HOST_SEALED_NAME = "key.host.sealed"  # the host's own copy, with trustees
 KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
+FORM_IDENTITY = ("study", "round", "visit", "laboratory", "fingerprint", "unit", "decimal",
+                 "measurand", "results due", "submission token")
+"""Keys of a result form's identity lines (``# round: 2027-1``): English in every language."""
 _KEY_FORMAT = "ringplan-key/3"
 # Keys of rounds planned while every parcel carried spares of each material (their spare
 # units belong to the laboratories); since ringplan-key/3 the host keeps every spare.
@@ -397,9 +401,11 @@ def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
         identity.insert(3, ("visit", visit))
     for key, value in identity:
         out.write(f"# {key}: {value}\n")
-    out.write(f"# fill in value (decimal {lab.decimal}, no thousands separator), optional expanded "
-              "uncertainty (k = 2), date (YYYY-MM-DD), analyst; leave value empty and say why "
-              "in remarks if a test failed\n")
+    # The keys above and the column names below are read back and stay English; the one
+    # note line is in the laboratory's language (planner.language).
+    t = language.texts(language.of(lab))
+    note = t("form.note", decimal=t(f"common.decimal_{lab.decimal}"))
+    out.write(f"# {note}\n")
     writer = csv.writer(out, delimiter=sep, lineterminator="\n")
     writer.writerow(FORM_COLUMNS)
     runs = manifest["host_visits"][visit] if visit else manifest["labs"][lab_id]["trials"]

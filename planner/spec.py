@@ -23,7 +23,7 @@ from planner.errors import PlannerError, SpecError, Where
 __all__ = [
     "Study", "StudyInfo", "Lab", "Contact", "Blackout", "Material", "Hazard",
     "Design", "Schedule", "Transit", "Evaluation", "SigmaPtPolicy", "PrecisionStudy",
-    "Participants", "MaterialEvaluation", "PastRound", "Trustee", "Sealing",
+    "Participants", "MaterialEvaluation", "PastRound", "Trustee", "Sealing", "Fonts",
     "load", "parse", "SPEC_NAME",
 ]
 
@@ -36,6 +36,14 @@ class _Model(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, str_strip_whitespace=True)
 
 
+class Fonts(_Model):
+    """A study's own TrueType files, relative to the study folder (planner.fonts)."""
+
+    regular: str = Field(min_length=1)
+    bold: str | None = Field(default=None, min_length=1)
+    italic: str | None = Field(default=None, min_length=1)
+
+
 class StudyInfo(_Model):
     id: str = Field(pattern=_ID)
     title: str = Field(min_length=1)
@@ -44,6 +52,7 @@ class StudyInfo(_Model):
     organiser: str = ""
     paper: Literal["A4", "letter"] = "A4"
     label_sheet: str = "a4-3x8-70x37"
+    fonts: Fonts | None = None
 
 
 class Contact(_Model):
@@ -66,12 +75,24 @@ class Lab(_Model):
     country: str = Field(pattern=r"^[A-Z]{2}$")
     can_host: bool = False
     decimal: Literal["point", "comma"] = "point"
+    # The language of everything the laboratory receives (planner.language); None: the study's.
+    language: str | None = None
     host_weight: float = Field(default=1.0, gt=0)
     transit_days: int | None = Field(default=None, ge=0, le=30)
     joined: date | None = None
     blackouts: tuple[Blackout, ...] = ()
     # With trustees (``sealing``), the host's own copy of the map is sealed to this key.
     public_key: str | None = None
+
+    @field_validator("language")
+    @classmethod
+    def _known_language(cls, code: str | None) -> str | None:
+        from planner import language
+
+        if code is not None and code not in language.available():
+            raise ValueError(f"{code!r} is not a language of ringplan's documents; use one of "
+                             f"{', '.join(language.available())}")
+        return code
 
 
 class Hazard(_Model):
@@ -335,11 +356,12 @@ def load(folder_or_file: Path) -> Study:
         text = path.read_text(encoding="utf-8")
     except UnicodeDecodeError:
         raise SpecError("the file is not UTF-8 text; save it as UTF-8", Where(str(path))) from None
-    return parse(text, name=str(path))
+    return parse(text, name=str(path), folder=path.parent)
 
 
-def parse(text: str, *, name: str = SPEC_NAME) -> Study:
-    """Return the Study written in YAML ``text``; ``name`` is used in messages."""
+def parse(text: str, *, name: str = SPEC_NAME, folder: Path | None = None) -> Study:
+    """Return the Study written in YAML ``text``; ``name`` is used in messages. With the
+    study ``folder``, the font files the study names must be there and usable."""
     loader = _Loader(text)
     try:
         node = loader.get_single_node()
@@ -372,6 +394,11 @@ def parse(text: str, *, name: str = SPEC_NAME) -> Study:
                     for err in exc.errors()]
         raise SpecError(problems[0].message, problems[0].where, problems) from None
     problems = [PlannerError(msg, where(loc)) for loc, msg in _cross_checks(study)]
+    if folder is not None and study.study.fonts is not None:
+        from planner import fonts
+
+        problems += [PlannerError(msg, where(("study", "fonts", role)))
+                     for role, msg in fonts.problems(study.study.fonts, folder)]
     if problems:
         raise SpecError(problems[0].message, problems[0].where, problems)
     return study

@@ -23,7 +23,7 @@ import pytest
 import yaml
 from conftest import EXAMPLE, PASSPHRASE, ROUND, plan_example_round, run_cli
 
-from planner import codes, seal
+from planner import codes, language, seal
 from planner.render import _sheets, labels
 
 LAB = "tor"
@@ -50,7 +50,7 @@ def _old_label(study, manifest, unit, expiry):
     material = study.material(unit["material"])
     lab = study.lab(unit["lab"])
     return labels.Label(code=unit["code"], hazard=material.hazard.word if material.hazard else "",
-                        trial=labels._kind_text(unit, manifest["host"]),
+                        trial=labels._kind_text(unit, language.texts()),
                         lab=(f"for {lab.name}", f"for {lab.id}"),
                         use_by=f"use by {expiry}" if expiry else "",
                         study=f"{study.id} · round {manifest['round']}", storage=material.storage)

@@ -19,7 +19,7 @@ import re
 
 import pytest
 
-from planner import demo
+from planner import demo, language, spec
 from planner.stats import iso13528
 
 _SENTENCE = re.compile(r"Without (?:your|the host's) results the consensus would be "
@@ -104,11 +104,13 @@ def test_the_report_keeps_the_consensus_without_the_host_for_the_coordinator(rou
 def test_no_letter_names_the_participant_code_a_spare_went_to(round_):
     # The host sent the spare, so it knows to whom: a P-code beside "spare" would name that
     # laboratory to the host. The demo issues one spare, to hel.
+    # Each letter says it in its laboratory's language (hel writes German).
     stats, letters = round_
+    study = spec.load(demo.example_spec())
     for lab, text in letters.items():
-        assert "to issue a spare unit to" in text, lab
-        if lab == "hel":
-            assert "to issue a spare unit to your laboratory" in text
-        else:
-            assert "to issue a spare unit to a participant" in text, lab
-            assert f"spare unit to {stats['participants']['hel']}" not in text, lab
+        t = language.texts(language.of(study.lab(lab)))
+        # "on {when} to issue a spare unit to {lab}": what follows the time
+        said = t.template("opening.spare").split("{when}")[1]
+        assert said.format(lab=t("letter.your_laboratory") if lab == "hel"
+                           else t("letter.a_participant")).strip() in text, lab
+        assert said.format(lab=stats["participants"]["hel"]).strip() not in text, lab

@@ -16,7 +16,7 @@ import shutil
 from pathlib import Path
 
 import pytest
-from conftest import LABS, PASSPHRASE, ROUND, filled, plan_example_round, run_cli, write
+from conftest import EXAMPLE, LABS, PASSPHRASE, ROUND, filled, plan_example_round, run_cli, write
 from typer.testing import CliRunner
 
 from planner import plan
@@ -34,6 +34,17 @@ def _text(path: Path) -> str:
 
     with pdfplumber.open(path) as pdf:
         return " ".join(" ".join((page.extract_text() or "").split()) for page in pdf.pages)
+
+
+def _flat(text: str) -> str:
+    return " ".join(text.split())
+
+
+def _words(lab: str):
+    """Return the texts a laboratory's letter is written in (hel writes German, study.yaml)."""
+    from planner import language, spec
+
+    return language.texts(language.of(spec.load(EXAMPLE).lab(lab)))
 
 
 def _round(base: Path, *, senders, force: bool, print_early: bool = True) -> Path:
@@ -120,12 +131,21 @@ def test_every_letter_discloses_the_forced_opening_with_the_reason(forced, lab):
     assert OLD_CLAIM not in text
     # A letter names only its own laboratory: in the others' letters the reason and the list
     # of the missing give crx's participant code of this round.
-    crx = "your laboratory" if lab == "crx" else s["participants"]["crx"]
+    t = _words(lab)
+    crx = t("letter.your_laboratory") if lab == "crx" else s["participants"]["crx"]
     said = "crx" if lab == "crx" else s["participants"]["crx"]
-    assert ("The decoding key was opened on 2027-02-03 at 10:15 UTC BEFORE every result was "
-            f"in: forced by the coordinator, reason: '{said} sent nothing'; results missing at "
-            f"that moment: {crx}.") in text
-    assert "to print the host's documents (prep sheet), before any result had come in" in text
+    if t.code == "en":
+        assert ("The decoding key was opened on 2027-02-03 at 10:15 UTC BEFORE every result was "
+                f"in: forced by the coordinator, reason: '{said} sent nothing'; results missing "
+                f"at that moment: {crx}.") in text
+    # the same sentence in the laboratory's language (hel writes German)
+    assert _flat(t("opening.forced", when=t("opening.time_utc", date="2027-02-03", time="10:15"),
+                   why=t("opening.reason", reason=f"{said} sent nothing"),
+                   missing=crx)) in text
+    assert _flat(t("opening.host_documents", when=t("opening.time_utc", date="2027-01-11",
+                                                    time="08:30"),
+                   documents=t("opening.document.prep-sheet"))
+                 + t("opening.before_results")) in text
     for other in LABS:
         if other != lab:
             assert not re.search(rf"\b{other}\b", text), other
@@ -146,7 +166,9 @@ def test_every_letter_prints_the_full_fingerprint(forced, lab):
     fingerprint = _statistics(forced)["fingerprint"]
     text = _text(_report(forced) / f"letter-{lab}.pdf")
     assert len(fingerprint) == 64 and fingerprint in text.replace(" ", "")
-    assert "equal to the fingerprint printed on your packing list and run sheet" in text
+    if _words(lab).code == "en":
+        assert "equal to the fingerprint printed on your packing list and run sheet" in text
+    assert _flat(_words(lab).template("letter.fingerprint_packing").split("{")[0]) in text
 
 
 def test_results_recorded_after_the_opening_are_named_in_the_disclosure(forced, tmp_path,
@@ -178,8 +200,12 @@ def test_letters_after_a_normal_opening_say_every_result_was_recorded(normal):
     assert s["opening"]["early_decryptions"] == []
     for lab in LABS:
         text = _text(_report(normal) / f"letter-{lab}.pdf")
-        assert ("The decoding key was opened on 2027-02-03 at 10:15 UTC, after the results of "
-                "every laboratory had been recorded.") in text
+        t = _words(lab)
+        assert _flat(t("opening.opened", when=t("opening.time_utc", date="2027-02-03",
+                                                 time="10:15"))) in text
+        if t.code == "en":
+            assert ("The decoding key was opened on 2027-02-03 at 10:15 UTC, after the results "
+                    "of every laboratory had been recorded.") in text
         assert "BEFORE" not in text and OLD_CLAIM not in text
         assert "No results of your laboratory" not in text
     report = _text(_report(normal) / "report.pdf")

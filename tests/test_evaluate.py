@@ -227,8 +227,9 @@ def test_letters_name_only_their_own_laboratory(evaluated):
         others = {c for o, c in s["participants"].items() if o != lab}
         assert all(c in text for c in others)
         assert s["participants"][lab] not in text  # its own row says "you"
-    assert "prepared in-house" in _text(out / "letter-kal.pdf")
-    assert "prepared in-house" not in _text(out / "letter-tor.pdf")
+    # white space made even: where a line breaks depends on the font
+    assert "prepared in-house" in " ".join(_text(out / "letter-kal.pdf").split())
+    assert "prepared in-house" not in " ".join(_text(out / "letter-tor.pdf").split())
 
 
 def test_report_is_a4_and_shows_the_biased_laboratory(evaluated):

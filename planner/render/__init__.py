@@ -31,7 +31,7 @@ if TYPE_CHECKING:
     from planner.spec import Study
 
 __all__ = ["KINDS", "check_options", "needs_key", "planned_documents", "print_calibration",
-           "print_round"]
+           "print_round", "use_fonts"]
 
 KINDS = ("labels", "prep", "packing", "runsheets", "forms")
 """The kinds of document ``print_round(only=...)`` accepts."""
@@ -49,6 +49,15 @@ def _check_key(manifest: dict[str, Any], key: dict[str, Any]) -> None:
         raise SealError(f"the key's fingerprint {found[:16]}... does not match the round's "
                         f"{str(manifest.get('fingerprint'))[:16]}...; the key or the manifest "
                         "was changed")
+
+
+def use_fonts(study: Study, study_dir: Path) -> None:
+    """Set the documents drawn from now on in the study's fonts (``study.fonts``, else the
+    bundled DejaVu family); raise SpecError for a font file missing or not TrueType."""
+    from planner import fonts
+    from planner.render import _layout
+
+    _layout.use_fonts(fonts.for_study(study, study_dir))
 
 
 def check_options(study: Study, study_dir: Path, manifest: dict[str, Any], *,
@@ -78,6 +87,9 @@ def check_options(study: Study, study_dir: Path, manifest: dict[str, Any], *,
             raise PlannerError("a circulating set's labels are printed once, by the host, one "
                                "per artefact; leave out --lab", Where(field="--lab"))
         wanted.discard("labels")
+    from planner import fonts
+
+    fonts.for_study(study, study_dir)  # a font file that cannot be used, named early too
     geometry = None
     if "labels" in wanted:
         geometry = _sheets.load(sheet or study.study.label_sheet, [Path(study_dir) / "sheets"],
@@ -100,7 +112,7 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     round was not planned, SealError if the key is not the round's,
     PlannerError for an unknown kind, laboratory or sheet.
     """
-    from planner import plan
+    from planner import language, plan
     from planner.render import labels, packing_list, prep_sheet, result_form, run_sheet
 
     folder = plan.round_dir(study_dir, round_id)
@@ -109,6 +121,7 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
         _check_key(manifest, key)
     wanted, geometry = check_options(study, study_dir, manifest, only=only, lab=lab,
                                      codes=codes, sheet=sheet)
+    use_fonts(study, study_dir)
     if key is None and needs_key(wanted, labels=geometry is not None, lab=lab):
         from planner.errors import SealError
 
@@ -154,7 +167,8 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
                 text = csv_path.read_text(encoding="utf-8")
             else:
                 text = plan.result_form_csv(study, manifest, lab_id, token=token)
-            out.append(result_form.render(lab_dir / "result-form.xlsx", text))
+            out.append(result_form.render(lab_dir / "result-form.xlsx", text,
+                                          language=language.of(study.lab(lab_id))))
     return out
 
 
@@ -221,7 +235,7 @@ def planned_documents(study: Study, manifest: dict[str, Any], *, wanted: set[str
 def _print_stops(study: Study, manifest: dict[str, Any], lab_dir: Path, lab_id: str,
                  wanted: set[str], *, paper: str, token: str) -> list[Path]:
     """Write a circulating set's documents of every stop of one laboratory; return their paths."""
-    from planner import plan
+    from planner import language, plan
     from planner.render import handover, result_form, run_sheet
 
     out: list[Path] = []
@@ -243,7 +257,8 @@ def _print_stops(study: Study, manifest: dict[str, Any], lab_dir: Path, lab_id: 
                 text = csv_path.read_text(encoding="utf-8")
             else:
                 text = plan.result_form_csv(study, manifest, lab_id, later, token=token)
-            out.append(result_form.render(lab_dir / f"{stem}.xlsx", text))
+            out.append(result_form.render(lab_dir / f"{stem}.xlsx", text,
+                                          language=language.of(study.lab(lab_id))))
     return out
 
 

@@ -7,8 +7,13 @@ set in a monospaced bold face so that 0/O and 1/I are told apart at a glance
 of a document names the study and the round in the header and ends with
 "page N of M"; host documents carry a confidentiality line in the header.
 
-Only the 14 standard PDF fonts are used (nothing to embed, small files); they
-cover Latin-1, which is enough for the names and addresses of our studies.
+Text is set in TrueType fonts embedded in every PDF (reportlab keeps only the glyphs a
+document uses): the bundled DejaVu Sans family, which draws Latin with every European
+diacritic, Greek and Cyrillic, or a study's own files (``planner.fonts``). ``FONT``,
+``BOLD``, ``MONO`` and ``MONO_REGULAR`` are the names reportlab knows them by;
+``use_fonts`` chooses the files, ``fonts_ready`` registers the bundled ones when nothing
+was chosen. Registration happens once per process and never at import, so that
+``ringplan --help`` stays free of reportlab.
 """
 
 from __future__ import annotations
@@ -16,7 +21,10 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from planner.fonts import FontSet
 
 __all__ = [
     "ACCENT",
@@ -32,15 +40,18 @@ __all__ = [
     "Running",
     "build",
     "check_box",
+    "chosen_fonts",
     "content_width",
     "escape",
     "fit_text",
+    "fonts_ready",
     "grouped_fingerprint",
     "page_size",
     "rounded_box",
     "styles",
     "table",
     "table_style",
+    "use_fonts",
     "wrap_words",
     "write_atomic",
 ]
@@ -50,10 +61,14 @@ ACCENT = "#1d5c63"
 INK = "#1a1a1a"
 MUTED = "#6b6b6b"
 RULE = "#c9cfd1"
-FONT = "Helvetica"
-BOLD = "Helvetica-Bold"
-MONO = "Courier-Bold"
-MONO_REGULAR = "Courier"
+# The names of the fonts text is set in; ``use_fonts`` points them at a study's own files.
+FONT = "DejaVuSans"
+BOLD = "DejaVuSans-Bold"
+MONO = "DejaVuSansMono-Bold"
+MONO_REGULAR = "DejaVuSansMono"
+
+_chosen: FontSet | None = None
+_registered: dict[FontSet, tuple[str, str, str, str]] = {}
 
 _MM = 72.0 / 25.4
 _MARGIN_SIDE = 20 * _MM
@@ -70,28 +85,102 @@ def page_size(paper: str) -> tuple[float, float]:
     raise ValueError(f"unknown paper {paper!r}")
 
 
+def use_fonts(chosen: FontSet) -> None:
+    """Set the documents drawn from now on in the files of ``chosen``: register them with
+    reportlab (once per process) and point FONT, BOLD, MONO and MONO_REGULAR at them.
+
+    Raises SpecError for a study's file that takes the name of another font in use.
+    """
+    global FONT, BOLD, MONO, MONO_REGULAR, _chosen
+    names = _registered.get(chosen)
+    if names is None:
+        names = _registered[chosen] = _register(chosen)
+    FONT, BOLD, MONO, MONO_REGULAR = names
+    _chosen = chosen
+
+
+def chosen_fonts() -> FontSet | None:
+    """Return the fonts ``use_fonts`` chose in this process, None if none were chosen yet."""
+    return _chosen
+
+
+def fonts_ready() -> None:
+    """Register the bundled fonts unless fonts were chosen already; cheap after the first."""
+    if _chosen is None:
+        from planner import fonts
+
+        use_fonts(fonts.BUNDLED)
+
+
+def _register(chosen: FontSet) -> tuple[str, str, str, str]:
+    """Register the files of ``chosen`` and their bold and italic pairings; return the names
+    of the regular, bold, mono bold and mono faces."""
+    import hashlib
+
+    from reportlab.pdfbase import pdfmetrics
+    from reportlab.pdfbase.ttfonts import TTFont
+
+    from planner import fonts
+    from planner.errors import SpecError, Where
+
+    bundled = {fonts.BUNDLED.regular, fonts.BUNDLED.bold, fonts.BUNDLED.italic,
+               fonts.BUNDLED.mono, fonts.BUNDLED.mono_bold}
+    names = []
+    for role, path in (("regular", chosen.regular), ("bold", chosen.bold),
+                       ("italic", chosen.italic), ("mono", chosen.mono),
+                       ("mono_bold", chosen.mono_bold)):
+        # A study's file is named by its content, so that the same file gets the same name
+        # (and the same PDF bytes) in every process, worker processes included.
+        name = path.stem if path in bundled else (
+            f"study-{role}-{hashlib.sha256(path.read_bytes()).hexdigest()[:12]}")
+        if name not in pdfmetrics.getRegisteredFontNames():
+            # Only the glyphs a document uses are embedded (asciiReadable would add all of
+            # ASCII: some 8 KB more per face). No shaping: the scripts we print need none,
+            # and the bytes stay the same whether or not a shaping library is installed.
+            font = TTFont(name, str(path), asciiReadable=False, shapable=False)
+            pdfmetrics.registerFont(font)
+            # reportlab takes a second file that has the PostScript name of a font already
+            # registered for that font, and would draw with the other file's glyphs.
+            if pdfmetrics.getFont(name).face._ttf_data != font.face._ttf_data:
+                raise SpecError(f"the font {path.name!r} calls itself "
+                                f"{font.face.name.decode('latin-1')!r} like another font in "
+                                "use, with other glyphs; choose a font of another name",
+                                Where(field=f"study.fonts.{role}"))
+        names.append(name)
+    regular, bold, italic, mono, mono_bold = names
+    # <b> and <i> in paragraph mark-up find the bold and italic faces through the family.
+    pdfmetrics.registerFontFamily(regular, normal=regular, bold=bold, italic=italic,
+                                  boldItalic=bold)
+    pdfmetrics.registerFontFamily(mono, normal=mono, bold=mono_bold, italic=mono,
+                                  boldItalic=mono_bold)
+    return regular, bold, mono_bold, mono
+
+
 def styles() -> dict[str, Any]:
     """Return the paragraph styles of our documents by name."""
     from reportlab.lib.colors import HexColor
     from reportlab.lib.styles import ParagraphStyle
 
-    body = ParagraphStyle("body", fontName=FONT, fontSize=9.5, leading=13.5,
-                          textColor=HexColor(INK))
+    fonts_ready()
+    # DejaVu Sans has a large x-height (0.547 em; Helvetica, the face these sizes were first
+    # chosen for, 0.523): 9 pt of it reads as large as 9.5 pt of Helvetica did.
+    body = ParagraphStyle("body", fontName=FONT, bulletFontName=FONT, fontSize=9,
+                          leading=12.8, textColor=HexColor(INK))
     return {
         "body": body,
-        "title": ParagraphStyle("title", parent=body, fontName=BOLD, fontSize=19, leading=23,
+        "title": ParagraphStyle("title", parent=body, fontName=BOLD, fontSize=18, leading=22,
                                 textColor=HexColor(ACCENT), spaceAfter=3 * _MM),
-        "lead": ParagraphStyle("lead", parent=body, fontSize=10.5, leading=15,
+        "lead": ParagraphStyle("lead", parent=body, fontSize=10, leading=14.2,
                                spaceAfter=5 * _MM),
-        "h2": ParagraphStyle("h2", parent=body, fontName=BOLD, fontSize=11.5, leading=15,
+        "h2": ParagraphStyle("h2", parent=body, fontName=BOLD, fontSize=11, leading=14.2,
                              textColor=HexColor(ACCENT), spaceBefore=7 * _MM,
                              spaceAfter=2.5 * _MM),
-        "small": ParagraphStyle("small", parent=body, fontSize=8, leading=10.5,
+        "small": ParagraphStyle("small", parent=body, fontSize=7.6, leading=10,
                                 textColor=HexColor(MUTED)),
-        "label": ParagraphStyle("label", parent=body, fontSize=7.5, leading=9.5,
+        "label": ParagraphStyle("label", parent=body, fontSize=7.1, leading=9,
                                 textColor=HexColor(MUTED)),
-        "cell": ParagraphStyle("cell", parent=body, fontSize=9, leading=11.5),
-        "mono": ParagraphStyle("mono", parent=body, fontName=MONO, fontSize=10.5, leading=13),
+        "cell": ParagraphStyle("cell", parent=body, fontSize=8.5, leading=11),
+        "mono": ParagraphStyle("mono", parent=body, fontName=MONO, fontSize=10, leading=12.4),
         "bullet": ParagraphStyle("bullet", parent=body, leftIndent=5 * _MM, bulletIndent=0,
                                  spaceAfter=1.2 * _MM),
     }
@@ -106,6 +195,9 @@ class Running:
     round_id: str
     document: str
     confidential: str = ""
+    # The reader's words (planner.language): ``{round}``; ``{number}`` and ``{total}``.
+    round_text: str = "round {round}"
+    page_text: str = "page {number} of {total}"
 
 
 def write_atomic(path: Path, write: Callable[[Path], None]) -> Path:
@@ -155,7 +247,7 @@ def _numbered_canvas(running: Running) -> type:
             gap = self.stringWidth(running.study_id + "  ", BOLD, 8.5)
             self.setFont(FONT, 8.5)
             self.setFillColor(HexColor(MUTED))
-            self.drawString(left + gap, top, f"round {running.round_id}")
+            self.drawString(left + gap, top, running.round_text.format(round=running.round_id))
             self.drawRightString(right, top, running.document)
             if running.confidential:
                 self.setFillColor(HexColor(ACCENT))
@@ -173,7 +265,8 @@ def _numbered_canvas(running: Running) -> type:
             self.setFont(FONT, 7.5)
             self.drawString(left, bottom, fit_text(
                 running.study_title, FONT, 7.5, right - left - 30 * _MM))
-            self.drawRightString(right, bottom, f"page {number} of {total}")
+            self.drawRightString(right, bottom,
+                                 running.page_text.format(number=number, total=total))
             self.restoreState()
 
     return _Numbered
@@ -184,12 +277,16 @@ def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
     """Lay out ``story`` on pages of ``paper`` with our header and footer; write ``path`` atomically."""
     from reportlab.platypus import SimpleDocTemplate
 
+    fonts_ready()
+
     def write(temp: Path) -> None:
         doc = SimpleDocTemplate(
             str(temp), pagesize=page_size(paper), leftMargin=_MARGIN_SIDE,
             rightMargin=_MARGIN_SIDE, topMargin=_MARGIN_TOP + (4 * _MM if running.confidential
                                                                else 0),
             bottomMargin=_MARGIN_BOTTOM, title=title, author="ringplan",
+            # reportlab's default first font is Helvetica, a font of no document of ours
+            initialFontName=FONT,
             subject=f"{running.study_id} round {running.round_id}", creator="ringplan")
         doc.build(list(story), canvasmaker=_numbered_canvas(running))
 
@@ -200,6 +297,7 @@ def fit_text(text: str, font: str, size: float, width: float) -> str:
     """Return ``text`` cut at a word with an ellipsis so that it is at most ``width`` points wide."""
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
+    fonts_ready()
     if stringWidth(text, font, size) <= width:
         return text
     words = text.split()
@@ -213,6 +311,7 @@ def wrap_words(text: str, font: str, size: float, width: float) -> list[str] | N
     or None if a single word is wider than that."""
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
+    fonts_ready()
     words = text.replace("-", "- ").split() if "-" in text else text.split()
     lines: list[str] = []
     current = ""
@@ -262,6 +361,7 @@ def table_style(*, header: bool = True, extra: Sequence[tuple[Any, ...]] = ()) -
     from reportlab.lib.colors import HexColor
     from reportlab.platypus import TableStyle
 
+    fonts_ready()
     commands: list[tuple[Any, ...]] = [
         ("FONT", (0, 0), (-1, -1), FONT, 9),
         ("TEXTCOLOR", (0, 0), (-1, -1), HexColor(INK)),
@@ -310,16 +410,18 @@ def table(rows: Sequence[Sequence[Any]], widths: Sequence[float], style: Any, **
 
 
 def sign_lines(width: float, labels: Sequence[str], *, row_height: float = 10 * _MM,
-               columns: Sequence[float] = (0.30, 0.30, 0.15, 0.25)) -> Any:
-    """Return a table of signature lines: one row per label, with name, date and signature."""
+               columns: Sequence[float] = (0.30, 0.30, 0.15, 0.25),
+               heads: Sequence[str] = ("name", "date", "signature")) -> Any:
+    """Return a table of signature lines: one row per label, with name, date and signature
+    (``heads``, in the reader's language)."""
     from reportlab.lib.colors import HexColor
     from reportlab.platypus import Paragraph
 
     st = styles()
     rows = [[Paragraph(label, st["label"]), "", "", ""] for label in labels]
     return table(
-        [[Paragraph("", st["label"]), Paragraph("name", st["label"]),
-          Paragraph("date", st["label"]), Paragraph("signature", st["label"])], *rows],
+        [[Paragraph("", st["label"]), *(Paragraph(escape(h), st["label"]) for h in heads)],
+         *rows],
         [c * width for c in columns],
         table_style(header=False, extra=[
             ("LINEBELOW", (1, 1), (-1, -1), 0.6, HexColor(INK)),
@@ -330,12 +432,13 @@ def sign_lines(width: float, labels: Sequence[str], *, row_height: float = 10 * 
         ]), rowHeights=[5 * _MM] + [row_height] * len(labels))
 
 
-def hazard_cautions(hazards: dict[str, str], *, none_text: str) -> list[Any]:
-    """Return the "Hazard cautions" heading and one bullet per hazard word, or ``none_text``."""
+def hazard_cautions(hazards: dict[str, str], *, none_text: str,
+                    heading: str = "Hazard cautions") -> list[Any]:
+    """Return the ``heading`` and one bullet per hazard word, or ``none_text``."""
     from reportlab.platypus import Paragraph
 
     st = styles()
-    out: list[Any] = [Paragraph("Hazard cautions", st["h2"])]
+    out: list[Any] = [Paragraph(escape(heading), st["h2"])]
     if hazards:
         out += [Paragraph(f"<b>{escape(word)}</b>: {escape(note)}", st["bullet"], bulletText="•")
                 for word, note in sorted(hazards.items())]

@@ -8,7 +8,8 @@ missing then; each decryption of the key while it was sealed (to print the
 host's documents, to issue a spare) is listed with its time; results recorded
 after the opening are named. The report names laboratories by id; a letter
 passes a ``name_of`` that gives participant codes, so that it still names only
-its own laboratory.
+its own laboratory, and the laboratory's ``texts`` (``planner.language``); the
+report keeps the study's language.
 """
 
 from __future__ import annotations
@@ -16,11 +17,14 @@ from __future__ import annotations
 import re
 from collections.abc import Callable, Mapping
 from pathlib import PurePosixPath
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from planner import status
+from planner import language, status
 
-__all__ = ["opening_sentence", "later_sentences", "slot_name", "masked"]
+if TYPE_CHECKING:
+    from planner.language import Texts
+
+__all__ = ["opening_sentence", "later_sentences", "sealing_sentence", "slot_name", "masked"]
 
 
 def slot_name(slot: str) -> str:
@@ -29,61 +33,99 @@ def slot_name(slot: str) -> str:
     return f"{lab} ({visit} stop)" if at else lab
 
 
+def _when(at: Any, t: Texts) -> str:
+    """Return a ledger time as '2027-02-03 at 10:15 UTC' in the words of ``t`` (the text
+    itself if unreadable), as ``status.ledger_time`` does in English."""
+    from datetime import UTC, datetime
+
+    try:
+        moment = datetime.fromisoformat(str(at))
+    except (TypeError, ValueError):
+        return str(at)
+    if moment.tzinfo is None:  # no zone recorded: do not invent one
+        return t("opening.time", date=moment.strftime("%Y-%m-%d"), time=moment.strftime("%H:%M"))
+    moment = moment.astimezone(UTC)
+    return t("opening.time_utc", date=moment.strftime("%Y-%m-%d"),
+             time=moment.strftime("%H:%M"))
+
+
 def opening_sentence(opening: Mapping[str, Any] | None, *, name_of: Callable[[str], str],
-                     reason: Callable[[str], str] = str) -> str:
+                     reason: Callable[[str], str] = str, texts: Texts | None = None) -> str:
     """Return the sentence that says when the key was opened and whether every result was in.
 
     ``name_of`` turns a slot into the name to print; ``reason`` may rewrite the
-    coordinator's recorded reason before it is quoted (a letter hides other ids).
+    coordinator's recorded reason before it is quoted (a letter hides other ids);
+    ``texts`` are the reader's words (the study's language without).
     """
+    t = texts or language.texts()
     if not opening or not opening.get("at"):
-        return ("This evaluation holds no record from the ledger of when or how the decoding "
-                "key was opened.")
-    when = status.ledger_time(str(opening["at"]))
+        return t("opening.no_record")
+    when = _when(opening["at"], t)
     if not opening.get("forced"):
-        return (f"The decoding key was opened on {when}, after the results of every "
-                "laboratory had been recorded.")
+        return t("opening.opened", when=when)
     said = opening.get("reason")
-    why = f"reason: '{reason(str(said))}'" if said else "no reason recorded"
-    missing = ", ".join(name_of(s) for s in opening.get("missing") or ()) or "none recorded"
-    return (f"The decoding key was opened on {when} BEFORE every result was in: forced by the "
-            f"coordinator, {why}; results missing at that moment: {missing}.")
+    why = t("opening.reason", reason=reason(str(said))) if said else t("opening.no_reason")
+    missing = (", ".join(name_of(s) for s in opening.get("missing") or ())
+               or t("opening.none_recorded"))
+    return t("opening.forced", when=when, why=why, missing=missing)
 
 
 def later_sentences(opening: Mapping[str, Any] | None, *, name_of: Callable[[str], str],
-                    spare_to: Callable[[str], str] | None = None) -> list[str]:
+                    spare_to: Callable[[str], str] | None = None,
+                    texts: Texts | None = None) -> list[str]:
     """Return the sentences on the key's decryptions while sealed and on results after opening.
 
     ``spare_to`` names the laboratory a spare was sent to (default ``name_of``); a letter
     names none but its own, since the host, which sent the spare, would otherwise learn that
     laboratory's participant code.
     """
+    t = texts or language.texts()
     spare_to = spare_to or name_of
     if not opening or not opening.get("at"):
         return []
     uses = []
     for use in opening.get("early_decryptions") or ():
-        when = status.ledger_time(str(use.get("at")))
+        when = _when(use.get("at"), t)
         detail = use.get("detail") or {}
         if use.get("kind") == "spare-swap":
-            what = f"on {when} to issue a spare unit to {spare_to(str(detail.get('lab')))}"
+            what = t("opening.spare", when=when, lab=spare_to(str(detail.get("lab"))))
         else:
             names = status.host_documents(detail)
-            what = (f"on {when} to print the host's documents ("
-                    + ", ".join(PurePosixPath(n).stem.replace("-", " ") for n in names) + ")"
-                    if names else
-                    f"on {when} to print documents the ledger does not name (they may "
-                    "include the host's labels and prep sheet)")
-        uses.append(what + (", before any result had come in" if use.get("before_results")
-                            else ", AFTER results had begun to come in"))
-    out = [("While it was sealed, the key was decrypted " + "; ".join(uses) + ".") if uses else
-           "The ledger shows no printing of the host's documents and no spare issued while "
-           "the key was sealed."]
+            what = (t("opening.host_documents", when=when,
+                      documents=", ".join(_document(n, t) for n in names))
+                    if names else t("opening.unnamed_documents", when=when))
+        uses.append(what + t("opening.before_results" if use.get("before_results")
+                             else "opening.after_results"))
+    out = [t("opening.decrypted", uses=t("common.semicolon").join(uses)) if uses else
+           t("opening.not_decrypted")]
     after = opening.get("received_after") or ()
     if after:
-        out.append("Results recorded after the opening, and flagged after-unseal: "
-                   + ", ".join(name_of(s) for s in after) + ".")
+        out.append(t("opening.received_after", names=", ".join(name_of(s) for s in after)))
     return out
+
+
+def _document(name: str, t: Texts) -> str:
+    """Return a host document's path as words: 'host/prep-sheet.pdf' -> 'prep sheet'."""
+    stem = PurePosixPath(name).stem
+    key = f"opening.document.{stem}"
+    return t(key) if key in t.entries else stem.replace("-", " ")
+
+
+def sealing_sentence(key: Mapping[str, Any], *, texts: Texts | None = None) -> str:
+    """Return one sentence on how the key was sealed and, once opened, by whom ("" if the
+    record says nothing), as ``status.sealing_sentence`` does in English."""
+    t = texts or language.texts()
+    sealing = key.get("sealing") or {}
+    if sealing.get("kind") == "trustees":
+        trustees = sealing.get("trustees") or ()
+        text = t("opening.sealed_trustees", count=len(trustees), trustees=", ".join(trustees),
+                 threshold=sealing.get("threshold"))
+        if key.get("releases"):
+            text += t("opening.opened_with", trustees=", ".join(key["releases"]))
+        return text + "."
+    if sealing.get("kind") == "passphrase":
+        return t("opening.sealed_passphrase")
+    return ""
 
 
 def masked(text: str, codes_of: Mapping[str, str], *, keep: str) -> tuple[str, bool]:

@@ -7,6 +7,9 @@ asks the kernel to kill it when its parent dies (Linux: ``PR_SET_PDEATHSIG``)
 and, on every system, watches its parent's pid from a daemon thread and exits
 at once when it changes. Exiting is safe: every document is written to a
 temporary file and renamed into place only when complete.
+
+Workers draw in the fonts their parent chose (``_layout.use_fonts``), also where
+they start as fresh processes rather than forks.
 """
 
 from __future__ import annotations
@@ -20,6 +23,8 @@ from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from concurrent.futures import ProcessPoolExecutor
+
+    from planner.fonts import FontSet
 
 __all__ = ["POLL_SECONDS", "pool"]
 
@@ -51,9 +56,13 @@ def _die_with(parent: int) -> None:
     threading.Thread(target=watch, name="ringplan-parent-watch", daemon=True).start()
 
 
-def _start(parent: int, initializer: Callable[..., Any] | None, initargs: tuple[Any, ...]
-           ) -> None:
+def _start(parent: int, fonts: FontSet | None, initializer: Callable[..., Any] | None,
+           initargs: tuple[Any, ...]) -> None:
     _die_with(parent)
+    if fonts is not None:
+        from planner.render import _layout
+
+        _layout.use_fonts(fonts)
     if initializer is not None:
         initializer(*initargs)
 
@@ -68,8 +77,11 @@ def pool(workers: int, *, initializer: Callable[..., Any] | None = None,
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
+    from planner.render import _layout
+
     context = None
     if fork and "fork" in multiprocessing.get_all_start_methods():
         context = multiprocessing.get_context("fork")
     return ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_start,
-                               initargs=(os.getpid(), initializer, initargs))
+                               initargs=(os.getpid(), _layout.chosen_fonts(), initializer,
+                                         initargs))

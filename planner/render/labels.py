@@ -35,6 +35,10 @@ laboratory's own labels (``lab_labels``) have none. A retained unit sent as a
 replacement is printed as a spare (``issued``), so that nothing on the unit a
 laboratory receives says where it came from.
 
+A label's words ("trial 1 · run 3", "for ...", "use by ...") are in the language of
+the laboratory that tests or keeps the unit (``planner.language``); a spare, which
+may go to any laboratory, and a separator, which the host reads, are in the study's.
+
 A circulating set has one label per artefact, printed by the host: the code,
 "circulating artefact", the study and round, the storage text and the hazard
 words, but no destination and no use-by date, because the same
@@ -50,12 +54,13 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, parcel
+from planner import codes, language, parcel
 from planner.errors import PlannerError, Where
 from planner.render import _layout, _qr
 from planner.render._sheets import MM, Geometry
 
 if TYPE_CHECKING:
+    from planner.language import Texts
     from planner.spec import Study
 
 __all__ = [
@@ -79,7 +84,11 @@ CHUNK = 240
 """QR symbols per task handed to a worker process."""
 
 _LEADING = 1.16
-_SHRINK = 0.8  # smallest share of the nominal size before wrapping
+# Smallest share of the nominal size before wrapping. DejaVu Sans sets 11-15 % wider than
+# Helvetica, which this layout was first tuned for, with a larger x-height (0.547 em against
+# 0.523): at 0.73 its lower case is 95 % as tall as Helvetica's at the former 0.8, and a
+# laboratory's name fits the width it used to.
+_SHRINK = 0.73
 _CODE_MIN = 7.0  # below this a one-line code is set in two groups instead
 _QR_SHARE = 0.42  # of the label width, at most, for the symbol with its quiet zone
 
@@ -113,13 +122,12 @@ def use_by(study: Study, manifest: dict[str, Any]) -> date | None:
     return parcel.use_by(study, date.fromisoformat(prepared) if prepared else None)
 
 
-def _kind_text(unit: dict[str, Any], host: str) -> str:
+def _kind_text(unit: dict[str, Any], t: Texts) -> str:
     kind = unit["kind"]
     if kind == "test":
-        return f"trial {unit['trial']} · run {unit['position']}"
-    return {"spare": "spare", "retained": "retained by host",
-            "homogeneity": "homogeneity check",
-            "artefact": "circulating artefact"}.get(kind, str(kind))
+        return t("label.trial_run", trial=unit["trial"], position=unit["position"])
+    return t(f"label.{kind}") if kind in ("spare", "retained", "homogeneity",
+                                          "artefact") else str(kind)
 
 
 def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
@@ -127,22 +135,27 @@ def _label(study: Study, manifest: dict[str, Any], unit: dict[str, Any],
     # Nothing of the unit's material: the same hazard and storage text on every label.
     lab = study.lab(unit["lab"])
     host = manifest["host"]
-    suffix = " (host)" if lab.id == host and unit["kind"] in ("retained", "homogeneity") else ""
-    # A spare waits with the host for whichever laboratory needs one.
-    destination = () if unit["kind"] == "spare" else (f"for {lab.name}{suffix}",
-                                                      f"for {lab.id}{suffix}")
+    # In the language of the laboratory that tests (or keeps) the unit; a spare waits with
+    # the host for whichever laboratory needs one, and an artefact visits them all, so
+    # those speak the study's language.
+    shared = unit["kind"] in ("spare", "artefact")
+    t = language.texts(language.DEFAULT if shared else language.of(lab))
+    study_text = t("label.study", study=study.id, round=manifest["round"])
     if unit["kind"] == "artefact":
         # The same piece visits every laboratory: no destination, no use-by date.
         return Label(code=unit["code"], hazard=parcel.hazard_word(study),
-                     trial=_kind_text(unit, host), study=f"{study.id} · round {manifest['round']}",
+                     trial=_kind_text(unit, t), study=study_text,
                      storage=parcel.storage(study))
+    to = ("label.for_host" if lab.id == host and unit["kind"] in ("retained", "homogeneity")
+          else "label.for")
+    destination = () if shared else (t(to, name=lab.name), t(to, name=lab.id))
     return Label(
         code=unit["code"],
         hazard=parcel.hazard_word(study),
-        trial=_kind_text(unit, host),
+        trial=_kind_text(unit, t),
         lab=destination,
-        use_by=f"use by {expiry}" if expiry else "",
-        study=f"{study.id} · round {manifest['round']}",
+        use_by=t("label.use_by", date=expiry) if expiry else "",
+        study=study_text,
         storage=parcel.storage(study),
     )
 
@@ -260,6 +273,7 @@ def _fit(text: str, font: str, size: float, width: float, *, boxed: bool = False
     """Return the lines of one field: shrunk to fit, else wrapped; None if it cannot fit."""
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
+    _layout.fonts_ready()
     extra = 2 * 0.35 * size if boxed else 0.0
     natural = stringWidth(text, font, size) + extra
     if natural <= width:
@@ -289,12 +303,14 @@ def _height(lines: Sequence[_Line]) -> float:
 def _code_lines(printed: str, size: float, width: float, height: float,
                 g: Geometry) -> list[_Line]:
     """Return the code on one line, or in its two groups when one line would be too small."""
-    # Courier is 600/1000 em per character: the width of a code is exact arithmetic.
-    one = min(size, width / (0.6 * len(printed)))
+    # Widths at 1 pt: a monospaced face gives every code of a round the same width.
+    one = min(size, width / _text_width(printed, _layout.MONO, 1.0))
     if one >= _CODE_MIN:
         return [_Line(printed, _layout.MONO, int(one * 10) / 10)]
     first, second = printed.split("-")
-    two = min(size, width / (0.6 * len(second)), height / (2 * _LEADING))
+    widest = max(_text_width(first + "-", _layout.MONO, 1.0),
+                 _text_width(second, _layout.MONO, 1.0))
+    two = min(size, width / widest, height / (2 * _LEADING))
     if two < MIN_SIZE:
         raise PlannerError(f"label sheet {g.name!r} is too small for a readable code; "
                            "choose a sheet with larger labels", Where(field="--sheet"))
@@ -352,9 +368,19 @@ def layout(label: Label, g: Geometry) -> tuple[list[_Line], tuple[str, ...]]:
             dropped.append(kept.pop())
 
 
+def _descent(font: str) -> float:
+    """Return how far below the baseline ``font`` reaches, in ems (at least 0.22)."""
+    from reportlab.pdfbase.pdfmetrics import getDescent
+
+    _layout.fonts_ready()
+    # 0.22: the room this layout always left, for fonts that claim less than they draw
+    return max(0.22, -float(getDescent(font, 1.0)))
+
+
 def _text_width(text: str, font: str, size: float) -> float:
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
+    _layout.fonts_ready()
     return float(stringWidth(text, font, size))
 
 
@@ -375,7 +401,8 @@ def _placed(lines: Sequence[_Line], x: float, top: float, bottom: float, code_co
         if line.boxed:
             y -= 0.25 * line.size
         y -= line.size * _LEADING
-        baseline = y + 0.22 * line.size
+        # The line's glyphs reach down to the font's descent below the baseline.
+        baseline = y + _descent(line.font) * line.size
         box = None
         if line.boxed:
             width = _text_width(line.text, line.font, line.size) + 0.7 * line.size
@@ -395,10 +422,11 @@ def _draw_lines(canvas: Any, lines: Sequence[_Line], x: float, top: float, botto
             canvas.rect(*box, stroke=1, fill=0)
 
 
-def _pdf_string(text: str) -> str:
-    """Return ``text`` as a PDF literal string in the WinAnsi encoding of the standard fonts."""
+def _pdf_string(data: bytes) -> str:
+    """Return the character codes ``data`` as a PDF literal string; control bytes as octal
+    escapes, so that the code marks below never occur in one."""
     out = []
-    for byte in text.encode("cp1252", errors="replace"):
+    for byte in data:
         if byte in (0x28, 0x29, 0x5C):
             out.append("\\" + chr(byte))
         elif 32 <= byte < 127:
@@ -411,17 +439,29 @@ def _pdf_string(text: str) -> str:
 _CODE_MARK = ("\x00", "\x01")
 
 
-def _text_ops(lines: Sequence[_Line], frame: _Frame, code_count: int,
-              fonts: dict[str, str], ink: str) -> str:
-    """Return the operators of a label's text relative to its cell, with the code's text
-    left as the marks ``_CODE_MARK`` (the same template serves every label alike)."""
+def _shown(text: str, font: str, size: float, doc: Any) -> str:
+    """Return the operators that show ``text`` in ``font``: reportlab numbers the glyphs of
+    a TrueType font in subsets of 256 per document, each a font resource of its own."""
+    from reportlab.pdfbase.pdfmetrics import getFont
+
+    face = getFont(font)
+    return " ".join(f"{face.getSubsetInternalName(subset, doc)} {size:.2f} Tf "
+                    f"{_pdf_string(data)} Tj" for subset, data in face.splitString(text, doc))
+
+
+def _text_ops(lines: Sequence[_Line], frame: _Frame, code_count: int, doc: Any,
+              ink: str) -> str:
+    """Return the operators of a label's text relative to its cell, with the operators that
+    show the code left as the marks ``_CODE_MARK`` (one template serves every label alike)."""
     parts = [f"{ink} rg {ink} RG BT"]
     boxes = []
     for i, (line, x, baseline, box) in enumerate(
             _placed(lines, frame.text_x, frame.text_top, frame.text_bottom, code_count)):
-        text = f"({_CODE_MARK[i]})" if i < code_count else _pdf_string(line.text)
-        parts.append(f"{fonts[line.font]} {line.size:.2f} Tf 1 0 0 1 {x:.2f} {baseline:.2f} Tm "
-                     f"{text} Tj")
+        place = f"1 0 0 1 {x:.2f} {baseline:.2f} Tm"
+        if i < code_count:
+            parts.append(f"{place} {_CODE_MARK[i]}")
+        else:
+            parts.append(f"{place} {_shown(line.text, line.font, line.size, doc)}")
         if box is not None:
             boxes.append("0.6 w {:.2f} {:.2f} {:.2f} {:.2f} re S".format(*box))
     parts.append("ET")
@@ -457,8 +497,7 @@ def _symbols(items: Sequence[Label | Separator], workers: int) -> Iterator[str]:
     """Yield the QR operators of every Label in order, computed in worker processes if asked."""
     texts = [codes.format(item.code) for item in items if isinstance(item, Label)]
     if workers <= 1 or len(texts) < 2 * CHUNK:
-        for text in texts:
-            yield _qr.image_mask(_qr.matrix(text))
+        yield from _qr.image_masks(texts)
         return
     from planner.render import _workers
 
@@ -487,18 +526,17 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
     page = (geometry.page_width * MM, geometry.page_height * MM)
 
     def write(temp: Path) -> None:
-        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1)
+        _layout.fonts_ready()
+        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1,
+                        initialFontName=_layout.FONT)
         canvas.setTitle(title)
         canvas.setAuthor("ringplan")
         canvas.setCreator("ringplan")
         ink = "{:.3f} {:.3f} {:.3f}".format(*HexColor(_layout.INK).rgb())
-        # Registering the fonts with the document gives their resource names.
-        fonts = {f: canvas._doc.getInternalFontName(f)
-                 for f in (_layout.MONO, _layout.FONT, _layout.BOLD)}
         qr_place = (f"q 0 g {frame.qr_side:.3f} 0 0 {frame.qr_side:.3f} {frame.qr_x:.3f} "
                     f"{frame.qr_y:.3f} cm")
         symbols = _symbols(items, workers)
-        cache: dict[tuple[Any, ...], tuple[str, int]] = {}
+        cache: dict[tuple[Any, ...], tuple[str, list[_Line]]] = {}
         cell_index = start_at - 1
         for item in items:
             if cell_index and cell_index % geometry.per_page == 0:
@@ -516,15 +554,14 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
             template = cache.get(shape)
             if template is None:
                 lines, _dropped = layout(item, geometry)
-                code_count = sum(1 for ln in lines if ln.font == _layout.MONO)
-                template = cache[shape] = (_text_ops(lines, frame, code_count, fonts, ink),
-                                           code_count)
-            ops, code_count = template
+                code_lines = [ln for ln in lines if ln.font == _layout.MONO]
+                template = cache[shape] = (_text_ops(lines, frame, len(code_lines), canvas._doc,
+                                                     ink), code_lines)
+            ops, code_lines = template
             printed = codes.format(item.code)
-            if code_count == 2:
-                ops = ops.replace(_CODE_MARK[0], printed[:5]).replace(_CODE_MARK[1], printed[5:])
-            else:
-                ops = ops.replace(_CODE_MARK[0], printed)
+            parts = (printed[:5], printed[5:]) if len(code_lines) == 2 else (printed,)
+            for mark, part, line in zip(_CODE_MARK, parts, code_lines):
+                ops = ops.replace(mark, _shown(part, line.font, line.size, canvas._doc))
             canvas.addLiteral(f"q 1 0 0 1 {x:.2f} {y:.2f} cm {qr_place} {next(symbols)} Q "
                               f"{ops} Q")
         canvas.showPage()
@@ -554,7 +591,9 @@ def render_calibration(path: Path, geometry: Geometry, *,
     page = (geometry.page_width * MM, geometry.page_height * MM)
 
     def write(temp: Path) -> None:
-        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1)
+        _layout.fonts_ready()
+        canvas = Canvas(str(temp), pagesize=page, pageCompression=1, invariant=1,
+                        initialFontName=_layout.FONT)
         canvas.setTitle(f"alignment page, sheet {geometry.name}")
         canvas.setAuthor("ringplan")
         small = max(MIN_SIZE, min(8.0, geometry.label_height * MM / 5))

@@ -8,7 +8,10 @@ among the others (everyone knows who shipped the parcels, so marking it would
 name it), and only the host's own letter gives the consensus without the host:
 with it any participant could leave out each code in turn, recompute, and find
 the host's code. The host's letter says that its results were prepared in-house.
-Numbers are written with the laboratory's decimal sign.
+Numbers are written with the laboratory's decimal sign, and every sentence in the
+laboratory's language; what the evaluation wrote in words (where sigma_pt comes
+from, why a material has no band) is put in that language by matching it against
+the English texts, and stays as written if it does not match.
 
 Contents: the round, how the decoding key was opened as the ledger shows it
 (forced before every result was in, or not; when it was decrypted while sealed)
@@ -20,15 +23,19 @@ others' scores by participant code.
 
 from __future__ import annotations
 
+import re
+import string
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes
+from planner import codes, language
 from planner.render import _layout
 
 if TYPE_CHECKING:
+    from planner.language import Texts
     from planner.results import Unblinded
 
 __all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "anonymous_view"]
@@ -41,13 +48,15 @@ _MM = 72.0 / 25.4
 
 @dataclass(frozen=True, slots=True)
 class Addressee:
-    """Who a letter goes to: laboratory id, name, address lines, contact, decimal sign."""
+    """Who a letter goes to: laboratory id, name, address lines, contact, decimal sign and
+    language (``planner.language``)."""
 
     lab: str
     name: str
     address: tuple[str, ...] = ()
     contact: str = ""
     decimal: str = "point"
+    language: str = language.DEFAULT
 
 
 def _num(v: Any, digits: int = 4, comma: bool = False) -> str:
@@ -83,7 +92,7 @@ def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Addressee,
-           view: Mapping[str, Any], paper: str) -> list[Any]:
+           view: Mapping[str, Any], paper: str, t: Texts) -> list[Any]:
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
     from planner.render import _charts
@@ -102,14 +111,26 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
 
     def table(data: Sequence[Sequence[Any]], widths: Sequence[float],
               extra: Sequence[tuple[Any, ...]] = (), right_from: int = 1) -> Any:
-        total = sum(widths)
-        scale = width / total if total > width else 1.0
+        widths = _fit_columns(data, widths, width)
+        head = [_head(h, w) for h, w in zip(data[0], widths, strict=False)]
         style = _layout.table_style(extra=[
             ("FONT", (0, 1), (-1, -1), _layout.FONT, 8),
             ("ALIGN", (right_from, 0), (-1, -1), "RIGHT"),
             ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
             *extra])
-        return _layout.table(data, [w * scale for w in widths], style, repeatRows=1)
+        return _layout.table([head, *data[1:]], widths, style, repeatRows=1)
+
+    def _head(text: Any, column: float) -> Any:
+        from reportlab.lib.colors import HexColor
+        from reportlab.lib.styles import ParagraphStyle
+        from reportlab.pdfbase.pdfmetrics import stringWidth
+
+        if not isinstance(text, str) or stringWidth(text, _layout.BOLD, 8) <= column - _PAD:
+            return text
+        wrapped = ParagraphStyle("head-wrap", parent=st["cell"], fontName=_layout.BOLD,
+                                 fontSize=8, leading=9.5, textColor=HexColor(_layout.ACCENT),
+                                 alignment=2)
+        return Paragraph(esc(text), wrapped)
 
     def bands(cells: Sequence[tuple[int, int, str | None]]) -> list[tuple[Any, ...]]:
         from reportlab.lib.colors import HexColor
@@ -121,59 +142,56 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
                 out.append(("BACKGROUND", (col, row), (col, row), HexColor(colour)))
         return out
 
+    def band_word(band: str | None) -> str:
+        return t(f"letter.band.{band}") if f"letter.band.{band}" in t.entries else (band or "-")
+
     address = "<br/>".join(esc(line) for line in (to.name, *to.address))
     story: list[Any] = [
-        Paragraph("Your results in this round", st["title"]),
-        Paragraph(address + (f"<br/>attn. {esc(to.contact)}" if to.contact else ""), st["body"]),
+        Paragraph(esc(t("letter.title")), st["title"]),
+        Paragraph(address + ("<br/>" + t.markup("letter.attn", contact=to.contact)
+                             if to.contact else ""), st["body"]),
         Spacer(1, 4 * _MM),
-        Paragraph(
-            f"<b>{esc(s['title'])}</b>, round {esc(s['round'])}: {n_labs} participants, "
-            f"{len(s['materials'])} materials, {s['trials']} trials each. Measurand: "
-            f"{esc(s['measurand'])}, in {esc(s['unit'])}. Your laboratory is <b>{esc(to.lab)}</b>; "
-            "in the charts and tables of this letter it is marked <i>you</i>. The other "
-            "participants appear only under codes P-nn drawn at random for this round, "
-            "which change every round.", st["lead"]),
+        Paragraph(t.markup("letter.lead", title=s["title"], round=s["round"], labs=n_labs,
+                           materials=len(s["materials"]), trials=s["trials"],
+                           measurand=s["measurand"], unit=s["unit"], lab=to.lab,
+                           you=t("letter.you")), st["lead"]),
     ]
     if in_house:
-        story.append(Paragraph(
-            "Your laboratory hosted this round: it prepared the material, so your results are "
-            "marked <b>prepared in-house</b>. The assigned values are also given without your "
-            "results.", st["body"]))
-    story += _key_section(s, to)
+        story.append(Paragraph(t.markup("letter.in_house"), st["body"]))
+    story += _key_section(s, to, t)
     mine = {m: s["scores"].get(m, {}).get("labs", {}).get(to.lab) for m in s["materials"]}
     own_rows = [r for r in rows if r.lab == to.lab]
     scored = any(r.value is not None for r in own_rows)
     if not scored:
         # Nothing to score: say so in words, not with a table of dashes or "0 of 0".
-        text = ("The result form of your laboratory was recorded, but none of its results has "
-                "a value, so it has no scores in this round." if own_rows else
-                "No results of your laboratory were recorded for this round, so it has no "
-                "scores.")
-        story += [Paragraph("Your scores", st["h2"]), Paragraph(f"<b>{esc(text)}</b>", st["body"])]
+        text = t("letter.no_values") if own_rows else t("letter.no_results")
+        story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
+                  Paragraph(f"<b>{esc(text)}</b>", st["body"])]
     else:
-        story += [Paragraph("Your scores", st["h2"]),
-                  Paragraph(esc(_verdict(s, mine)), st["body"]), Spacer(1, 2 * _MM)]
+        story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
+                  Paragraph(esc(_verdict(s, mine, t, comma)), st["body"]), Spacer(1, 2 * _MM)]
     has_en = any(e and e.get("En") is not None for e in mine.values())
-    head = ["material", "x_pt", "u(x_pt)", "sigma_pt", "your mean", "D%", "score"] + (
-        ["En"] if has_en else []) + ["band"]
+    head = [t("letter.col_material"), "x_pt", "u(x_pt)", "sigma_pt", t("letter.col_mean"),
+            "D%", t("letter.col_score")] + (["En"] if has_en else []) + [t("letter.col_band")]
     data: list[list[Any]] = [head]
     cells = []
     for m in s["materials"]:
         sc = s["scores"].get(m, {})
         e = mine.get(m)
         if not e:
-            data.append([m, n(sc.get("assigned_value")), "-", "-", "no result", "-", "-"]
-                        + (["-"] if has_en else []) + ["-"])
+            data.append([m, n(sc.get("assigned_value")), "-", "-", t("letter.no_result"), "-",
+                         "-"] + (["-"] if has_en else []) + ["-"])
             continue
         zp = bool(sc.get("use_z_prime"))
         score = e.get("z_prime") if zp else e.get("z")
         dp = e.get("D_percent")
         if e.get("reference"):
-            shown, band = "reference", "reference"
+            shown, band = band_word("reference"), band_word("reference")
         elif sc.get("banded"):
-            shown, band = f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}", e.get("band") or "-"
+            shown = f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}"
+            band = band_word(e.get("band")) if e.get("band") else "-"
         else:
-            shown, band = "-", "no band"
+            shown, band = "-", t("letter.no_band")
         row = [m, n(sc.get("assigned_value")), n(sc.get("u_assigned_value"), 3),
                n(sc.get("sigma_pt"), 3), n(e.get("mean")),
                (f"{dp:+.1f}".replace(".", ",") if comma else f"{dp:+.1f}") if dp is not None
@@ -188,7 +206,7 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     if scored:
         story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
                            bands(cells)))
-        story.append(Paragraph(esc(_method_note(s, in_house, n)), st["small"]))
+        story.append(Paragraph(esc(_method_note(s, in_house, n, t, comma)), st["small"]))
 
     # The laboratory's own results, unit by unit.
     trials = int(s["trials"])
@@ -196,33 +214,37 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     for r in rows:
         if r.lab == to.lab:
             own.setdefault(r.material, {})[r.trial] = r
-    data = [["material"] + [h for t in range(1, trials + 1) for h in (f"trial {t}", "unit")]]
+    data = [[t("letter.col_material")] + [h for i in range(1, trials + 1)
+                                          for h in (t("letter.col_trial", trial=i),
+                                                    t("letter.col_unit"))]]
     notes: list[str] = []
     for m in s["materials"]:
         cells_m = own.get(m, {})
         row = [m]
-        for t in range(1, trials + 1):
-            r = cells_m.get(t)
+        for i in range(1, trials + 1):
+            r = cells_m.get(i)
             if r is None:
                 row += ["-", ""]
                 continue
-            value = n(r.value) if r.value is not None else "no value"
+            value = n(r.value) if r.value is not None else t("letter.no_value")
             if r.uncertainty is not None:
                 value += f" ± {n(r.uncertainty, 3)}"
             # Plain strings, not Paragraphs: a big round makes hundreds of these letters.
             row += [value, codes.format(r.code)]
-            extra = [f for f in r.flags if f != "in-house"]
+            extra = [t(f"letter.flag.{f}") if f"letter.flag.{f}" in t.entries else f
+                     for f in r.flags if f != "in-house"]
             if extra:
-                notes.append(f"{m} trial {t}: {', '.join(extra)}")
+                notes.append(t("letter.flag_item", material=m, trial=i, flags=", ".join(extra)))
         data.append(row)
     tw = min(62.0, (width - 70) / max(trials, 1) - 58)
     mono = [("FONT", (c, 1), (c, -1), _layout.MONO_REGULAR, 7) for c in range(2, 2 * trials + 1, 2)]
     align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
     if own_rows:
-        story += [Paragraph("Your results", st["h2"]),
+        story += [Paragraph(esc(t("letter.results_heading")), st["h2"]),
                   table(data, [70] + [tw, 58] * trials, mono + align)]
     if notes:
-        story.append(Paragraph("Flags: " + esc("; ".join(notes)), st["small"]))
+        story.append(Paragraph(t.markup("letter.flags", flags=t("common.semicolon").join(notes)),
+                               st["small"]))
 
     # Everyone's scores, the own marked; then the others by participant code.
     strip_rows = []
@@ -233,14 +255,11 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         strip_rows.append((m, mv["all"], mv["scores"].get(me)))
     if strip_rows and scored:
         name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
+        note = (t.markup("letter.stand_note_bars", step=n(0.25))
+                if n_labs > _charts.MAX_LABELS else t.markup("letter.stand_note"))
         story.append(KeepTogether([
-            Paragraph("Where you stand", st["h2"]),
-            Paragraph("Each tick is one participant's score on the material, yours included"
-                      + (" (bars: how many scores fall in each step of 0.25)"
-                         if n_labs > _charts.MAX_LABELS else "")
-                      + "; the diamond is yours. Green: satisfactory, amber: questionable, "
-                        "red: unsatisfactory; scores beyond ±4 are drawn at the edge.",
-                      st["small"]),
+            Paragraph(esc(t("letter.stand_heading")), st["h2"]),
+            Paragraph(note, st["small"]),
             _charts.StripChart(strip_rows, width=width, score_name=name,
                                cache=view.get("cache")),
         ]))
@@ -248,11 +267,11 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
         mats = [m for m in s["materials"] if m in view["materials"]]
         for start in range(0, len(mats), 8):
             part = mats[start:start + 8]
-            data = [["participant"] + [m + ("'" if view["materials"][m]["name"] == "z'" else "")
-                                       for m in part]]
+            data = [[t("letter.col_participant")]
+                    + [m + ("'" if view["materials"][m]["name"] == "z'" else "") for m in part]]
             cells = []
             for i, code in enumerate(view["codes"], start=1):
-                row = ["you" if code == me else code]
+                row = [t("letter.you") if code == me else code]
                 for j, m in enumerate(part, start=1):
                     v = view["materials"][m]["scores"].get(code)
                     row.append("-" if v is None else n(round(v, 2), 3))
@@ -264,17 +283,16 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
                 extra.append(("FONT", (0, r_me), (-1, r_me), _layout.BOLD, 8))
             block = [table(data, [70] + [min(52.0, (width - 70) / len(part))] * len(part), extra)]
             if start == 0:
-                block = [Paragraph("All participants", st["h2"]),
-                         Paragraph("Deciding score of each participant on each material "
-                                   "(' marks z').", st["small"])] + block
+                block = [Paragraph(esc(t("letter.all_heading")), st["h2"]),
+                         Paragraph(esc(t("letter.all_note")), st["small"])] + block
             story.append(KeepTogether(block))
     story.append(Spacer(1, 4 * _MM))
-    story.append(Paragraph(f"Issued by {esc(s.get('organiser') or 'the coordinator')}.",
-                           st["small"]))
+    story.append(Paragraph(t.markup("letter.issued", organiser=s.get("organiser")
+                                    or t("letter.coordinator")), st["small"]))
     return story
 
 
-def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
+def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
     """Return how the key was opened, as the ledger shows it, and its full fingerprint."""
     from reportlab.platypus import Paragraph, Spacer
 
@@ -290,46 +308,41 @@ def _key_section(s: Mapping[str, Any], to: Addressee) -> list[Any]:
         # Only the own laboratory by name; the others by this round's participant code.
         lab, at, visit = slot.partition("@")
         if at:
-            return f"your {visit} stop" if lab == to.lab else f"the host's {visit} stop"
-        return "your laboratory" if lab == to.lab else codes_of.get(lab, "another participant")
+            where = t(f"common.visit.{visit}") if f"common.visit.{visit}" in t.entries else visit
+            return t("letter.your_stop" if lab == to.lab else "letter.host_stop", visit=where)
+        return (t("letter.your_laboratory") if lab == to.lab
+                else codes_of.get(lab, t("letter.another_participant")))
 
     def reason(text: str) -> str:
         nonlocal hidden
         out, hidden = _opening.masked(text, codes_of, keep=to.lab)
         return out
 
-    first = esc(_opening.opening_sentence(opening, name_of=name_of, reason=reason))
+    first = esc(_opening.opening_sentence(opening, name_of=name_of, reason=reason, texts=t))
     if hidden:
-        first += (" In the coordinator's reason the ids of other laboratories are given as "
-                  "their participant codes.")
+        first += " " + esc(t("letter.reason_masked"))
     if opening and opening.get("forced"):
         first = f"<b>{first}</b>"
-    from planner import status
-
-    text = " ".join([first, *(esc(t) for t in _opening.later_sentences(
-        opening, name_of=name_of,
-        spare_to=lambda slot: "your laboratory" if slot == to.lab else "a participant")),
-                     esc(status.sealing_sentence(opening or {}))]).strip()
-    sheet = "hand-over sheet" if "drift" in s else "packing list"
+    text = " ".join([first, *(esc(x) for x in _opening.later_sentences(
+        opening, name_of=name_of, texts=t,
+        spare_to=lambda slot: (t("letter.your_laboratory") if slot == to.lab
+                               else t("letter.a_participant")))),
+                     esc(_opening.sealing_sentence(opening or {}, texts=t))]).strip()
+    mono = f"<font face='{_layout.MONO_REGULAR}'>{{}}</font>"
     return [
-        Paragraph("The decoding key", st["h2"]),
+        Paragraph(esc(t("letter.key_heading")), st["h2"]),
         Paragraph(text, st["body"]),
         Spacer(1, 1.5 * _MM),
-        Paragraph(f"The key's SHA-256 fingerprint, equal to the fingerprint printed on your "
-                  f"{sheet} and run sheet before the units were shipped: <font "
-                  f"face='{_layout.MONO_REGULAR}'>"
-                  f"{esc(_layout.grouped_fingerprint(s['fingerprint']))}</font>", st["body"]),
-        *([Paragraph(
-            f"The study's ledger as this letter was written: chain link {s['ledger']['link']}, "
-            f"head <font face='{_layout.MONO_REGULAR}'>"
-            f"{esc(_layout.grouped_fingerprint(s['ledger']['head']))}</font>. Keep it with your "
-            "receipts: the ledger must still pass through this link and head "
-            "('ringplan chain --link N'), or it was rewritten after this letter.", st["small"])]
+        Paragraph(t.markup("letter.fingerprint_handover" if "drift" in s
+                           else "letter.fingerprint_packing", fingerprint=language.Markup(
+            mono.format(esc(_layout.grouped_fingerprint(s["fingerprint"]))))), st["body"]),
+        *([Paragraph(t.markup("letter.ledger", link=s["ledger"]["link"], head=language.Markup(
+            mono.format(esc(_layout.grouped_fingerprint(s["ledger"]["head"]))))), st["small"])]
           if s.get("ledger") else []),
     ]
 
 
-def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any]) -> str:
+def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any], t: Texts, comma: bool) -> str:
     """Return the sentences that sum up a laboratory's scores, saying why a band is missing."""
     scored = {m: e for m, e in mine.items() if e and not e.get("reference")}
     banded = {m: e for m, e in scored.items() if s["scores"][m].get("banded")}
@@ -337,44 +350,42 @@ def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any]) -> str:
     parts = []
     if any(e and e.get("reference") for e in mine.values()):
         refs = [m for m, e in mine.items() if e and e.get("reference")]
-        parts.append("Your laboratory is the reference: its results are the assigned values "
-                     f"({', '.join(refs)}), so it is not scored against them.")
+        parts.append(t("letter.reference_lab", materials=", ".join(refs)))
     if banded:
         bands = [e.get("band") for e in banded.values()]
         outside = [m for m, e in banded.items()
                    if e.get("band") in ("questionable", "unsatisfactory")]
-        parts.append(f"{bands.count('satisfactory')} of {len(banded)} scores satisfactory"
-                     + (f"; outside the satisfactory band: {', '.join(outside)}" if outside
-                        else "") + ".")
+        parts.append(t("letter.satisfactory_count_outside", good=bands.count("satisfactory"),
+                       total=len(banded), materials=", ".join(outside)) if outside else
+                     t("letter.satisfactory_count", good=bands.count("satisfactory"),
+                       total=len(banded)))
     if unbanded:
-        reasons = list(dict.fromkeys(str(s["scores"][m].get("no_band")) for m in unbanded))
-        lead = ("No z score of this round carries a band" if not banded
-                else f"No z score band for {', '.join(unbanded)}")
-        parts.append(f"{lead}: {'; '.join(reasons)}. Your difference from the assigned value "
-                     "(D%) is given instead; read it against the precision of your method."
-                     + (" En, which rests on the uncertainties stated, keeps its band."
-                        if any(e.get("En") is not None for e in scored.values()) else ""))
+        reasons = list(dict.fromkeys(_reworded(str(s["scores"][m].get("no_band")), "letter.why",
+                                               t, comma) for m in unbanded))
+        lead = (t("letter.no_band_any") if not banded
+                else t("letter.no_band_for", materials=", ".join(unbanded)))
+        parts.append(t("letter.no_band_instead", lead=lead,
+                       reasons=t("common.semicolon").join(reasons)))
+        if any(e.get("En") is not None for e in scored.values()):
+            parts.append(t("letter.en_keeps_band"))
     if not scored and not parts:
-        parts.append("No result of your laboratory was evaluated in this round.")
+        parts.append(t("letter.nothing_evaluated"))
     return " ".join(parts)
 
 
-def _method_note(s: Mapping[str, Any], in_house: bool, n: Any) -> str:
+def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: bool) -> str:
     st = s["settings"]
-    if st["assigned_value"] == "reference":
-        text = ("x_pt is the mean result of the reference laboratory, which is not scored "
-                "against itself.")
-    else:
-        text = "x_pt is the robust mean of all participants' means (Algorithm A, ISO 13528)."
-    policies = st.get("sigma_pt") or {}
+    parts = [t("letter.x_pt_reference") if st["assigned_value"] == "reference"
+             else t("letter.x_pt_consensus")]
+    policies = {m: _reworded(str(v), "letter.policy", t, comma)
+                for m, v in (st.get("sigma_pt") or {}).items()}
     kinds = list(dict.fromkeys(policies.values()))
     if len(kinds) == 1:
-        text += f" sigma_pt: {kinds[0]}."
+        parts.append(t("letter.sigma_pt", policy=kinds[0]))
     elif kinds:
-        text += " sigma_pt: " + "; ".join(f"{m}: {v}" for m, v in policies.items()) + "."
-    text += (" D% = 100 (your mean - x_pt) / x_pt. z' is used where u(x_pt) > 0.3 sigma_pt. "
-             "|score| <= 2 satisfactory, 2 to 3 questionable, >= 3 unsatisfactory; |En| <= 1 "
-             "satisfactory (U with k = 2).")
+        parts.append(t("letter.sigma_pt", policy=t("common.semicolon").join(
+            f"{m}: {v}" for m, v in policies.items())))
+    parts.append(t("letter.rules", ratio=n(0.3)))
     # Only the host's own letter gives the consensus without the host: in anyone else's,
     # leaving out each participant code in turn and recomputing would single the host out.
     diffs = []
@@ -383,9 +394,71 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any) -> str:
         if wh.get("assigned_value") is not None:
             diffs.append(f"{m} {n(wh['assigned_value'])} ({n(wh['difference'], 2)})")
     if diffs:
-        text += (" Without your results the consensus would be (difference in brackets): "
-                 + "; ".join(diffs) + ".")
+        parts.append(t("letter.without_host", values=t("common.semicolon").join(diffs)))
+    return " ".join(parts)
+
+
+_PAD = 8.0  # a table cell's padding, both sides (_layout.table_style)
+
+
+def _fit_columns(data: Sequence[Sequence[Any]], widths: Sequence[float], room: float
+                 ) -> list[float]:
+    """Return column widths for a letter's table within ``room`` points.
+
+    The widths given were chosen for English; another language's words may be longer. A
+    column gets at least its widest cell and the longest word of its heading (headings may
+    wrap between words), and as much of its given width and whole heading as fits.
+    """
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+
+    def wide(text: str, font: str) -> float:
+        return stringWidth(text, font, 8) + _PAD + 1
+
+    least, most = [], []
+    for i, given in enumerate(widths):
+        head = data[0][i] if i < len(data[0]) and isinstance(data[0][i], str) else ""
+        cells = [wide(row[i], _layout.FONT) for row in data[1:]
+                 if i < len(row) and isinstance(row[i], str)]
+        low = max([*cells, *(wide(word, _layout.BOLD) for word in head.split()), 0.0])
+        least.append(low)
+        most.append(max(low, given, wide(head, _layout.BOLD) if head else 0.0))
+    if sum(most) <= room:
+        return most
+    if sum(least) >= room:
+        return [w * room / sum(least) for w in least]
+    share = (room - sum(least)) / (sum(most) - sum(least))
+    return [lo + (hi - lo) * share for lo, hi in zip(least, most, strict=True)]
+
+
+_NUMBER = re.compile(r"[-+]?\d+(?:\.\d+)?(?:e[-+]?\d+)?")
+
+
+def _reworded(text: str, section: str, t: Texts, comma: bool) -> str:
+    """Return a sentence the evaluation wrote in English (statistics.json) in the words of
+    ``t``: matched against the English texts of ``section``, its values carried over (with a
+    decimal comma if the laboratory writes one); ``text`` itself if no text matches."""
+    english = language.texts()
+    for key, template in english.entries.items():
+        if not key.startswith(section + "."):
+            continue
+        found = _pattern(template).fullmatch(text)
+        if found is None:
+            continue
+        values = {name: (value.replace(".", ",") if comma and _NUMBER.fullmatch(value)
+                         else value) for name, value in found.groupdict().items()}
+        return t(key, **values)
     return text
+
+
+@cache
+def _pattern(template: str) -> re.Pattern[str]:
+    """Return a regular expression that matches what ``template`` gives for any values."""
+    out = ""
+    for literal, name, _, _ in string.Formatter().parse(template):
+        out += re.escape(literal)
+        if name:
+            out += f"(?P<{name}>.+?)"
+    return re.compile(out)
 
 
 def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
@@ -395,12 +468,16 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
     ``view`` is ``anonymous_view(statistics)``, computed once when many letters are made.
     """
     s = statistics
-    story = _story(s, rows, addressee, view or anonymous_view(s), paper)
+    t = language.texts(addressee.language)
+    story = _story(s, rows, addressee, view or anonymous_view(s), paper, t)
     running = _layout.Running(s["study"], s["title"], s["round"],
-                              f"letter to {addressee.lab}",
-                              f"for {addressee.name} only")
+                              t("letter.running", lab=addressee.lab),
+                              t("letter.confidential", name=addressee.name),
+                              round_text=t.template("common.round"),
+                              page_text=t.template("common.page"))
     return _layout.build(path, story, paper=paper, running=running,
-                         title=f"{s['study']} round {s['round']}: letter to {addressee.lab}")
+                         title=t("letter.pdf_title", study=s["study"], round=s["round"],
+                                 lab=addressee.lab))
 
 
 # --- many letters in parallel --------------------------------------------------

@@ -16,16 +16,14 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, parcel
+from planner import codes, language, parcel
 from planner.render import _layout
 
 if TYPE_CHECKING:
+    from planner.language import Texts
     from planner.spec import Lab, Study
 
-__all__ = ["SDS_NOTE", "render"]
-
-SDS_NOTE = ("These notes do not replace the safety data sheet of the material or your local "
-            "rules; where they differ, the safety data sheet and local rules apply.")
+__all__ = ["hazard_section", "render", "sign_heads"]
 
 _MM = 72.0 / 25.4
 
@@ -37,7 +35,7 @@ def _address(lab: Lab, heading: str, st: dict[str, Any]) -> list[Any]:
     lines = [f"<b>{esc(lab.name)}</b>", *(esc(line) for line in lab.address)]
     contact = ", ".join(esc(x) for x in (lab.contact.name, lab.contact.email, lab.contact.phone)
                         if x)
-    return [Paragraph(heading, st["label"]), Paragraph("<br/>".join(lines), st["body"]),
+    return [Paragraph(esc(heading), st["label"]), Paragraph("<br/>".join(lines), st["body"]),
             Paragraph(contact, st["small"])]
 
 
@@ -47,13 +45,16 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
 
     Built from the manifest alone, without the key: it lists codes, never which material a
     code is, and gives one storage text and the cautions of every material of the round, the
-    same on every laboratory's list, so that none of them singles a unit out.
+    same on every laboratory's list, so that none of them singles a unit out. Written in the
+    laboratory's language.
     """
+    from reportlab.pdfbase.pdfmetrics import stringWidth
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
     st = _layout.styles()
     esc = _layout.escape
     lab = study.lab(lab_id)
+    t = language.texts(language.of(lab))
     host = study.lab(manifest["host"])
     entry = manifest["labs"][lab_id]
     dates = manifest["dates"]
@@ -63,41 +64,41 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     width = _layout.content_width(paper)
 
     story: list[Any] = [
-        Paragraph("Packing list", st["title"]),
-        Paragraph(f"Parcel for <b>{esc(lab.name)}</b> in round {esc(manifest['round'])} of "
-                  f"{esc(study.study.title)}. Check every unit against this list when you pack "
-                  "it and again when it arrives.", st["lead"]),
+        Paragraph(esc(t("packing_list.title")), st["title"]),
+        Paragraph(t.markup("packing_list.lead", lab=lab.name, round=manifest["round"],
+                           title=study.study.title), st["lead"]),
     ]
     addresses = _layout.table(
-        [[_address(host, "from (host)", st), _address(lab, "to", st)]], [width / 2, width / 2],
+        [[_address(host, t("packing_list.from"), st), _address(lab, t("packing_list.to"), st)]],
+        [width / 2, width / 2],
         _layout.table_style(header=False, extra=[
         ("VALIGN", (0, 0), (-1, -1), "TOP"), ("LINEBELOW", (0, 0), (-1, -1), 0, "#ffffff"),
         ("LEFTPADDING", (0, 0), (-1, -1), 0)]))
     story += [addresses, Spacer(1, 5 * _MM)]
 
     date_rows = [
-        ["ship date", entry.get("ship", "")],
-        ["expected arrival", entry.get("arrive", "")],
-        ["test window", f"{dates.get('test_start', '')} to {dates.get('test_end', '')}"],
-        ["results due", dates.get("results_due", "")],
+        [t("packing_list.ship"), entry.get("ship", "")],
+        [t("packing_list.arrive"), entry.get("arrive", "")],
+        [t("packing_list.window"), t("common.date_range", start=dates.get("test_start", ""),
+                                     end=dates.get("test_end", ""))],
+        [t("packing_list.due"), dates.get("results_due", "")],
     ]
-    date_table = _layout.table(date_rows, [40 * _MM, width - 40 * _MM], _layout.table_style(
+    # As wide as the longest label in the laboratory's words, and no less than 40 mm.
+    labels = max(40 * _MM, max(stringWidth(row[0], _layout.BOLD, 8.5) for row in date_rows) + 10)
+    date_table = _layout.table(date_rows, [labels, width - labels], _layout.table_style(
         header=False, extra=[("FONT", (0, 0), (0, -1), _layout.BOLD, 8.5)]))
-    story += [Paragraph("Dates", st["h2"]), date_table,
-              Paragraph("Round fingerprint", st["h2"]),
+    story += [Paragraph(esc(t("common.dates_heading")), st["h2"]), date_table,
+              Paragraph(esc(t("common.fingerprint_heading")), st["h2"]),
               Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"]),
-              Paragraph("The SHA-256 of the sealed decoding key, fixed before shipping. Keep "
-                        "this page: when the key is opened, its fingerprint must be the same.",
-                        st["small"])]
+              Paragraph(esc(t("packing_list.fingerprint_note")), st["small"])]
 
-    story += [Paragraph("Contents", st["h2"]),
-              Paragraph(f"<b>{len(units)} units</b> for testing ({manifest['trials']} trials). "
-                        "Spares stay with the host: if a unit is lost or damaged, tell the "
-                        "coordinator its code, and the host sends a replacement unit.",
-                        st["body"]),
+    story += [Paragraph(esc(t("packing_list.contents_heading")), st["h2"]),
+              Paragraph(t.markup("packing_list.contents", count=len(units),
+                                 trials=manifest["trials"]), st["body"]),
               Spacer(1, 2.5 * _MM)]
     box = 3.6 * _MM
-    rows: list[list[Any]] = [["code", "trial", "packed", "received"]]
+    rows: list[list[Any]] = [[t("packing_list.col_code"), t("packing_list.col_trial"),
+                              t("packing_list.col_packed"), t("packing_list.col_received")]]
     for unit in units:
         rows.append([codes.format(unit["code"]), unit["trial"],
                      _layout.check_box(box), _layout.check_box(box)])
@@ -107,28 +108,41 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
                                  ("ALIGN", (1, 0), (-1, -1), "CENTER")]), repeatRows=1)
     story.append(contents)
 
-    story += [Paragraph("Storage and handling", st["h2"]),
-              Paragraph(f"Store every unit: <b>{esc(parcel.storage(study))}</b>.", st["body"]),
-              Paragraph("Keep units closed until they are tested; do not open, mix or split "
-                        "them before the test. Report a damaged unit to the coordinator.",
-                        st["body"])]
+    story += [Paragraph(esc(t("packing_list.storage_heading")), st["h2"]),
+              Paragraph(t.markup("packing_list.storage", storage=parcel.storage(study)),
+                        st["body"]),
+              Paragraph(esc(t("packing_list.closed")), st["body"])]
     hazards = parcel.cautions(study)
     if hazards:
-        story.append(Paragraph(
-            "Every label of this round carries the hazard words of all its materials, so that "
-            "no label tells which units hold which material: a word on a label does not mean "
-            "that unit is hazardous, but handle <b>every</b> unit of the parcel with all the "
-            "cautions below.", st["body"]))
-    story += _layout.hazard_cautions(
-        hazards, none_text="No material of this round carries a hazard word.")
-    story.append(Paragraph(SDS_NOTE, st["small"]))
-    signers = ("packed by (host)", "checked by (host)", "received by (laboratory)")
+        story.append(Paragraph(t.markup("packing_list.hazard_all"), st["body"]))
+    story += hazard_section(hazards, t, none_text=t("packing_list.no_hazard"))
+    signers = (t("packing_list.packed_by"), t("packing_list.checked_by"),
+               t("packing_list.received_by"))
     story.append(KeepTogether([
-        Paragraph("Signatures", st["h2"]),
-        _layout.sign_lines(width, signers, row_height=11 * _MM,
-                           columns=(0.28, 0.30, 0.16, 0.26))]))
+        Paragraph(esc(t("common.signatures_heading")), st["h2"]),
+        _layout.sign_lines(width, [esc(s) for s in signers], row_height=11 * _MM,
+                           columns=(0.28, 0.30, 0.16, 0.26), heads=sign_heads(t))]))
 
     running = _layout.Running(study.id, study.study.title, manifest["round"],
-                              f"packing list · {lab.id}")
+                              t("packing_list.running", lab=lab.id),
+                              round_text=t.template("common.round"),
+                              page_text=t.template("common.page"))
     return _layout.build(path, story, paper=paper, running=running,
-                         title=f"packing list {lab.id}, {study.id} round {manifest['round']}")
+                         title=t("packing_list.pdf_title", lab=lab.id, study=study.id,
+                                 round=manifest["round"]))
+
+
+def hazard_section(hazards: dict[str, str], t: Texts, *, none_text: str) -> list[Any]:
+    """Return the hazard cautions heading and bullets, then the note that the safety data
+    sheet comes first, in the language of ``t`` (the hazard words are the study's)."""
+    from reportlab.platypus import Paragraph
+
+    st = _layout.styles()
+    return [*_layout.hazard_cautions(hazards, none_text=_layout.escape(none_text),
+                                     heading=t("common.hazard_heading")),
+            Paragraph(_layout.escape(t("common.sds_note")), st["small"])]
+
+
+def sign_heads(t: Texts) -> tuple[str, str, str]:
+    """Return the headings of a table of signatures: name, date, signature."""
+    return t("common.name"), t("common.date"), t("common.signature")

@@ -450,9 +450,10 @@ def _drift(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
         grid = [charts[i:i + 2] + [""] * (2 - len(charts[i:i + 2]))
                 for i in range(0, len(charts), 2)]
         t = Table(grid, colWidths=[half + 3, half + 3], hAlign="LEFT")
+        # FONT: an empty cell still sets a font, reportlab's Helvetica unless told
         t.setStyle([("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
                     ("TOPPADDING", (0, 0), (-1, -1), 2), ("BOTTOMPADDING", (0, 0), (-1, -1), 4),
-                    ("VALIGN", (0, 0), (-1, -1), "TOP")])
+                    ("VALIGN", (0, 0), (-1, -1), "TOP"), ("FONT", (0, 0), (-1, -1), _layout.FONT)])
         out.append(KeepTogether([t]))
     return out
 
@@ -655,9 +656,10 @@ def _precision(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
 
         out.append(d.p("Mandel's h and k with the 5 % and 1 % indicator lines", "h2"))
         t = Table(grid, colWidths=[half + 3, half + 3], hAlign="LEFT")
+        # FONT: an empty cell still sets a font, reportlab's Helvetica unless told
         t.setStyle([("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
                     ("TOPPADDING", (0, 0), (-1, -1), 2), ("BOTTOMPADDING", (0, 0), (-1, -1), 4),
-                    ("VALIGN", (0, 0), (-1, -1), "TOP")])
+                    ("VALIGN", (0, 0), (-1, -1), "TOP"), ("FONT", (0, 0), (-1, -1), _layout.FONT)])
         out.append(t)
     return out
 

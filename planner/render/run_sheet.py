@@ -13,42 +13,29 @@ the set must leave; the host gets one sheet per stop (``visit``).
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import codes, tokens
+from planner import codes, language, tokens
 from planner.render import _layout, _qr
 
 if TYPE_CHECKING:
+    from planner.language import Texts
     from planner.spec import Study
 
-__all__ = ["CIRCULATING_INSTRUCTIONS", "INSTRUCTIONS", "file_name", "render"]
+__all__ = ["file_name", "instructions", "render"]
 
-INSTRUCTIONS = (
-    "Test the units of each trial in the order of its table, top to bottom.",
-    ("Run one trial per session (a separate day or shift); finish a trial before you start the "
-    "next, and do not look back at earlier results."),
-    ("Report every result, including failed or doubtful tests: leave the value empty and say "
-    "what happened under remarks. Do not repeat a test to get a better value."),
-    ("If a unit is lost or damaged, tell the coordinator its code; the host sends a replacement "
-    "unit. Test it in the lost unit's place and write the code on its label in the code column "
-    "of the result form."),
-    ("The decoding key stays sealed with the coordinator until every laboratory has reported; "
-    "do not try to find out which material a unit holds."),
-)
+_INSTRUCTIONS = ("order", "session", "report_all", "lost", "sealed")
+_CIRCULATING = ("circulating_order", "session", "report_all", "circulating_same_code",
+                "circulating_travel", "circulating_sealed")
 
-CIRCULATING_INSTRUCTIONS = (
-    ("Every artefact is measured once in each trial. Test the artefacts of a trial in the "
-     "order of its table, top to bottom."),
-    INSTRUCTIONS[1],
-    INSTRUCTIONS[2],
-    ("The code of an artefact is the same in every trial: keep the trial and position of each "
-     "row on the result form as printed, so that each result belongs to its measurement."),
-    ("The artefacts travel on to the next laboratory: do not mark, clean or change them, and "
-     "pass the set on by the date above (see the hand-over sheet)."),
-    ("The decoding key stays sealed with the coordinator until every stop has reported; do not "
-     "try to find out what an artefact is made of."),
-)
+
+def instructions(texts: Texts, *, circulating: bool = False) -> tuple[str, ...]:
+    """Return the numbered instructions of a run sheet (a circulating set's), in ``texts``."""
+    return tuple(texts(f"run_sheet.{key}") for key in (_CIRCULATING if circulating
+                                                       else _INSTRUCTIONS))
+
 
 _MM = 72.0 / 25.4
 
@@ -80,54 +67,60 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
     st = _layout.styles()
     esc = _layout.escape
     lab = study.lab(lab_id)
+    t = language.texts(language.of(lab))
     dates = manifest["dates"]
     width = _layout.content_width(paper)
     unit = manifest.get("unit", study.study.unit)
     circulating = manifest.get("mode") == "circulate"
     if visit == "start":
         visit = None
+    measurand = manifest.get("measurand", "")
+    due = dates.get("results_due", "")
     if circulating:
         station = _station(manifest, lab_id, visit)
         entry = {"trials": manifest["host_visits"][visit] if visit
                  else manifest["labs"][lab_id]["trials"]}
-        stop = (f"stop {station['index']} of {len(manifest['route'])}"
-                + (f" ({station['visit']})" if station.get("visit") else ""))
-        passing = (f"pass the set on by {esc(station['pass_on'])}" if station.get("pass_on")
-                   else "the set stays with the host")
-        lead = (f"<b>{esc(lab.name)}</b> · {esc(stop)} of the circulating set · "
-                f"{esc(manifest.get('measurand', ''))}, in {esc(unit)}. Test from "
-                f"{esc(station['test_start'])} to {esc(station['test_end'])}; {passing}; "
-                f"results due {esc(dates.get('results_due', ''))}.")
-        instructions: tuple[str, ...] = CIRCULATING_INSTRUCTIONS
+        count = len(manifest["route"])
+        stop = (t("run_sheet.stop_visit", index=station["index"], count=count,
+                  visit=t(f"common.visit.{station['visit']}"))
+                if station.get("visit") else
+                t("run_sheet.stop", index=station["index"], count=count))
+        passing = (t("run_sheet.pass_on", date=station["pass_on"]) if station.get("pass_on")
+                   else t("run_sheet.stays"))
+        lead = t.markup("run_sheet.lead_circulating", lab=lab.name, stop=stop,
+                        measurand=measurand, unit=unit, start=station["test_start"],
+                        end=station["test_end"], passing=passing, due=due)
+        first_day = station["test_start"]
     else:
         entry = manifest["labs"][lab_id]
-        lead = (f"<b>{esc(lab.name)}</b> · {esc(manifest.get('measurand', ''))}, in "
-                f"{esc(unit)}. Test window {esc(dates.get('test_start', ''))} to "
-                f"{esc(dates.get('test_end', ''))}; results due "
-                f"{esc(dates.get('results_due', ''))}.")
-        instructions = INSTRUCTIONS
+        lead = t.markup("run_sheet.lead", lab=lab.name, measurand=measurand, unit=unit,
+                        start=dates.get("test_start", ""), end=dates.get("test_end", ""),
+                        due=due)
+        first_day = dates.get("test_start", "")
+    steps = [*instructions(t, circulating=circulating),
+             t("run_sheet.dates_note", example=first_day or "2027-01-25")]
 
     story: list[Any] = [
-        Paragraph("Run sheet", st["title"]),
+        Paragraph(esc(t("run_sheet.title")), st["title"]),
         Paragraph(lead, st["lead"]),
-        Paragraph("How to test", st["h2"]),
+        Paragraph(esc(t("run_sheet.how_to")), st["h2"]),
     ]
     story += [Paragraph(esc(text), st["bullet"], bulletText=f"{i}.")
-              for i, text in enumerate(instructions, start=1)]
-    story += [Paragraph("Round fingerprint", st["h2"]),
+              for i, text in enumerate(steps, start=1)]
+    story += [Paragraph(esc(t("common.fingerprint_heading")), st["h2"]),
               Paragraph(_layout.grouped_fingerprint(manifest["fingerprint"]), st["mono"])]
     if token is not None:
-        story += [Paragraph("Submission token", st["h2"]),
-                  Paragraph(f"<font name='{_layout.MONO}'>{esc(tokens.format(token))}</font>"
-                            " &#8212; for your laboratory only. It is already on your result "
-                            "form; the coordinator records a form only with it. Do not pass it "
-                            "on.", st["body"])]
+        shown = language.Markup(f"<font name='{_layout.MONO}'>{esc(tokens.format(token))}</font>")
+        story += [Paragraph(esc(t("run_sheet.token_heading")), st["h2"]),
+                  Paragraph(t.markup("run_sheet.token", token=shown), st["body"])]
 
     side = 13 * _MM
     widths = [0.06, 0.11, 0.17, 0.17, 0.16, 0.13, 0.20]
+    head = [t("run_sheet.col_run"), t("run_sheet.col_scan"), t("run_sheet.col_code"),
+            t("run_sheet.col_result", unit=unit), t("run_sheet.col_when"),
+            t("run_sheet.col_analyst"), t("run_sheet.col_remarks")]
     for trial, run in enumerate(entry["trials"], start=1):
-        rows: list[list[Any]] = [["run", "scan", "code", f"result ({unit})", "date, time",
-                                  "analyst", "remarks"]]
+        rows: list[list[Any]] = [_heads(head, [w * width for w in widths], st)]
         for position, code in enumerate(run, start=1):
             printed = codes.format(code)
             rows.append([str(position), _qr.flowable(printed, side), printed, "", "", "", ""])
@@ -139,11 +132,34 @@ def render(path: Path, study: Study, manifest: dict[str, Any], lab_id: str, *,
             ("TOPPADDING", (1, 1), (1, -1), 1), ("BOTTOMPADDING", (1, 1), (1, -1), 1),
         ]), repeatRows=1)
         story.append(KeepTogether([
-            Paragraph(f"Trial {trial} of {len(entry['trials'])}", st["h2"]),
-            Paragraph("one session; started on ____________ at ________", st["small"]),
+            Paragraph(esc(t("run_sheet.trial", trial=trial, count=len(entry["trials"]))),
+                      st["h2"]),
+            Paragraph(esc(t("run_sheet.started")), st["small"]),
             Spacer(1, 2 * _MM), table]))
     name = f"{lab.id}@{visit}" if visit else lab.id
     running = _layout.Running(study.id, study.study.title, manifest["round"],
-                              f"run sheet · {name}")
+                              t("run_sheet.running", name=name),
+                              round_text=t.template("common.round"),
+                              page_text=t.template("common.page"))
     return _layout.build(path, story, paper=paper, running=running,
-                         title=f"run sheet {name}, {study.id} round {manifest['round']}")
+                         title=t("run_sheet.pdf_title", name=name, study=study.id,
+                                 round=manifest["round"]))
+
+
+def _heads(texts: list[str], widths: list[float], st: dict[str, Any]) -> list[Any]:
+    """Return the heading cells of a trial's table: plain text where it fits on one line, else
+    a paragraph that wraps (a longer word of another language)."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.lib.styles import ParagraphStyle
+    from reportlab.pdfbase.pdfmetrics import stringWidth
+    from reportlab.platypus import Paragraph
+
+    style = ParagraphStyle("head", parent=st["cell"], fontName=_layout.BOLD, fontSize=8,
+                           leading=9.5, textColor=HexColor(_layout.ACCENT))
+    padding = 8  # table_style: 4 pt either side
+    # A unit in brackets stays on one line: "(g/10 min)" under "Ergebnis", not split.
+    whole = re.compile(r"\([^)]*\)")
+    return [text if stringWidth(text, _layout.BOLD, 8) <= width - padding
+            else Paragraph(_layout.escape(whole.sub(lambda m: m.group().replace(" ", "\u00a0"),
+                                                    text)), style)
+            for text, width in zip(texts, widths, strict=True)]

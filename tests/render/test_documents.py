@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from planner import codes
+from planner import codes, language
 from tests.render.conftest import (
     A4_PT,
     LETTER_PT,
@@ -50,12 +50,19 @@ def test_label_sheet_pages_match_their_paper(printed, printed_letter):
         assert box[2:] == pytest.approx(LETTER_PT, abs=TENTH_MM_PT)
 
 
+def _texts(printed, lab):
+    """Return the words of a laboratory's documents (hel writes German, study.yaml)."""
+    return language.texts(language.of(printed.study.lab(lab)))
+
+
 def test_every_page_names_study_round_and_page_n_of_m(printed):
     for path in _documents(printed):
+        lab = path.parent.name if path.parent.parent.name == "labs" else None
+        t = _texts(printed, lab) if lab else language.texts()
         pages = pdf_text(path)
         for n, text in enumerate(pages, start=1):
-            assert f"page {n} of {len(pages)}" in text, path.name
-            assert "nvp-mfr" in text and "round 2027-1" in text, path.name
+            assert t("common.page", number=n, total=len(pages)) in text, path.name
+            assert "nvp-mfr" in text and t("common.round", round="2027-1") in text, path.name
 
 
 def test_nothing_a_laboratory_receives_names_a_material(printed):
@@ -78,14 +85,16 @@ def test_packing_list_lists_the_parcel_sorted_by_code(printed):
         found = re.findall(r"\b[0-9A-Z]{4}-[0-9A-Z]{5}\b", text)
         expected = sorted(c for run in entry["trials"] for c in run)  # no spare: the host's
         assert found == [codes.format(c) for c in expected]
-        assert "Spares stay with the host" in text
+        t, flat = _texts(printed, lab), " ".join(text.split())
+        # "Spares stay with the host: if a unit is lost ..." in the laboratory's words
+        assert " ".join(t.template("packing_list.contents").split(")", 1)[1].split()) in flat
         assert printed.manifest["fingerprint"][:8] in text
         assert entry["ship"] in text and entry["arrive"] in text
         assert printed.manifest["dates"]["results_due"] in text
-        for line in ("packed by", "checked by", "received by"):
-            assert line in text
+        for key in ("packed_by", "checked_by", "received_by"):
+            assert t(f"packing_list.{key}") in flat
         # PP-FR is the one material with a hazard (study.yaml); its note and the SDS rule show
-        assert "IRRITANT" in text and "safety data sheet" in text
+        assert "IRRITANT" in text and " ".join(t("common.sds_note").split()) in flat
 
 
 def test_run_sheet_gives_each_trial_in_run_order_with_a_qr_per_row(printed):

@@ -8,9 +8,8 @@ import shutil
 
 import pytest
 
-from planner import codes
+from planner import codes, language
 from planner.render import handover
-from planner.render.packing_list import SDS_NOTE
 from tests.render.conftest import (
     A4_PT,
     PASSPHRASE,
@@ -24,6 +23,7 @@ from tests.render.conftest import (
 HARDNESS = ROOT / "examples" / "norrvik-hardness"
 HOST = "lin"
 BOX_PT = 3.6 / 25.4 * 72
+SDS_NOTE = language.texts("en")("common.sds_note")
 
 
 def _plan(target, text=None):

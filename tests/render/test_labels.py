@@ -13,7 +13,7 @@ import pytest
 
 from planner import codes
 from planner.errors import CodeError, PlannerError
-from planner.render import _sheets, labels
+from planner.render import _layout, _sheets, labels
 from tests.render.conftest import decode_qr, pdf_text, render_pages, secret_words
 
 MM = 72 / 25.4
@@ -120,7 +120,9 @@ def test_use_by_is_preparation_plus_shortest_stability(printed):
     # study.yaml: prepare_on 2027-01-11; shortest stability RE-MIX 120 days
     assert labels.use_by(printed.study, printed.manifest) == date(2027, 1, 11) + timedelta(120)
     items = labels.host_labels(printed.study, printed.manifest, printed.key)
-    assert {x.use_by for x in items if isinstance(x, labels.Label)} == {"use by 2027-05-11"}
+    # in the language of the laboratory that tests the unit (hel writes German, study.yaml)
+    assert {x.use_by for x in items if isinstance(x, labels.Label)} == {
+        "use by 2027-05-11", "verwendbar bis 2027-05-11"}
 
 
 def test_small_labels_drop_fields_in_the_documented_order(printed):
@@ -145,7 +147,7 @@ def test_too_long_text_is_shrunk_then_wrapped_never_cut(printed):
     item = labels.Label(code="K7QM4X9PA", trial="trial 1 · run 1", lab=(long_lab,),
                         use_by="use by 2027-05-11", study="nvp-mfr · round 2027-1")
     lines, dropped = labels.layout(item, g)
-    lab_lines = [ln.text for ln in lines if ln.font == "Helvetica"][:3]
+    lab_lines = [ln.text for ln in lines if ln.font == _layout.FONT][:3]
     assert "lab" not in dropped
     assert " ".join(lab_lines).replace("- ", "-").startswith(long_lab[:40])
     assert "".join(ln.text for ln in lines).replace(" ", "").count("Laboratory") == 1

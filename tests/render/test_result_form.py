@@ -9,8 +9,10 @@ from planner.render import result_form
 
 
 def _csv_parts(text):
+    from planner.plan import FORM_IDENTITY
+
     identity = [line[2:].split(": ", 1) for line in text.splitlines()
-                if line.startswith("# ") and ": " in line and "(" not in line.split(": ")[0]]
+                if line.startswith("# ") and line[2:].split(": ")[0] in FORM_IDENTITY]
     body = [line for line in text.splitlines() if line and not line.startswith("#")]
     delimiter = ";" if ";" in body[0] else ","
     rows = list(csv.reader(io.StringIO("\n".join(body)), delimiter=delimiter))
