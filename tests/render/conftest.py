@@ -38,22 +38,31 @@ class Printed:
 def plan_example(target: Path, *, paper: str = "A4") -> tuple[Any, dict[str, Any], dict[str, Any]]:
     """Copy the example study to ``target``, plan round 2027-1 with the fixed secret; return
     (study, manifest, key)."""
-    from planner import plan, seal, spec
-    from planner.ledger import Ledger
+    from planner import plan, seal
 
     shutil.copytree(EXAMPLE, target)
     if paper != "A4":
         spec_file = target / "study.yaml"
         text = spec_file.read_text(encoding="utf-8")
         spec_file.write_text(text.replace("paper: A4", f"paper: {paper}"), encoding="utf-8")
+    study, _ = plan_in_place(target)
+    folder = plan.round_dir(target, ROUND)
+    return study, plan.read_manifest(folder), seal.open_key(folder, PASSPHRASE)
+
+
+def plan_in_place(target: Path) -> tuple[Any, Any]:
+    """Plan round 2027-1 of the study folder ``target`` (host kal, the fixed secret) and write
+    it; return (study, the RoundPlan)."""
+    from planner import plan, spec
+    from planner.ledger import Ledger
+
     study = spec.load(target)
     dates, route = plan.dates_for(study, "kal")
     made = plan.plan_round(study, round_id=ROUND, host="kal", dates=dates, secret=SECRET,
                            route=route)
     with Ledger.open(target) as ledger:
         plan.write_round(study, target, made, ledger, passphrase=PASSPHRASE)
-    folder = plan.round_dir(target, ROUND)
-    return study, plan.read_manifest(folder), seal.open_key(folder, PASSPHRASE)
+    return study, made
 
 
 @pytest.fixture(scope="package")

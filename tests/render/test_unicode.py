@@ -20,7 +20,8 @@ import yaml
 from planner import fonts, spec
 from planner.render import _layout
 from tests.conftest import run_cli
-from tests.render.conftest import EXAMPLE, PASSPHRASE, ROUND, SECRET, pdf_text, plan_example
+from tests.render.conftest import (EXAMPLE, PASSPHRASE, ROUND, pdf_text, plan_example,
+                                   plan_in_place)
 
 # Laboratory id: (name, address lines, contact, country); ids, order and hosts of the example.
 LABS = {
@@ -69,12 +70,7 @@ def _plan_print_evaluate(target: Path):
     from planner.ledger import Ledger
     from planner.render import print_round
 
-    study = spec.load(target)
-    dates, route = planning.dates_for(study, "kal")
-    made = planning.plan_round(study, round_id=ROUND, host="kal", dates=dates, secret=SECRET,
-                               route=route)
-    with Ledger.open(target) as ledger:
-        planning.write_round(study, target, made, ledger, passphrase=PASSPHRASE)
+    study, made = plan_in_place(target)
     key = planning.key_of(made)
     printed = print_round(study, target, ROUND, key=key)
     # One plausible value per test unit; the numbers do not matter here.
@@ -292,20 +288,13 @@ def bundled_afterwards():
 
 
 def test_documents_are_set_in_the_study_fonts(tmp_path, bundled_afterwards):
-    from planner import plan as planning
-    from planner.ledger import Ledger
     from planner.render import print_round
 
     target = tmp_path / "study"
     shutil.copytree(EXAMPLE, target)
     _rewrite(target, _named(4, f"Crossway {OWN_SYMBOL} Laboratory"))
     _with_study_fonts(target, fonts.BUNDLED.mono, fonts.BUNDLED.mono_bold)
-    study = spec.load(target)
-    dates, route = planning.dates_for(study, "kal")
-    made = planning.plan_round(study, round_id=ROUND, host="kal", dates=dates, secret=SECRET,
-                               route=route)
-    with Ledger.open(target) as ledger:
-        planning.write_round(study, target, made, ledger, passphrase=PASSPHRASE)
+    study, _ = plan_in_place(target)
     paths = print_round(study, target, ROUND, key=None, only="packing", lab="crx")
     assert [p.name for p in paths] == ["packing-list.pdf"]
     faces = {"DejaVuSansMono": fonts.BUNDLED.mono, "DejaVuSansMono-Bold": fonts.BUNDLED.mono_bold}
