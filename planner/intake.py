@@ -53,6 +53,7 @@ __all__ = [
     "expected_codes",
     "inspect_form",
     "issued_spares",
+    "code_owners",
     "spare_swaps",
 ]
 
@@ -117,7 +118,8 @@ def _last_spare(code: str, swaps: Mapping[str, str]) -> str:
     return code
 
 
-def _owners(manifest: Mapping[str, Any], swaps: Mapping[str, str]) -> dict[str, tuple[str, str]]:
+def code_owners(manifest: Mapping[str, Any], swaps: Mapping[str, str]
+                ) -> dict[str, tuple[str, str]]:
     """Return code -> (laboratory, kind) for every code in the manifest, a unit the host sent
     as a replacement (``swaps``, in issue order) belonging to the laboratory it went to."""
     out: dict[str, tuple[str, str]] = {}
@@ -150,13 +152,16 @@ def check_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
 def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                  swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
                  elsewhere: Mapping[str, str],
-                 token_digests: Mapping[str, str] | None = None) -> Checked:
+                 token_digests: Mapping[str, str] | None = None,
+                 owners: Mapping[str, tuple[str, str]] | None = None) -> Checked:
     """Return what checking a form against its round found: its problems, slot and rows.
 
     The arguments are those of ``check_form``, all given; ``planner.returns``
     records the rows of a form without problems. ``token_digests`` (laboratory ->
     SHA-256 of its submission token, from the ledger) makes the form's token line
     required and checked; None for a round planned before there were tokens.
+    ``owners`` is ``code_owners(manifest, swaps)``, made once by a caller that checks
+    many forms of one round (it holds every code of the round).
     """
     problems = _check_identity(study, manifest, form, lab=lab)
     if problems:
@@ -169,12 +174,12 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         return _inspect_circulating(study, manifest, form, unsealed=unsealed, today=today,
                                     elsewhere=elsewhere)
     expected = expected_codes(manifest, form_lab, swaps)
-    owners = _owners(manifest, swaps)
+    owners = code_owners(manifest, swaps) if owners is None else owners
     rows = form.rows
-    mine = sum(1 for r in rows if codes.is_valid(str(r.get("code")))
-               and codes.compact(str(r.get("code"))) in expected)
-    others = {owners[c][0] for r in rows if codes.is_valid(str(r.get("code")))
-              and (c := codes.compact(str(r.get("code")))) in owners and owners[c][1] == "test"}
+    given = [codes.compact(text) if codes.is_valid(text := str(r.get("code"))) else None
+             for r in rows]
+    mine = sum(1 for c in given if c in expected)
+    others = {owners[c][0] for c in given if c in owners and owners[c][1] == "test"}
     if rows and not mine and len(others) == 1 and form_lab not in others:
         line = form.ident("laboratory")[1]  # type: ignore[index]
         return Checked((IntakeError(

@@ -26,7 +26,8 @@ from typing import TYPE_CHECKING, Any
 
 from planner import files, forms, plan
 from planner.errors import IntakeError, LedgerError, PlannerError, Where
-from planner.intake import Checked, condense, describe_slot, inspect_form, spare_swaps
+from planner.intake import (Checked, code_owners, condense, describe_slot, inspect_form,
+                            spare_swaps)
 
 if TYPE_CHECKING:
     from collections.abc import Mapping
@@ -214,6 +215,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     today = date.fromisoformat(ledger.now()[:10])
     swaps = spare_swaps(ledger, round_id)
     elsewhere = _other_rounds(ledger, round_id)
+    owners = code_owners(manifest, swaps)  # one table for every form of the call
     planned = ledger.events(round_id, "planned")
     # The chained planning event holds the tokens' digests; a round planned before
     # there were tokens has none, and its forms are taken without.
@@ -227,7 +229,8 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             problems.append(exc)
             continue
         checked = inspect_form(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
-                               today=today, elsewhere=elsewhere, token_digests=digests)
+                               today=today, elsewhere=elsewhere, token_digests=digests,
+                               owners=owners)
         problems += checked.problems
         if not checked.problems:
             accepted.append((form, checked))

@@ -57,6 +57,11 @@ _MM = 72.0 / 25.4
 _KINDS = ("test", "spare", "retained", "homogeneity")
 
 
+_ROW_HEIGHT = 16.0
+_HEAD_HEIGHT = 16.6
+"""Heights in points of a code row and of the header row, as the table measures them."""
+
+
 def _amount(value: float) -> str:
     return f"{value:g}"
 
@@ -111,17 +116,21 @@ def render(path: Path, study: Study, manifest: dict[str, Any], key: dict[str, An
             u["position"] or 0, u["code"]))
         if not units:
             continue
-        rows = [["code", "for", "kind", "trial", "run"]]
-        rows += [[codes.format(u["code"]),
-                  "host's pool" if u["kind"] == "spare" and u["lab"] == host.id else u["lab"],
-                  u["kind"],
-                  u["trial"] if u["trial"] is not None else "",
-                  u["position"] if u["position"] is not None else ""] for u in units]
-        table = _layout.table(rows, [w * width for w in (0.28, 0.2, 0.22, 0.15, 0.15)],
+        body = [[codes.format(u["code"]),
+                 "host's pool" if u["kind"] == "spare" and u["lab"] == host.id else u["lab"],
+                 u["kind"],
+                 u["trial"] if u["trial"] is not None else "",
+                 u["position"] if u["position"] is not None else ""] for u in units]
+        # Every row of the same height, given: a table split at a page break is measured
+        # again, and measuring each cell of every remaining row would cost the square of
+        # the rows.
+        table = _layout.table([["code", "for", "kind", "trial", "run"], *body],
+                              [w * width for w in (0.28, 0.2, 0.22, 0.15, 0.15)],
                               _layout.table_style(extra=[
                                   ("FONT", (0, 1), (0, -1), _layout.MONO, 10),
                                   ("TOPPADDING", (0, 1), (-1, -1), 2),
-                                  ("BOTTOMPADDING", (0, 1), (-1, -1), 2)]), repeatRows=1)
+                                  ("BOTTOMPADDING", (0, 1), (-1, -1), 2)]), repeatRows=1,
+                              rowHeights=[_HEAD_HEIGHT] + [_ROW_HEIGHT] * len(body))
         story.append(KeepTogether([
             Paragraph(f"{esc(material.id)} · {len(units)} units", st["h2"]),
             Paragraph(esc(material.description), st["small"]), Spacer(1, 2 * _MM),
