@@ -288,7 +288,15 @@ def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
             # reportlab's default first font is Helvetica, a font of no document of ours
             initialFontName=FONT,
             subject=f"{running.study_id} round {running.round_id}", creator="ringplan")
-        doc.build(list(story), canvasmaker=_numbered_canvas(running))
+        from reportlab import rl_config
+
+        # Plain Flate streams: ASCII85 on top makes every page a quarter bigger and the
+        # pure-Python encoder slower, and every PDF reader takes either.
+        was, rl_config.useA85 = rl_config.useA85, 0
+        try:
+            doc.build(list(story), canvasmaker=_numbered_canvas(running))
+        finally:
+            rl_config.useA85 = was
 
     return write_atomic(path, write)
 
