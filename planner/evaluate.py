@@ -60,7 +60,7 @@ RESULTS_NAME = "results.csv"
 STATISTICS_NAME = "statistics.json"
 REPORT_NAME = "report.pdf"
 FLAGS = ("late", "after-unseal", "in-house", "spare-used")
-_STATS_FORMAT = "ringplan-statistics/1"
+_STATS_FORMAT = "ringplan-statistics/2"
 _PARALLEL_FROM = 24  # letters; below this a process pool costs more than it saves
 
 DRIFT_FACTOR = 0.3

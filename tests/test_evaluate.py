@@ -241,6 +241,20 @@ def test_report_is_a4_and_shows_the_biased_laboratory(evaluated):
     assert "Consensus without the host" in text and "kal (in-house)" in text
 
 
+def test_report_gauge_section_speaks_of_materials_and_laboratories(evaluated):
+    _, _, _, out, _ = evaluated
+    text = " ".join(_text(out / "report.pdf").split())
+    assert "Repeatability and reproducibility across laboratories (gauge R&R)" in text
+    assert "Variance budget" in text
+    for row in ("materials × laboratories", "within laboratories (repeatability)",
+                "between materials"):
+        assert row in text
+    assert "k = 6: ±3 SD holds 99.73 % of a normal distribution" in text
+    for old in ("study variation", "% contribution", "appraiser", "operator",
+                "Components of variation", "material (part)", "interaction"):
+        assert old not in text, old
+
+
 def test_letter_paper_gives_us_letter_pages(evaluated, tmp_path):
     from planner.render import letter, report
 

@@ -13,7 +13,8 @@ Charts:
 - ``MeansChart``   laboratory means with intervals, the assigned value and a band
 - ``BarsChart``    one bar per laboratory with reference lines (Mandel h and k,
                    z scores with shaded satisfactory / questionable bands)
-- ``ComponentsChart``  components of variation as grouped horizontal bars
+- ``BudgetChart``  a variance budget: shares of the whole in one bar, a part enlarged
+- ``ToleranceChart``  spreads (k SD) as bars over the tolerance width
 - ``StripChart``   one row per material: everyone's score as a tick, one marked
 """
 
@@ -31,16 +32,19 @@ from planner.render import _layout
 # reportlab is imported at module level here (the classes derive from Flowable);
 # only the evaluate and demo commands import this module, inside the command.
 
-__all__ = ["Line", "MeansChart", "BarsChart", "ComponentsChart", "StripChart", "nice_ticks",
+__all__ = ["Line", "MeansChart", "BarsChart", "Share", "BudgetChart", "Spread",
+           "ToleranceChart", "StripChart", "nice_ticks",
            "MAX_LABELS", "SAT", "QUEST", "UNSAT", "band_colour"]
 
 MAX_LABELS = 40
 """Most bars that get a name under them; above this only flagged bars are named."""
 
-# Band colours: muted green / amber / red, light enough to print black text on.
-SAT = "#d9eadb"
-QUEST = "#f6e3b4"
-UNSAT = "#f1c6c2"
+# Band shading of our own: the satisfactory band a pale blue-grey, questionable pale sand,
+# unsatisfactory pale brick. Their lightness falls in that order, so the bands stay apart
+# on a black-and-white printer, and black text reads on each.
+SAT = "#edf2f3"
+QUEST = "#f0e2c0"
+UNSAT = "#e6c3ba"
 _BAR = "#8fa9ad"
 _BAR_HI = _layout.ACCENT
 _BAR_BAD = "#b03a2e"
@@ -266,7 +270,7 @@ class MeansChart(_Chart):
 class BarsChart(_Chart):
     """One bar per laboratory from zero, with reference lines and optional shaded bands.
 
-    ``shade`` lists (low, high, colour) bands drawn behind the bars (e.g. |z| <= 2 green);
+    ``shade`` lists (low, high, colour) bands drawn behind the bars (e.g. |z| <= 2 in the satisfactory shade);
     bars beyond ``flag_at`` (absolute value) are drawn in a warning colour and named
     even when there are too many bars to name them all. ``limit`` clips the axis to
     -+limit (a bar past it is drawn to the edge, its value written at the end).
@@ -336,19 +340,143 @@ class BarsChart(_Chart):
         self._x_labels(c, self.labels, named)
 
 
-class ComponentsChart(_Chart):
-    """Grouped horizontal bars: for each component, one bar per series (percentages)."""
+@dataclass(frozen=True, slots=True)
+class Share:
+    """One part of a variance budget: its name, its share of the whole in %, its colour."""
 
-    _left = 78.0
-    _right = 18.0
-    _bottom = 24.0
+    name: str
+    percent: float | None
+    colour: str
 
-    _COLOURS = (_layout.ACCENT, "#8fa9ad", "#c98a12")
 
-    def __init__(self, components: Sequence[str], series: Sequence[tuple[str, Sequence[float | None]]],
-                 *, width: float, height: float, title: str = "") -> None:
+class BudgetChart(_Chart):
+    """A variance budget: one bar split into shares that add up to 100 %, and a second
+    bar that enlarges the first ``zoom`` shares to the full width.
+
+    The measurement's own parts are often a sliver next to the differences between the
+    materials; the second bar shows how that sliver divides. Funnel lines join the
+    sliver to the enlarged bar. The legend under the bars gives every share in % of
+    the whole.
+    """
+
+    _left = 96.0
+    _right = 8.0
+    _bar = 15.0
+
+    def __init__(self, shares: Sequence[Share], *, zoom: int, names: tuple[str, str],
+                 zoom_note: str, width: float, height: float, title: str = "") -> None:
         super().__init__(width, height, title)
-        self.components, self.series = components, series
+        self.shares, self.zoom, self.names, self.zoom_note = shares, zoom, names, zoom_note
+
+    def draw(self) -> None:
+        from reportlab.lib.colors import HexColor
+
+        c = self.canv
+        self._draw_title(c)
+        x0, w = self._left, self.width - self._left - self._right
+        vals = [max(s.percent or 0.0, 0.0) for s in self.shares]
+        whole = sum(vals) or 1.0
+        part = sum(vals[:self.zoom])
+        y1 = self.height - self._top - 10 - self._bar
+        y2 = y1 - 26 - self._bar
+        self._row_label(c, y1, self.names[0], "100 %")
+        self._row_label(c, y2, self.names[1], self.zoom_note)
+        self._segments(c, x0, y1, w, vals, whole)
+        c.setFillColor(HexColor(_layout.MUTED))
+        c.setFont(_layout.FONT, 6.5)
+        c.drawString(x0, y1 + self._bar + 2.5,
+                     f"{self.names[1]}: {100 * part / whole:.3g} %, enlarged below")
+        if part > 0:
+            self._segments(c, x0, y2, w, vals[:self.zoom] + [0.0] * (len(vals) - self.zoom),
+                           part)
+            c.setStrokeColor(HexColor(_layout.MUTED))
+            c.setLineWidth(0.5)
+            c.setDash(2, 2)
+            c.line(x0, y1, x0, y2 + self._bar)
+            c.line(x0 + part / whole * w, y1, x0 + w, y2 + self._bar)
+            c.setDash()
+        self._legend(c, x0, y2 - 14, w)
+
+    def _row_label(self, c: Any, y: float, name: str, note: str) -> None:
+        from reportlab.lib.colors import HexColor
+
+        c.setFillColor(HexColor(_layout.INK))
+        c.setFont(_layout.FONT, 7.5)
+        c.drawRightString(self._left - 5, y + self._bar / 2 + 0.5, name)
+        c.setFillColor(HexColor(_layout.MUTED))
+        c.setFont(_layout.FONT, 6.5)
+        c.drawRightString(self._left - 5, y + self._bar / 2 - 7.5, note)
+
+    def _segments(self, c: Any, x0: float, y: float, w: float, vals: Sequence[float],
+                  whole: float) -> None:
+        from reportlab.lib.colors import HexColor
+
+        x = x0
+        for share, v in zip(self.shares, vals):
+            if v <= 0:
+                continue
+            length = v / whole * w
+            c.setFillColor(HexColor(share.colour))
+            c.rect(x, y, length, self._bar, stroke=0, fill=1)
+            text = f"{100 * v / whole:.3g} %"
+            if c.stringWidth(text, _layout.FONT, 7) + 6 < length:
+                dark = share.colour in (_layout.ACCENT, _BAR_BAD)
+                c.setFillColor(HexColor("#ffffff" if dark else _layout.INK))
+                c.setFont(_layout.FONT, 7)
+                c.drawCentredString(x + length / 2, y + self._bar / 2 - 2.5, text)
+            x += length
+        # hairline separators keep touching segments apart
+        c.setStrokeColor(HexColor("#ffffff"))
+        c.setLineWidth(0.8)
+        x = x0
+        for v in vals[:-1]:
+            x += max(v, 0.0) / whole * w
+            if v > 0:
+                c.line(x, y, x, y + self._bar)
+
+    def _legend(self, c: Any, x0: float, y: float, w: float) -> None:
+        from reportlab.lib.colors import HexColor
+
+        x = x0
+        c.setFont(_layout.FONT, 7)
+        for share in self.shares:
+            text = f"{share.name}: " + ("-" if share.percent is None
+                                        else f"{share.percent:.3g} %")
+            need = 11 + c.stringWidth(text, _layout.FONT, 7) + 12
+            if x > x0 and x + need > x0 + w:
+                x, y = x0, y - 11
+            c.setFillColor(HexColor(share.colour))
+            c.rect(x, y - 1, 7, 7, stroke=0, fill=1)
+            c.setFillColor(HexColor(_layout.INK))
+            c.drawString(x + 10, y, text)
+            x += need
+
+
+@dataclass(frozen=True, slots=True)
+class Spread:
+    """A spread drawn against the tolerance: its name and its width k SD (in result units)."""
+
+    name: str
+    width: float
+
+
+class ToleranceChart(_Chart):
+    """Spreads (k SD) as bars over the tolerance width, on the scale of the results.
+
+    The tolerance is a light track with its end marked; ``marks`` are shares of the
+    tolerance drawn as thin ticks over the track (with their names). A bar that ends
+    beyond a mark takes the colour of the highest mark it passes.
+    """
+
+    _left = 96.0
+    _right = 14.0
+    _bottom = 14.0
+
+    def __init__(self, spreads: Sequence[Spread], *, tolerance: float,
+                 marks: Sequence[tuple[float, str]], width: float, height: float,
+                 title: str = "") -> None:
+        super().__init__(width, height, title)
+        self.spreads, self.tolerance, self.marks = spreads, tolerance, marks
 
     def draw(self) -> None:
         from reportlab.lib.colors import HexColor
@@ -356,52 +484,63 @@ class ComponentsChart(_Chart):
         c = self.canv
         self._draw_title(c)
         x0, y0, w, h = self._area
-        vals = [v for _, vs in self.series for v in vs if v is not None and math.isfinite(v)]
-        # Past 150 % the bars only say "far too much"; clip them and print the value.
-        top = min(max(vals + [100.0]), 150.0) * 1.05
-        ticks = nice_ticks(0.0, top)
+        tol = self.tolerance
+        top = max([tol] + [s.width for s in self.spreads]) * 1.12
+        def at(v: float) -> float:
+            return x0 + v / top * w
+        # tolerance track behind the bars
+        c.setFillColor(HexColor("#eef1f2"))
+        c.setStrokeColor(HexColor(_layout.RULE))
+        c.setLineWidth(0.5)
+        c.rect(x0, y0, at(tol) - x0, h - 10, stroke=1, fill=1)
         c.setFont(_layout.FONT, 6.5)
-        c.setLineWidth(0.4)
-        for t in ticks:
-            x = x0 + t / top * w
-            c.setStrokeColor(HexColor(_layout.RULE))
-            c.line(x, y0, x, y0 + h)
+        for frac, name in self.marks:
+            x = at(frac * tol)
+            c.setStrokeColor(HexColor(_layout.MUTED))
+            c.setDash(1.5, 1.5)
+            c.line(x, y0, x, y0 + h - 10)
+            c.setDash()
             c.setFillColor(HexColor(_layout.MUTED))
-            c.drawCentredString(x, y0 - 9, f"{t:g} %")
-        groups = len(self.components)
-        k = max(len(self.series), 1)
-        gh = h / max(groups, 1)
-        bh = gh * 0.72 / k
-        for g, name in enumerate(self.components):
-            top_y = y0 + h - g * gh - gh * 0.14
+            c.drawCentredString(x, y0 + h - 7, name)
+        c.setStrokeColor(HexColor(_layout.INK))
+        c.setLineWidth(1.2)
+        c.line(at(tol), y0 - 2, at(tol), y0 + h - 10)
+        c.setFillColor(HexColor(_layout.INK))
+        c.drawCentredString(at(tol), y0 + h - 7, f"tolerance {_fmt(tol)}")
+        # axis in result units
+        c.setLineWidth(0.4)
+        for t in nice_ticks(0.0, top):
+            if t > top:
+                continue
+            c.setStrokeColor(HexColor(_layout.MUTED))
+            c.line(at(t), y0, at(t), y0 - 2)
+            c.setFillColor(HexColor(_layout.MUTED))
+            c.drawCentredString(at(t), y0 - 9, _fmt(t))
+        rows = max(len(self.spreads), 1)
+        step = (h - 10) / rows
+        for i, s in enumerate(self.spreads):
+            yc = y0 + h - 10 - (i + 0.5) * step
+            bh = min(11.0, step * 0.6)
+            colour = _layout.ACCENT
+            for frac, colour_at in zip(sorted(f for f, _ in self.marks), (_BAR_WARN, _BAR_BAD)):
+                if s.width > frac * tol:
+                    colour = colour_at
+            c.setFillColor(HexColor(colour))
+            c.rect(x0, yc - bh / 2, at(s.width) - x0, bh, stroke=0, fill=1)
             c.setFillColor(HexColor(_layout.INK))
             c.setFont(_layout.FONT, 7.5)
-            c.drawRightString(x0 - 4, top_y - gh * 0.36 - 2.5, name)
-            for s, (_, vs) in enumerate(self.series):
-                v = vs[g]
-                if v is None or not math.isfinite(v):
-                    continue
-                y = top_y - (s + 1) * bh
-                length = min(max(v, 0.0), top) / top * w
-                c.setFillColor(HexColor(self._COLOURS[s % len(self._COLOURS)]))
-                c.rect(x0, y, length, bh * 0.9, stroke=0, fill=1)
+            c.drawRightString(x0 - 5, yc - 2.5, s.name)
+            text = f"{_fmt(s.width)}, {100 * s.width / tol:.3g} % of the tolerance"
+            c.setFont(_layout.FONT, 6.5)
+            tw = c.stringWidth(text, _layout.FONT, 6.5)
+            if at(s.width) + 3 + tw <= x0 + w + self._right:
+                c.setFillColor(HexColor("#eef1f2" if s.width < tol else "#ffffff"))
+                c.rect(at(s.width) + 1.5, yc - 4, tw + 3, 8.5, stroke=0, fill=1)
                 c.setFillColor(HexColor(_layout.INK))
-                c.setFont(_layout.FONT, 6)
-                text = f"{v:.1f}" + (" (clipped)" if v > top else "")
-                if v > top:
-                    c.setFillColor(HexColor("#ffffff"))
-                    c.drawRightString(x0 + length - 2, y + bh * 0.45 - 2, text)
-                else:
-                    c.drawString(x0 + length + 2, y + bh * 0.45 - 2, text)
-        # legend under the axis
-        lx = x0
-        c.setFont(_layout.FONT, 7)
-        for s, (label, _) in enumerate(self.series):
-            c.setFillColor(HexColor(self._COLOURS[s % len(self._COLOURS)]))
-            c.rect(lx, 3, 7, 7, stroke=0, fill=1)
-            c.setFillColor(HexColor(_layout.INK))
-            c.drawString(lx + 10, 4, label)
-            lx += 16 + c.stringWidth(label, _layout.FONT, 7)
+                c.drawString(at(s.width) + 3, yc - 2.2, text)
+            else:  # no room after the bar: inside it, at its end
+                c.setFillColor(HexColor("#ffffff"))
+                c.drawRightString(at(s.width) - 3, yc - 2.2, text)
 
 
 class StripChart(_Chart):

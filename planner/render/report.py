@@ -16,8 +16,9 @@ unblinded results; it computes nothing itself, it only arranges. Sections:
    assigned value, z-score bars with the bands, and (for rounds of up to
    ``DETAIL_LABS`` laboratories) every laboratory's figures
 4. precision (ISO 5725-2): the estimates, Cochran and Grubbs, Mandel h and k
-5. gauge R&R: the ANOVA table, the components of variation, the
-   average-and-range method
+5. gauge R&R: the variance budget (a bar chart of the shares of the variance and,
+   with a tolerance, the measurement spread against it), its table, the analysis of
+   variance, the average-and-range method
 6. the results as reported (up to ``DETAIL_LABS`` laboratories) and methods
 
 This report names the laboratories; what goes to a participant is its letter.
@@ -150,12 +151,12 @@ def summary_lines(statistics: Mapping[str, Any]) -> list[str]:
         out.append("ISO 5725-2 tests: " + "; ".join(tests))
     ga = statistics.get("grr_anova") or {}
     if "skipped" not in ga and ga:
-        sv = ga["pct_study_variation"]
-        text = (f"gauge R&R (ANOVA): the measurement variation (GRR) is {fmt(sv['grr'], 3)} % of "
-                f"the total study variation")
+        text = (f"gauge R&R (ANOVA): the SD a result owes to the measurement, GRR = "
+                f"{fmt(ga['grr_sd'], 3)}, is {fmt(ga['pct_tv']['grr'], 3)} % of the SD of all "
+                f"results, TV (%GRR)")
         if ga.get("pct_tolerance"):
-            text += (f" and {fmt(ga['pct_tolerance']['grr'], 3)} % of the tolerance "
-                     f"{fmt(ga['tolerance'])}")
+            text += (f"; {fmt(ga['multiplier'])} GRR is {fmt(ga['pct_tolerance']['grr'], 3)} % "
+                     f"of the tolerance {fmt(ga['tolerance'])}")
         text += f"; number of distinct categories {fmt(ga.get('ndc'))}"
         out.append(text)
     worst = None
@@ -467,7 +468,7 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     rows_high = min(len(s["labs"]), 12) * 5.2 * _MM
     out: list[Any] = [CondPageBreak(30 * _MM + rows_high), d.p("Scores by laboratory", "h2"),
                       d.p("The score that decides the band of each material (z, or z' where "
-                          "marked in the heading); amber: questionable, red: unsatisfactory."
+                          "marked in the heading); shaded sand: questionable, brick: unsatisfactory."
                           + (" A material marked D% has no band (see the summary): its "
                              "column gives the difference from the assigned value in per cent."
                              if any(not s["scores"].get(m, {}).get("banded") for m in mats)
@@ -537,9 +538,8 @@ def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
                  (0, 0))[1] for lab, v in zip(labs, means))
     whisker = "mean ± U" if single else "lowest to highest result"
     chart_w = d.width
-    means_title = (f"Laboratory means ({whisker}), x_pt" + (" and x_pt ± 2 sigma_pt"
-                                                             if band else "")
-                   + f" [{s['unit']}]; the host in-house in colour")
+    means_title = (f"Means ({whisker}), x_pt" + (" ± 2 sigma_pt" if band else "")
+                   + f" [{s['unit']}]; the host in colour")
     charts = [_charts.MeansChart(labs, means, lows, highs, centre=x_pt, band=band, highlight=hl,
                                  width=chart_w, height=120, title=means_title)]
     if banded:
@@ -589,7 +589,7 @@ def _detail_table(d: _Doc, sc: Mapping[str, Any], pr: Mapping[str, Any], labs: S
         cells.append((len(head) - 1, i, e.get("band")))
         if has_en and e.get("en_band") == "unsatisfactory":
             cells.append((len(head) - 2, i, "unsatisfactory"))
-    widths = [88, 20, 50, 42, 36, 36, 42, 36, 40, 40] + ([40] if has_en else []) + [70]
+    widths = [76, 18, 48, 44, 38, 38, 48, 34, 40, 40] + ([40] if has_en else []) + [64]
     return d.table(rows, widths, extra=_band_cells(cells), size=7.5)
 
 
@@ -664,66 +664,133 @@ def _precision(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     return out
 
 
-def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
-    from reportlab.platypus import CondPageBreak, KeepTogether
+# The parts of the variance of all results in the gauge study, in the order of the
+# budget: the measurement's own parts first (they make up GRR^2), then the materials.
+_BUDGET = (("repeatability", "within laboratories (repeatability)", "EV = s_r"),
+           ("laboratory", "between laboratories", ""),
+           ("material_x_laboratory", "material × laboratory", ""),
+           ("reproducibility", "reproducibility (the two above)", "AV"),
+           ("grr", "measurement: EV and AV", "GRR = s_R"),
+           ("material", "between materials", "PV"))
+_ANOVA_ROWS = {"material": "materials", "laboratory": "laboratories",
+               "material_x_laboratory": "materials × laboratories",
+               "repeatability": "within laboratories (repeatability)", "total": "total"}
+# Common practice (AIAG MSA 4th ed.): %GRR under 10 % acceptable, 10-30 % may be, over 30 % not.
+_GRR_MARKS = ((0.10, "10 %"), (0.30, "30 %"))
 
-    from planner.render import _charts
+
+def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    from reportlab.platypus import CondPageBreak
 
     out: list[Any] = [CondPageBreak(100 * _MM),
-                      d.p("Gauge R&amp;R (materials as parts, laboratories as appraisers)", "h2")]
+                      d.p("Repeatability and reproducibility across laboratories "
+                          "(gauge R&amp;R)", "h2")]
     ga = s.get("grr_anova") or {"skipped": "not computed"}
     if "skipped" in ga:
         out.append(d.p(_layout.escape(f"ANOVA method not computed: {ga['skipped']}"), "body"))
     else:
-        table = ga["pooled_table"] if ga.get("pooled_table") else ga["table"]
-        rows: list[list[Any]] = [["source", "df", "SS", "MS", "F", "p"]]
-        for name, r in table.items():
-            rows.append([name, fmt(r.get("df")), fmt(r.get("ss"), 5), fmt(r.get("ms"), 5),
-                         fmt(r.get("f"), 4), fmt(r.get("p"), 3)])
-        model = ("interaction pooled into repeatability (p > "
-                 f"{ga['pool_alpha']:g})" if ga["model"] != "full" else "with interaction")
-        comps = ["repeatability", "reproducibility", "operator", "interaction", "grr", "part"]
-        names = {"repeatability": "repeatability (EV)", "reproducibility": "reproducibility (AV)",
-                 "operator": "  laboratory", "interaction": "  material x lab",
-                 "grr": "gauge R&R", "part": "material (part)"}
-        shown = [c for c in comps if c in ga["pct_contribution"]]
-        var_rows: list[list[Any]] = [["component", "variance", "SD", "% contribution",
-                                      "% study var.", "% tolerance"]]
-        tol = ga.get("pct_tolerance") or {}
-        for c in shown:
-            sd = ga["variance"].get(c)
-            var_rows.append([names[c].strip(), fmt(ga["variance"].get(c), 4),
-                             fmt(sd ** 0.5 if sd is not None and sd >= 0 else None, 4),
-                             fmt(ga["pct_contribution"].get(c), 3),
-                             fmt(ga["pct_study_variation"].get(c), 3), fmt(tol.get(c), 3)])
-        series = [("% contribution", [ga["pct_contribution"].get(c) for c in shown]),
-                  ("% study variation", [ga["pct_study_variation"].get(c) for c in shown])]
-        if tol:
-            # PV as a share of the tolerance says nothing about the gauge; leave it out.
-            series.append(("% tolerance", [tol.get(c) if c != "part" else None for c in shown]))
-        out += [
-            d.p(f"Two-way crossed ANOVA, {ga['parts']} materials x {ga['operators']} "
-                f"laboratories x {ga['trials']} trials, {model}.", "small"),
-            d.table(rows, [110, 40, 70, 70, 60, 60]),
-            d.table(var_rows, [110, 60, 60, 70, 70, 70]),
-            d.p(f"Study variation = {fmt(ga['multiplier'])} SD; number of distinct categories "
-                f"ndc = {fmt(ga.get('ndc'))}. Common practice (AIAG MSA): GRR below 10 % "
-                "acceptable, 10 to 30 % may be acceptable, above 30 % not acceptable.", "small"),
-            KeepTogether([_charts.ComponentsChart([names[c].strip() for c in shown], series,
-                                                  width=d.width, height=44 + 11 * len(series) * len(shown),
-                                                  title="Components of variation")]),
-        ]
+        out += _gauge_anova(d, ga, str(s.get("unit") or ""))
     gr = s.get("grr_range") or {"skipped": "not computed"}
     if "skipped" in gr:
         out.append(d.p(_layout.escape(f"Average-and-range method not computed: "
                                       f"{gr['skipped']}"), "small"))
     else:
-        rows = [["EV", "AV", "GRR", "PV", "TV", "% EV", "% AV", "% GRR", "ndc"],
-                [fmt(gr["ev"]), fmt(gr["av"]), fmt(gr["grr"]), fmt(gr["pv"]), fmt(gr["tv"]),
-                 fmt(gr["pct_ev"], 3), fmt(gr["pct_av"], 3), fmt(gr["pct_grr"], 3),
-                 fmt(gr.get("ndc"))]]
-        out += [d.p("Average-and-range method", "h2"),
-                d.table(rows, [50] * 9, right_from=0)]
+        rows: list[list[Any]] = [["", "symbol", "SD", "SD / TV in %"]]
+        for name, key, symbol in (("within laboratories (repeatability)", "ev", "EV"),
+                                  ("added by the laboratories (reproducibility)", "av", "AV"),
+                                  ("measurement", "grr", "GRR"),
+                                  ("between materials", "pv", "PV"),
+                                  ("all results", "tv", "TV")):
+            pct = 100.0 if key == "tv" else gr.get(f"pct_{key}")
+            rows.append([name, symbol, fmt(gr[key]), fmt(pct, 3)])
+        out += [d.p("Average-and-range method (AIAG MSA)", "h2"),
+                d.table(rows, [200, 52, 70, 70], right_from=2),
+                d.p(f"Number of distinct categories ndc = {fmt(gr.get('ndc'))}.", "small")]
+    return out
+
+
+def _gauge_anova(d: _Doc, ga: Mapping[str, Any], unit: str) -> list[Any]:
+    from reportlab.platypus import KeepTogether, Spacer
+
+    from planner.render import _charts
+
+    k = ga["multiplier"]
+    tol = ga.get("pct_tolerance") or {}
+    n = ga["materials"] * ga["laboratories"] * ga["trials"]
+    share = ga["pct_variance"]
+    out: list[Any] = [d.p(
+        f"Every laboratory tested every material {ga['trials']} times: {ga['materials']} "
+        f"materials × {ga['laboratories']} laboratories × {ga['trials']} trials, {n} results. "
+        "The variance of all results splits into what the measurement adds (within "
+        "laboratories, between laboratories, and laboratories that differ from material to "
+        "material) and the differences between the materials themselves.", "small"),
+        Spacer(1, 2 * _MM)]
+    colours = {"repeatability": _layout.ACCENT, "laboratory": "#c98a12",
+               "material_x_laboratory": "#8fa9ad", "material": "#dde3e5"}
+    shares = [_charts.Share(name, share.get(key), colours[key])
+              for key, name, _ in _BUDGET if key in colours]
+    charts: list[Any] = [_charts.BudgetChart(
+        shares, zoom=3, names=("all results", "the measurement"),
+        zoom_note="= 100 %, GRR²", width=d.width, height=108,
+        title="Variance budget: where the spread of all results comes from")]
+    if tol and ga.get("tolerance"):
+        spreads = [_charts.Spread(f"{k:g} EV (repeatability)", k * ga["repeatability_sd"]),
+                   _charts.Spread(f"{k:g} GRR (measurement)", k * ga["grr_sd"])]
+        charts += [Spacer(1, 2 * _MM), _charts.ToleranceChart(
+            spreads, tolerance=ga["tolerance"], marks=_GRR_MARKS, width=d.width, height=80,
+            title=f"Spread against the tolerance: k SD, k = {k:g}" + (f" [{unit}]" if unit else "")
+                  + "; dashed at 10 % and 30 % of it")]
+    out.append(KeepTogether(charts))
+    budget: list[list[Any]] = [["part of the variation", "symbol", "variance", "SD",
+                                "% of all\nvariance", "SD / TV\nin %"]
+                               + ([f"{k:g} SD in %\nof tolerance"] if tol else [])]
+    for key, name, symbol in (*_BUDGET, ("total", "all results", "TV")):
+        var = ga["variance"].get(key)
+        row = [name, symbol, fmt(var, 4), fmt(ga["total_sd"] if key == "total" else
+                                              ga.get(f"{key}_sd"), 4),
+               fmt(100.0 if key == "total" else share.get(key), 3),
+               fmt(100.0 if key == "total" else ga["pct_tv"].get(key), 3)]
+        if tol:
+            row.append(fmt(tol.get(key), 3))
+        budget.append(row)
+    sub = [("LEFTPADDING", (0, r), (0, r), 14) for r in (2, 3)]
+    bold = [("FONT", (0, r), (-1, r), _layout.BOLD, 8) for r in (5, 7)]
+    out += [Spacer(1, 2 * _MM),
+            d.table(budget, [150, 52, 50, 46, 58, 46] + ([66] if tol else []), right_from=2,
+                    extra=sub + bold),
+            d.p(_layout.escape(
+                (f"Spreads are set against the tolerance as k SD with k = {k:g}: ±3 SD holds "
+                 "99.73 % of a normal distribution, and AIAG MSA (4th ed.) uses 6. "
+                 if tol else "") +
+                "The ratio SD / TV (AIAG's %EV, %AV, %GRR, %PV) needs no multiplier: one would "
+                "multiply both SDs and cancel. Shares of the variance add up to 100 %; SD "
+                "ratios do not. s_r and s_R here are pooled over the materials (the model "
+                "assumes the same spread on each); the precision section gives them per "
+                "material (ISO 5725-2)."), "small"),
+            d.p(_layout.escape(
+                f"Number of distinct categories ndc = 1.41 PV / GRR, truncated: "
+                f"{fmt(ga.get('ndc'))}. Common practice (AIAG MSA): %GRR below 10 % "
+                "acceptable, 10 to 30 % may be acceptable, above 30 % not acceptable."),
+                "small")]
+    pooled = bool(ga.get("pooled_table"))
+    table = ga["pooled_table"] if pooled else ga["table"]
+    p_mxl = ga["table"].get("material_x_laboratory", {}).get("p")
+    model = (f"materials × laboratories is pooled into repeatability (its p = {fmt(p_mxl, 3)}"
+             f" > {ga['pool_alpha']:g})" if pooled
+             else "the model keeps the materials × laboratories term")
+    rows: list[list[Any]] = [["source of variation", "degrees of\nfreedom", "sum of\nsquares",
+                              "mean\nsquare", "F", "p"]]
+    for key, r in table.items():
+        name = _ANOVA_ROWS.get(key, key)
+        if pooled and key == "repeatability":
+            name += "\n  and materials × laboratories, pooled"
+        rows.append([name, fmt(r.get("df")), fmt(r.get("ss"), 5), fmt(r.get("ms"), 5),
+                     fmt(r.get("f"), 4), fmt(r.get("p"), 3)])
+    out.append(KeepTogether([
+        Spacer(1, 2 * _MM),
+        d.p(f"Analysis of variance: materials crossed with laboratories, both random; "
+            f"{model}.", "small"),
+        d.table(rows, [190, 60, 66, 66, 50, 50])]))
     return out
 
 

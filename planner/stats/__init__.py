@@ -9,17 +9,21 @@ needed, so any CSV in that shape can be evaluated::
     text = summary_text(result)
 
 ``evaluate_table`` runs every method that the data allow - one-way ANOVA, the gauge
-R&R ANOVA and average-and-range methods (materials as parts, laboratories as
-operators, trials as replicates), ISO 5725-2 precision and ISO 13528 scores - and
+R&R ANOVA and average-and-range methods (materials crossed with laboratories, trials
+as replicates), ISO 5725-2 precision and ISO 13528 scores - and
 returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}``::
 
     materials, labs      ids in order of first appearance
     anova[material]      one-way ANOVA of labs: ss_/df_/ms_between|within, f, p
-    grr_anova            table{part, operator, interaction, repeatability, total: ss, df,
-                         ms, f, p}, pooled_table, model ("full"/"pooled"), *_sd,
-                         pct_contribution, pct_study_variation, pct_tolerance, ndc
+    grr_anova            table{material, laboratory, material_x_laboratory,
+                         repeatability, total: ss, df, ms, f, p}, pooled_table, model
+                         ("full"/"pooled"), variance{...}, *_sd, pct_variance (share of
+                         the variance of all results), pct_tv (100 SD / TV), pct_tolerance
+                         (100 k SD / tolerance), multiplier (k), ndc, materials,
+                         laboratories, trials
     grr_range            ev, av, grr, pv, tv, pct_ev/av/grr/pv, pct_tolerance, ndc,
-                         range_check{d4, ucl, flagged[{part, operator, range}]}
+                         laboratory_means, laboratory_r_bar,
+                         range_check{d4, ucl, flagged[{material, laboratory, range}]}
     precision[material]  s_r, s_L, s_R, r, R, cells{lab: {n, mean, sd}}, mandel_h, mandel_k,
                          indicators{h_5, h_1, k_5, k_1}, cochran{...}, grubbs{...}, notes
     scores[material]     assigned_value, u_assigned_value, robust_sd, sigma_pt,
@@ -28,9 +32,9 @@ returns a JSON-ready dict; a method that cannot run gives ``{"skipped": reason}`
                          labs{lab: {mean, n, D, D_percent, z, z_prime, En, band, en_band}}
                          (the reference laboratory: reference true, no scores)
 
-The gauge study treats every material as a part and every laboratory as an operator;
-it needs the same number (2 or more) of results in every material x laboratory cell and
-is skipped with the reason otherwise (see ``gauge_rr``).
+The gauge study crosses every material with every laboratory; it needs the same number
+(2 or more) of results in every material x laboratory cell and is skipped with the
+reason otherwise (see ``gauge_rr``).
 Importing this package loads no numpy or scipy; the method modules are imported when
 ``evaluate_table`` runs.
 """
@@ -234,7 +238,7 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
     else:
         y, p_lab, o_lab = cube
         study = gauge_rr.evaluate(y, tolerance=tolerance, pool_alpha=pool_alpha,
-                                  parts=p_lab, operators=o_lab)
+                                  materials=p_lab, laboratories=o_lab)
         out["grr_anova"] = _plain(study.anova)
         out["grr_range"] = _plain(study.range)
     out["sources"] = {"anova": anova.SOURCE, "gauge_rr": gauge_rr.SOURCE,
@@ -425,20 +429,21 @@ def summary_text(result: Mapping[str, Any]) -> str:
     if "skipped" in ga:
         skipped.append(f"gauge R&R (ANOVA): {ga['skipped']}")
     else:
-        sv = ga["pct_study_variation"]
-        out.append(f"gauge R&R, ANOVA ({ga['model']} model): GRR sd {_g(ga['grr_sd'])}, "
-                   f"{_g(sv['grr'], 3)} % of study variation, ndc {ga['ndc']}")
-        out.append(f"  repeatability sd {_g(ga['repeatability_sd'])}, reproducibility sd "
-                   f"{_g(ga['reproducibility_sd'])}, part sd {_g(ga['part_sd'])}")
+        out.append(f"gauge R&R, ANOVA ({ga['model']} model): GRR {_g(ga['grr_sd'])}, "
+                   f"%GRR {_g(ga['pct_tv']['grr'], 3)} (100 GRR/TV), ndc {ga['ndc']}")
+        out.append(f"  SD within laboratories (EV) {_g(ga['repeatability_sd'])}, added by the "
+                   f"laboratories (AV) {_g(ga['reproducibility_sd'])}, between materials (PV) "
+                   f"{_g(ga['material_sd'])}")
         if ga.get("pct_tolerance"):
-            out.append(f"  GRR {_g(ga['pct_tolerance']['grr'], 3)} % of tolerance")
+            out.append(f"  {_g(ga['multiplier'])} GRR = {_g(ga['pct_tolerance']['grr'], 3)} % "
+                       f"of the tolerance {_g(ga['tolerance'])}")
     if "skipped" in gr:
         skipped.append(f"gauge R&R (average and range): {gr['skipped']}")
     else:
         out.append(f"gauge R&R, average and range: EV {_g(gr['ev'])}, AV {_g(gr['av'])}, "
                    f"GRR {_g(gr['grr'])} ({_g(gr['pct_grr'], 3)} % of TV), ndc {gr['ndc']}")
         for cell in gr["range_check"]["flagged"]:
-            flags.append([str(cell["part"]), str(cell["operator"]),
+            flags.append([str(cell["material"]), str(cell["laboratory"]),
                           f"range = {_g(cell['range'])}", "above UCL_R"])
     if flags:
         out.append("")

@@ -41,14 +41,15 @@ def test_average_and_range_reproduces_the_aiag_worked_example(aiag_cube, publish
 def test_range_check_flags_the_cells_above_d4_times_r_bar_bar(aiag_cube):
     # Hand check in plain Python: UCL_R = D4 * R-double-bar, D4 = 2.574 for 3 trials
     # (classical range-chart table; MSA, memory).
-    res = gauge_rr.evaluate_range(aiag_cube, parts=range(1, 11), operators="ABC")
+    res = gauge_rr.evaluate_range(aiag_cube, materials=range(1, 11), laboratories="ABC")
     ranges = {(i + 1, "ABC"[j]): max(c) - min(c)
               for i, part in enumerate(aiag_cube) for j, c in enumerate(part)}
     r_bar_bar = sum(ranges.values()) / len(ranges)
     ucl = 2.574 * r_bar_bar
     expected = sorted((str(p), a) for (p, a), r in ranges.items() if r > ucl)
     assert expected == [("4", "B")]  # 1.03 - 0.01 = 1.02 > 0.8795
-    assert sorted((c["part"], c["operator"]) for c in res.range_check["flagged"]) == expected
+    assert sorted((c["material"], c["laboratory"])
+                  for c in res.range_check["flagged"]) == expected
     assert res.range_check["d4"] == 2.574
 
 
@@ -75,9 +76,9 @@ def test_constants_are_the_published_table_and_agree_with_d2_and_d3():
             assert gauge_rr.K2[m] == pytest.approx(1 / math.sqrt(e_r2), abs=6e-5)
 
 
-@pytest.mark.parametrize("shape, word", [((10, 3, 4), "trials"), ((10, 4, 3), "appraisers"),
-                                         ((11, 3, 3), "parts")], ids=["4-trials", "4-labs",
-                                                                       "11-parts"])
+@pytest.mark.parametrize("shape, word", [((10, 3, 4), "trials"), ((10, 4, 3), "laboratories"),
+                                         ((11, 3, 3), "materials")], ids=["4-trials", "4-labs",
+                                                                       "11-materials"])
 def test_outside_the_constants_table_is_a_one_line_skip_pointing_to_anova(shape, word):
     y = np.random.default_rng(1).normal(size=shape)
     res = gauge_rr.evaluate_range(y)
@@ -119,22 +120,27 @@ def _anova_lm(y, formula):
 def test_full_model_table_matches_statsmodels(aiag_cube):
     # Independent library: statsmodels ols("y ~ C(part)*C(op)") + anova_lm. statsmodels
     # tests every term against the residual MS (fixed effects); the random-effects F of
-    # parts and operators uses the interaction MS, rebuilt here from statsmodels' MS.
+    # materials and laboratories uses the material x laboratory MS, rebuilt here from
+    # statsmodels' MS.
     y = np.asarray(aiag_cube)
     ref = _anova_lm(y, "y ~ C(part) * C(op)")
     res = gauge_rr.evaluate_anova(y, pool_alpha=1.0)  # never pool: keep the full model
     assert res.model == "full" and res.pooled_table is None
     t = res.table
-    for ours, theirs in (("part", "C(part)"), ("operator", "C(op)"),
-                         ("interaction", "C(part):C(op)"), ("repeatability", "Residual")):
+    for ours, theirs in (("material", "C(part)"), ("laboratory", "C(op)"),
+                         ("material_x_laboratory", "C(part):C(op)"),
+                         ("repeatability", "Residual")):
         assert t[ours]["ss"] == pytest.approx(ref.loc[theirs, "sum_sq"], rel=1e-10)
         assert t[ours]["df"] == ref.loc[theirs, "df"]
         assert t[ours]["ms"] == pytest.approx(ref.loc[theirs, "mean_sq"], rel=1e-10)
     ms_inter = ref.loc["C(part):C(op)", "mean_sq"]
-    assert t["interaction"]["f"] == pytest.approx(ref.loc["C(part):C(op)", "F"], rel=1e-10)
-    assert t["interaction"]["p"] == pytest.approx(ref.loc["C(part):C(op)", "PR(>F)"], rel=1e-8)
-    assert t["part"]["f"] == pytest.approx(ref.loc["C(part)", "mean_sq"] / ms_inter, rel=1e-10)
-    assert t["operator"]["f"] == pytest.approx(ref.loc["C(op)", "mean_sq"] / ms_inter, rel=1e-10)
+    mxl = t["material_x_laboratory"]
+    assert mxl["f"] == pytest.approx(ref.loc["C(part):C(op)", "F"], rel=1e-10)
+    assert mxl["p"] == pytest.approx(ref.loc["C(part):C(op)", "PR(>F)"], rel=1e-8)
+    assert t["material"]["f"] == pytest.approx(ref.loc["C(part)", "mean_sq"] / ms_inter,
+                                               rel=1e-10)
+    assert t["laboratory"]["f"] == pytest.approx(ref.loc["C(op)", "mean_sq"] / ms_inter,
+                                                 rel=1e-10)
     assert t["total"]["ss"] == pytest.approx(ref["sum_sq"].sum(), rel=1e-10)
 
 
@@ -146,7 +152,7 @@ def test_pooled_model_matches_the_additive_statsmodels_fit(aiag_cube):
     res = gauge_rr.evaluate_anova(y)
     assert res.model == "pooled"
     t = res.pooled_table
-    for ours, theirs in (("part", "C(part)"), ("operator", "C(op)")):
+    for ours, theirs in (("material", "C(part)"), ("laboratory", "C(op)")):
         assert t[ours]["f"] == pytest.approx(ref.loc[theirs, "F"], rel=1e-10)
         assert t[ours]["p"] == pytest.approx(ref.loc[theirs, "PR(>F)"], rel=1e-7)
     ms_pool = ref.loc["Residual", "mean_sq"]
@@ -157,8 +163,8 @@ def test_pooled_model_matches_the_additive_statsmodels_fit(aiag_cube):
     v_o = (ref.loc["C(op)", "mean_sq"] - ms_pool) / (p * r)
     v_p = (ref.loc["C(part)", "mean_sq"] - ms_pool) / (o * r)
     assert res.reproducibility_sd == pytest.approx(math.sqrt(v_o), rel=1e-10)
-    assert res.part_sd == pytest.approx(math.sqrt(v_p), rel=1e-10)
-    assert res.interaction_sd == 0.0
+    assert res.material_sd == pytest.approx(math.sqrt(v_p), rel=1e-10)
+    assert res.material_x_laboratory_sd == 0.0
     assert res.grr_sd == pytest.approx(math.sqrt(ms_pool + v_o), rel=1e-10)
 
 
@@ -166,17 +172,20 @@ def test_anova_table_matches_the_remembered_msa_appendix_table(aiag_cube, publis
     # AIAG MSA 4th ed. appendix A ANOVA table for the same example, FROM MEMORY.
     res = gauge_rr.evaluate_anova(np.asarray(aiag_cube))
     t = res.table
-    got = {"ss_part": t["part"]["ss"], "ss_operator": t["operator"]["ss"],
-           "ss_interaction": t["interaction"]["ss"], "ss_repeatability": t["repeatability"]["ss"],
-           "ss_total": t["total"]["ss"], "f_part": t["part"]["f"],
-           "f_operator": t["operator"]["f"], "f_interaction": t["interaction"]["f"]}
+    # The results file keeps the manual's names: its parts are our materials, its
+    # operators our laboratories.
+    mxl = t["material_x_laboratory"]
+    got = {"ss_part": t["material"]["ss"], "ss_operator": t["laboratory"]["ss"],
+           "ss_interaction": mxl["ss"], "ss_repeatability": t["repeatability"]["ss"],
+           "ss_total": t["total"]["ss"], "f_part": t["material"]["f"],
+           "f_operator": t["laboratory"]["f"], "f_interaction": mxl["f"]}
     for (method, quantity), (value, tol) in published.items():
         if method == "anova":
             assert got[quantity] == pytest.approx(value, abs=tol), quantity
 
 
 def test_significant_interaction_keeps_the_full_model_and_its_components():
-    # Simulated crossed data with a strong part x operator effect; expected components
+    # Simulated crossed data with a strong material x laboratory effect; expected components
     # rebuilt from statsmodels' mean squares with the EMS formulas of METHODS.md §2.
     rng = np.random.default_rng(11)
     p, o, r = 6, 4, 3
@@ -188,33 +197,34 @@ def test_significant_interaction_keeps_the_full_model_and_its_components():
     ms = ref["mean_sq"]
     ms_e, ms_po = ms["Residual"], ms["C(part):C(op)"]
     assert res.repeatability_sd ** 2 == pytest.approx(ms_e, rel=1e-9)
-    assert res.interaction_sd ** 2 == pytest.approx((ms_po - ms_e) / r, rel=1e-9)
-    assert res.operator_sd ** 2 == pytest.approx(max(0, (ms["C(op)"] - ms_po) / (p * r)), rel=1e-9)
-    assert res.part_sd ** 2 == pytest.approx((ms["C(part)"] - ms_po) / (o * r), rel=1e-9)
+    assert res.material_x_laboratory_sd ** 2 == pytest.approx((ms_po - ms_e) / r, rel=1e-9)
+    assert res.laboratory_sd ** 2 == pytest.approx(max(0, (ms["C(op)"] - ms_po) / (p * r)),
+                                                   rel=1e-9)
+    assert res.material_sd ** 2 == pytest.approx((ms["C(part)"] - ms_po) / (o * r), rel=1e-9)
     assert res.reproducibility_sd ** 2 == pytest.approx(
-        res.operator_sd ** 2 + res.interaction_sd ** 2, rel=1e-12)
+        res.laboratory_sd ** 2 + res.material_x_laboratory_sd ** 2, rel=1e-12)
 
 
 def test_percentages_follow_their_definitions(aiag_cube):
-    # METHODS.md §2: contributions (variances) add to 100; study variation (SDs) does not
-    # depend on the multiplier; only %tolerance does.
+    # METHODS.md §2: shares of the variance add to 100; SD ratios to TV (%GRR) do not
+    # depend on the multiplier k; only %tolerance does.
     y = np.asarray(aiag_cube)
     six = gauge_rr.evaluate_anova(y, tolerance=5.0)
     old = gauge_rr.evaluate_anova(y, tolerance=5.0, multiplier=5.15)
-    c = six.pct_contribution
-    assert c["grr"] + c["part"] == pytest.approx(100.0)
+    c = six.pct_variance
+    assert c["grr"] + c["material"] == pytest.approx(100.0)
     assert c["repeatability"] + c["reproducibility"] == pytest.approx(c["grr"])
-    assert six.pct_study_variation == old.pct_study_variation
-    assert six.pct_study_variation["grr"] == pytest.approx(100 * six.grr_sd / six.total_sd)
+    assert six.pct_tv == old.pct_tv
+    assert six.pct_tv["grr"] == pytest.approx(100 * six.grr_sd / six.total_sd)
     assert six.pct_tolerance["grr"] == pytest.approx(100 * 6 * six.grr_sd / 5.0)
     assert old.pct_tolerance["grr"] == pytest.approx(100 * 5.15 * six.grr_sd / 5.0)
     assert gauge_rr.evaluate_anova(y).pct_tolerance is None
-    assert six.ndc == math.trunc(1.41 * six.part_sd / six.grr_sd)
+    assert six.ndc == math.trunc(1.41 * six.material_sd / six.grr_sd)
 
 
 def test_ndc_is_never_below_one():
     rng = np.random.default_rng(5)
-    y = rng.normal(0, 1, (5, 3, 2))  # no part effect at all
+    y = rng.normal(0, 1, (5, 3, 2))  # no material effect at all
     res = gauge_rr.evaluate_anova(y)
     assert res.ndc >= 1
 
@@ -228,9 +238,9 @@ def test_too_few_trials_is_skipped():
 
 def test_arrange_cells_builds_the_cube_in_order_of_first_appearance():
     values = [1, 2, 3, 4, 5, 6, 7, 8]
-    parts = ["p1", "p1", "p2", "p2", "p1", "p1", "p2", "p2"]
-    ops = ["a", "a", "a", "a", "b", "b", "b", "b"]
-    y, pl, ol = gauge_rr.arrange_cells(values, parts, ops)
+    materials = ["p1", "p1", "p2", "p2", "p1", "p1", "p2", "p2"]
+    labs = ["a", "a", "a", "a", "b", "b", "b", "b"]
+    y, pl, ol = gauge_rr.arrange_cells(values, materials, labs)
     assert pl == ["p1", "p2"] and ol == ["a", "b"]
     assert y.tolist() == [[[1, 2], [5, 6]], [[3, 4], [7, 8]]]
 

@@ -31,9 +31,15 @@ def test_result_has_the_documented_structure_and_is_json(read_table):
                       "ms_within", "f", "p"}
     g = result["grr_anova"]
     assert set(g) >= {"table", "model", "repeatability_sd", "reproducibility_sd",
-                      "interaction_sd", "grr_sd", "part_sd", "total_sd", "pct_contribution",
-                      "pct_study_variation", "pct_tolerance", "ndc"}
+                      "laboratory_sd", "material_x_laboratory_sd", "grr_sd", "material_sd",
+                      "total_sd", "pct_variance", "pct_tv", "pct_tolerance", "multiplier",
+                      "ndc", "materials", "laboratories", "trials"}
+    assert set(g["table"]) == {"material", "laboratory", "material_x_laboratory",
+                               "repeatability", "total"}
+    assert not set(g) & {"pct_study_variation", "pct_contribution", "part_sd", "operator_sd",
+                         "interaction_sd", "parts", "operators"}
     assert g["model"] == "pooled"
+    assert set(result["grr_range"]) >= {"laboratory_means", "laboratory_r_bar"}
     pr = result["precision"]["P01"]
     assert set(pr) >= {"s_r", "s_L", "s_R", "r", "R", "cells", "mandel_h", "mandel_k",
                        "indicators", "cochran", "grubbs"}
@@ -50,7 +56,7 @@ def test_table_reproduces_the_aiag_average_and_range_result(read_table):
     assert gr["ev"] == pytest.approx(0.20188, abs=1e-4)
     assert gr["av"] == pytest.approx(0.22963, abs=1e-4)
     assert gr["pct_grr"] == pytest.approx(26.7, abs=0.05) and gr["ndc"] == 5
-    assert gr["range_check"]["flagged"] == [{"part": "P04", "operator": "B",
+    assert gr["range_check"]["flagged"] == [{"material": "P04", "laboratory": "B",
                                              "range": pytest.approx(1.02)}]
 
 
@@ -160,6 +166,15 @@ def test_summary_text_has_aligned_columns(read_table):
     col = block[0].index("x_pt")
     assert all(len(ln) > col and ln[col - 2:col] == "  " and ln[col] != " " for ln in block)
     assert "ndc 5" in text and "above UCL_R" in text
+
+
+def test_summary_text_gives_grr_against_tv_and_k_grr_against_the_tolerance(read_table):
+    result = stats.evaluate_table(_aiag_rows(read_table), tolerance=4.0)
+    ga = result["grr_anova"]
+    text = stats.summary_text(result)
+    assert f"%GRR {ga['pct_tv']['grr']:.3g} (100 GRR/TV)" in text
+    assert f"6 GRR = {ga['pct_tolerance']['grr']:.3g} % of the tolerance 4" in text
+    assert "study variation" not in text and "part sd" not in text
 
 
 def test_importing_the_package_leaves_numpy_unloaded():

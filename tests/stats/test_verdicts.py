@@ -202,7 +202,7 @@ def _verdicts(result):
             g = pr["grubbs"][end] or {}
             out.update({(m, "G", end, k): g.get(k) for k in ("statistic", "result", "lab")})
     ga, gr = result["grr_anova"], result["grr_range"]
-    out["anova"] = ga.get("skipped") or (ga["pct_study_variation"]["grr"], ga["ndc"])
+    out["anova"] = ga.get("skipped") or (ga["pct_tv"]["grr"], ga["ndc"])
     out["range"] = gr.get("skipped") or (gr["pct_grr"], gr["ndc"])
     return out
 
