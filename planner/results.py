@@ -13,7 +13,9 @@ __all__ = ["Unblinded"]
 
 @dataclass(frozen=True, slots=True)
 class Unblinded:
-    """One unblinded result; ``value`` is None when the test failed and no value was given."""
+    """One unblinded result of one measurand; ``value`` is None when the test failed and no
+    value was given. ``measurand`` is the measurand's id (``spec.SHORTHAND_ID`` for a study
+    in the single-measurand form)."""
 
     material: str
     lab: str
@@ -22,3 +24,4 @@ class Unblinded:
     value: float | None
     uncertainty: float | None
     flags: tuple[str, ...]
+    measurand: str = "value"

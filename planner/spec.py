@@ -24,10 +24,16 @@ __all__ = [
     "Study", "StudyInfo", "Lab", "Contact", "Blackout", "Material", "Hazard",
     "Design", "Schedule", "Transit", "Evaluation", "SigmaPtPolicy", "PrecisionStudy",
     "Participants", "MaterialEvaluation", "PastRound", "Trustee", "Sealing", "Fonts",
-    "load", "parse", "SPEC_NAME",
+    "KnownValue", "Measurand", "load", "parse", "SPEC_NAME", "SHORTHAND_ID", "FORM_WORDS",
 ]
 
 SPEC_NAME = "study.yaml"
+SHORTHAND_ID = "value"
+"""The id of the one measurand of a spec written in the single-measurand form
+(``study.measurand`` and ``study.unit``): its results sit in the form's ``value`` column."""
+FORM_WORDS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks",
+              "measurand", "material", "lab", "flags")
+"""Column names of the result form and results.csv that a measurand id must not take."""
 _ID = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,31}$"
 _WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 
@@ -47,8 +53,9 @@ class Fonts(_Model):
 class StudyInfo(_Model):
     id: str = Field(pattern=_ID)
     title: str = Field(min_length=1)
-    measurand: str = Field(min_length=1)
-    unit: str = Field(min_length=1)
+    # The single-measurand form; a study with ``measurands:`` leaves both out.
+    measurand: str | None = Field(default=None, min_length=1)
+    unit: str | None = Field(default=None, min_length=1)
     organiser: str = ""
     paper: Literal["A4", "letter"] = "A4"
     label_sheet: str = "a4-3x8-70x37"
@@ -198,8 +205,21 @@ class SigmaPtPolicy(_Model):
         return next(k for k in _POLICIES if getattr(self, k) is not None)
 
 
+class KnownValue(_Model):
+    """An assigned value from outside the round (ISO 13528 §7.3-7.5): a certified reference
+    material, a formulation, or a reference value, with its standard uncertainty."""
+
+    value: float = Field(allow_inf_nan=False)
+    u: float = Field(gt=0, allow_inf_nan=False)
+    source: str = ""
+
+
 class MaterialEvaluation(_Model):
+    """Settings of one material that differ from its measurand's."""
+
     sigma_pt: SigmaPtPolicy | None = None
+    tolerance: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    known_value: KnownValue | None = None
 
     _shorthand = field_validator("sigma_pt", mode="before")(
         lambda cls, raw: _policy_shorthand(raw))
@@ -208,7 +228,9 @@ class MaterialEvaluation(_Model):
 class Evaluation(_Model):
     tolerance: float | None = Field(default=None, gt=0, allow_inf_nan=False)
     sigma_pt: SigmaPtPolicy = SigmaPtPolicy(participants=Participants())
-    assigned_value: Literal["consensus", "reference"] = "consensus"
+    # "known": every material gives a known_value under by_material. A material with a
+    # known_value uses it whatever this says.
+    assigned_value: Literal["consensus", "reference", "known"] = "consensus"
     reference_lab: str | None = None
     pool_alpha: float = Field(default=0.25, gt=0, lt=1)
     by_material: dict[str, MaterialEvaluation] = {}
@@ -220,6 +242,40 @@ class Evaluation(_Model):
         """Return the sigma_pt policy of a material: its own, else the study's."""
         own = self.by_material.get(material)
         return own.sigma_pt if own is not None and own.sigma_pt is not None else self.sigma_pt
+
+    def tolerance_for(self, material: str) -> float | None:
+        """Return the tolerance of a material: its own, else the study's (None: no tolerance)."""
+        own = self.by_material.get(material)
+        return own.tolerance if own is not None and own.tolerance is not None else self.tolerance
+
+    def known_value_for(self, material: str) -> KnownValue | None:
+        """Return the known value of a material, or None when it has none."""
+        own = self.by_material.get(material)
+        return own.known_value if own is not None else None
+
+    def assigned_for(self, material: str) -> str:
+        """Return where a material's assigned value comes from: known, reference or consensus."""
+        return "known" if self.known_value_for(material) is not None else self.assigned_value
+
+
+class Measurand(_Model):
+    """One property measured on the units: its name, unit, reporting and evaluation."""
+
+    id: str = Field(pattern=_ID)
+    name: str = Field(min_length=1)
+    unit: str = Field(min_length=1)
+    # The step results are reported in (0.01 for two decimals); None: read from the data.
+    resolution: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    method: str = ""
+    # The materials it is measured on; None: every material.
+    materials: tuple[str, ...] | None = Field(default=None, min_length=1)
+    # Whether the form asks for an expanded uncertainty: optional, required or none.
+    uncertainty: Literal["optional", "required", "none"] = "optional"
+    evaluation: Evaluation = Evaluation()
+
+    def applies_to(self, material: str) -> bool:
+        """Return whether this measurand is measured on ``material``."""
+        return self.materials is None or material in self.materials
 
 
 class Trustee(_Model):
@@ -245,6 +301,7 @@ class Study(_Model):
     """A validated study: the spec's sections as frozen models with tuples."""
 
     study: StudyInfo
+    measurands: tuple[Measurand, ...] | None = Field(default=None, min_length=1, max_length=20)
     laboratories: tuple[Lab, ...] = Field(min_length=2)
     materials: tuple[Material, ...] = Field(min_length=2)
     parcel: Parcel | None = None
@@ -270,6 +327,31 @@ class Study(_Model):
             if material.id == material_id:
                 return material
         raise KeyError(material_id)
+
+    @property
+    def all_measurands(self) -> tuple[Measurand, ...]:
+        """Return every measurand; the single-measurand form gives one, with id SHORTHAND_ID,
+        the study's measurand and unit, and the top-level evaluation section."""
+        if self.measurands is not None:
+            return self.measurands
+        return (Measurand(id=SHORTHAND_ID, name=self.study.measurand or "",
+                          unit=self.study.unit or "", evaluation=self.evaluation),)
+
+    @property
+    def shorthand(self) -> bool:
+        """Return whether the spec is in the single-measurand form (no ``measurands:``)."""
+        return self.measurands is None
+
+    def measurand(self, measurand_id: str) -> Measurand:
+        """Return the measurand with this id (KeyError if none)."""
+        for item in self.all_measurands:
+            if item.id == measurand_id:
+                return item
+        raise KeyError(measurand_id)
+
+    def measurands_of(self, material: str) -> tuple[Measurand, ...]:
+        """Return the measurands measured on ``material``, in spec order."""
+        return tuple(m for m in self.all_measurands if m.applies_to(material))
 
     @property
     def hosts(self) -> tuple[Lab, ...]:
@@ -521,30 +603,55 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
             if b.end < b.start:
                 out.append((("laboratories", i, "blackouts", j, "to"),
                             f"ends on {b.end} before it starts on {b.start}"))
-    ev = study.evaluation
-    if ev.reference_lab is not None and ev.reference_lab not in lab_ids:
-        out.append((("evaluation", "reference_lab"),
-                    f"{ev.reference_lab!r} is not a laboratory of this study{known(ev.reference_lab)}"))
-    if ev.assigned_value == "reference" and ev.reference_lab is None:
-        out.append((("evaluation", "reference_lab"),
-                    "is required when assigned_value is 'reference'; name the reference laboratory"))
     material_ids = [m.id for m in study.materials]
-    for mat in ev.by_material:
-        if mat not in material_ids:
-            guess = difflib.get_close_matches(mat, material_ids, n=1)
-            hint = (f"; did you mean {guess[0]!r}?" if guess
-                    else f"; known materials: {', '.join(material_ids)}")
-            out.append((("evaluation", "by_material", mat),
-                        f"{mat!r} is not a material of this study{hint}"))
-    policies = [(("evaluation", "sigma_pt"), ev.sigma_pt)] + [
-        (("evaluation", "by_material", mat, "sigma_pt"), own.sigma_pt)
-        for mat, own in ev.by_material.items() if own.sigma_pt is not None]
-    for loc, pol in policies:
-        if pol.precision is not None and pol.precision.sigma_R < pol.precision.sigma_r:
-            out.append((loc + ("precision", "sigma_R"),
-                        f"{pol.precision.sigma_R!r} is smaller than sigma_r "
-                        f"{pol.precision.sigma_r!r}; reproducibility includes repeatability, "
-                        "so sigma_R >= sigma_r"))
+
+    def material_hint(mat: str) -> str:
+        guess = difflib.get_close_matches(mat, material_ids, n=1)
+        return (f"; did you mean {guess[0]!r}?" if guess
+                else f"; known materials: {', '.join(material_ids)}")
+
+    info = study.study
+    if study.measurands is None:
+        for key in ("measurand", "unit"):
+            if getattr(info, key) is None:
+                out.append((("study", key), "is required but missing; give it, or list the "
+                            "properties under 'measurands:'"))
+        out += _evaluation_checks(study, study.evaluation, ("evaluation",), material_ids,
+                                  material_hint, known)
+    else:
+        for key in ("measurand", "unit"):
+            if getattr(info, key) is not None:
+                out.append((("study", key), "is given with 'measurands:'; give each "
+                            "measurand's name and unit under 'measurands:' and leave this out"))
+        if "evaluation" in study.model_fields_set:
+            out.append((("evaluation",), "is given with 'measurands:'; give each measurand "
+                        "its own 'evaluation:' under 'measurands:' and leave this out"))
+        seen_m: dict[str, int] = {}
+        measured: set[str] = set()
+        for i, item in enumerate(study.measurands):
+            key = item.id.lower()
+            if key in seen_m:
+                out.append((("measurands", i, "id"), f"{item.id!r} is used twice (first at "
+                            f"measurands[{seen_m[key]}]); ids must be unique"))
+            seen_m.setdefault(key, i)
+            if key in FORM_WORDS:
+                out.append((("measurands", i, "id"), f"{item.id!r} is a column name of the "
+                            "result form; give the measurand another id (e.g. 'mfr', 'density')"))
+            mats = item.materials if item.materials is not None else tuple(material_ids)
+            for j, mat in enumerate(item.materials or ()):
+                if mat not in material_ids:
+                    out.append((("measurands", i, "materials", j),
+                                f"{mat!r} is not a material of this study{material_hint(mat)}"))
+                elif item.materials is not None and item.materials.index(mat) != j:
+                    out.append((("measurands", i, "materials", j), f"{mat!r} is listed twice"))
+            measured.update(mats)
+            out += _evaluation_checks(study, item.evaluation, ("measurands", i, "evaluation"),
+                                      [m for m in material_ids if m in mats], material_hint,
+                                      known, measurand=item.id)
+        for i, mat in enumerate(material_ids):
+            if mat not in measured:
+                out.append((("materials", i, "id"), f"{mat!r} is measured by no measurand; add "
+                            "it to a measurand's 'materials' or remove the material"))
     if study.sealing is not None:
         out += _sealing_checks(study)
     seen_rounds: dict[str, int] = {}
@@ -594,6 +701,45 @@ def _cross_checks(study: Study) -> list[tuple[tuple[Any, ...], str]]:
     if d.mode == "split" and d.homogeneity_units == 1:
         out.append((("design", "homogeneity_units"),
                     "1 unit cannot show between-unit variation; use 0 or at least 2 (10 is common practice)"))
+    return out
+
+
+def _evaluation_checks(study: Study, ev: Evaluation, at: tuple[Any, ...],
+                       material_ids: list[str], material_hint: Any, known: Any,
+                       measurand: str | None = None) -> list[tuple[tuple[Any, ...], str]]:
+    """Return the problems of one evaluation section (the study's, or a measurand's)."""
+    out: list[tuple[tuple[Any, ...], str]] = []
+    lab_ids = {lab.id for lab in study.laboratories}
+    if ev.reference_lab is not None and ev.reference_lab not in lab_ids:
+        out.append((at + ("reference_lab",),
+                    f"{ev.reference_lab!r} is not a laboratory of this study{known(ev.reference_lab)}"))
+    if ev.assigned_value == "reference" and ev.reference_lab is None:
+        out.append((at + ("reference_lab",),
+                    "is required when assigned_value is 'reference'; name the reference laboratory"))
+    all_ids = [m.id for m in study.materials]
+    for mat in ev.by_material:
+        if mat not in all_ids:
+            out.append((at + ("by_material", mat),
+                        f"{mat!r} is not a material of this study{material_hint(mat)}"))
+        elif mat not in material_ids:
+            out.append((at + ("by_material", mat),
+                        f"{mat!r} is not measured for {measurand!r}; add it to the measurand's "
+                        "'materials' or remove these settings"))
+    if ev.assigned_value == "known":
+        for mat in material_ids:
+            if ev.known_value_for(mat) is None:
+                out.append((at + ("assigned_value",),
+                            f"is 'known' but {mat!r} has no known_value; give "
+                            f"by_material.{mat}.known_value {{value, u}} or use 'consensus'"))
+    policies = [(at + ("sigma_pt",), ev.sigma_pt)] + [
+        (at + ("by_material", mat, "sigma_pt"), own.sigma_pt)
+        for mat, own in ev.by_material.items() if own.sigma_pt is not None]
+    for loc, pol in policies:
+        if pol.precision is not None and pol.precision.sigma_R < pol.precision.sigma_r:
+            out.append((loc + ("precision", "sigma_R"),
+                        f"{pol.precision.sigma_R!r} is smaller than sigma_r "
+                        f"{pol.precision.sigma_r!r}; reproducibility includes repeatability, "
+                        "so sigma_R >= sigma_r"))
     return out
 
 
