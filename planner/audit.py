@@ -62,14 +62,17 @@ def missing_labs(study: Study, ledger: Ledger, round_id: str, *,
     A slot is complete when every code it was sent (spares in place of replaced units;
     every artefact in every trial of a circulating stop) has, in the merge of its
     forms, a value or a remark saying why not: a form of one row is not "reported".
+    With several measurands, every measurand measured on the code's material needs one.
     Split mode: the laboratories in spec order; a circulating set: every stop of the
     route in order (``host@middle``, ``host@end`` for the host's later stops).
     """
     from planner import intake, returns
 
     swaps = intake.spare_swaps(ledger, round_id)
+    absent = plan.not_applicable(manifest, swaps)
     return [s for s in round_slots(study, ledger, round_id, manifest=manifest)
-            if not returns.slot_state(manifest, ledger, round_id, s, swaps=swaps).complete]
+            if not returns.slot_state(manifest, ledger, round_id, s, swaps=swaps,
+                                      absent=absent).complete]
 
 
 def round_slots(study: Study, ledger: Ledger, round_id: str, *,
@@ -93,9 +96,10 @@ def check_gate(study: Study, ledger: Ledger, round_id: str, *, manifest: Mapping
         raise LedgerError(f"round {round_id!r} is already unsealed; key.json is in its folder")
     missing = missing_labs(study, ledger, round_id, manifest=manifest)
     if missing and not force:
+        what = ("every code sent has a value or a remark" if study.shorthand else
+                "every code sent has, for each measurand measured on it, a value or a remark")
         raise LedgerError(f"results are still missing or incomplete from {', '.join(missing)}; "
-                          "the key opens when every code sent has a value or a remark "
-                          "(or use --force --reason TEXT)")
+                          f"the key opens when {what} (or use --force --reason TEXT)")
     if force and missing and not (reason and reason.strip()):
         raise LedgerError("--force needs --reason TEXT saying why the key is opened early; "
                           "the reason is recorded in the ledger")
@@ -382,9 +386,31 @@ def verify_key(key_json: bytes, manifest: Mapping[str, Any], *, fingerprint: str
                                spares_in_parcels=plan.parcel_spares(key))
     found = plan.units_from_key(key)
     differences += plan.compare_units(rebuilt, found)
+    differences += _measured_differences(manifest, found, study)
     published = plan.manifest_runs(dict(manifest))
     for slot, runs in plan.expected_runs(frame, host=host, secret=secret, units=rebuilt).items():
         if published.get(slot) != runs:
             differences.append(f"manifest.json: the run orders of {slot!r} differ from the ones "
                                "the secret gives")
     return Verdict(tuple(findings), len(found), tuple(differences))
+
+
+def _measured_differences(manifest: Mapping[str, Any], units: Sequence[plan.Unit],
+                          study: Study | None) -> list[str]:
+    """Return what differs in a manifest's measurands and the units each is not measured on
+    (the n/a cells of every form) from what the key's materials give; [] for a round in the
+    single-measurand form."""
+    listed = manifest.get("measurands")
+    if listed is None and "not_measured" not in manifest:
+        return []
+    out = []
+    if study is not None and (study.shorthand or listed != plan.measurands_of_manifest(study)):
+        out.append("manifest.json: its measurands are not those of the round as planned")
+    try:
+        materials = {str(m["id"]): m.get("materials") for m in listed or ()}
+    except (TypeError, KeyError, AttributeError):
+        return out + ["manifest.json: its list of measurands cannot be read"]
+    if manifest.get("not_measured") != plan.codes_not_measured(materials, units):
+        out.append("manifest.json: the units it marks as not measured for a measurand (n/a on "
+                   "the forms) are not those the key's materials give")
+    return out

@@ -207,9 +207,16 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
         return
     con = _console()
     con.print(f"[bold]{info['title']}[/bold]  ({info['study']})")
-    con.print(f"measurand: {info['measurand']} [{info['unit']}]   design: "
-              f"{info['design']['trials']} trials, {info['design']['run_order']} run order, "
+    design = (f"{info['design']['trials']} trials, {info['design']['run_order']} run order, "
               f"{info['design']['mode']} samples")
+    if "measurands" in info:
+        con.print(f"design: {design}")
+        con.print(_table("Measurands", ["id", "name", "unit", "uncertainty", "materials"],
+                         [[m["id"], m["name"], m["unit"], m["uncertainty"],
+                           ", ".join(m["materials"]) if m["materials"] else "all"]
+                          for m in info["measurands"]]))
+    else:
+        con.print(f"measurand: {info['measurand']} [{info['unit']}]   design: {design}")
     con.print(_table("Laboratories", ["id", "name", "country", "can host", "decimal", "hosted"],
                      [[lab["id"], lab["name"], lab["country"], "yes" if lab["can_host"] else "no",
                        lab["decimal"], lab["hosted"]] for lab in info["laboratories"]]))
@@ -270,13 +277,14 @@ def history_command(
 
     study = _load(study_dir)
     labs = [lab.id for lab in study.laboratories]
+    order = [m.id for m in study.all_measurands]
     folder = Path(study_dir)
     if (folder / LEDGER_NAME).exists() or any(folder.glob("rounds/*/manifest.json")) or any(
             folder.glob("rounds/*/report/statistics.json")):
         with Ledger.open(study_dir, create=False) as ledger:
-            record = history.collect(study_dir, ledger, labs=labs)
-    else:
-        record = history.collect(study_dir, None, labs=labs)  # nothing planned, nothing to read
+            record = history.collect(study_dir, ledger, labs=labs, measurands=order)
+    else:  # nothing planned, nothing to read
+        record = history.collect(study_dir, None, labs=labs, measurands=order)
     if pdf:
         from planner import render
         from planner.render import history as history_page
@@ -288,28 +296,44 @@ def history_command(
         _print_json(record)
         return
     con = _console()
-    rounds = [r["round"] for r in record["rounds"]]
-    rows = []
-    for lab, data in record["labs"].items():
-        cells = []
-        for name in rounds:
-            entry = data["rounds"].get(name)
-            if entry is None or entry["mean_z"] is None:
-                cells.append("*" if entry and entry["hosted"] else "")
-            else:
-                cells.append(f"{entry['mean_z']:+.2f}{' *' if entry['hosted'] else ''}")
-        rows.append([lab, *cells])
-    if rounds:
-        con.print(_table("Mean z per round (* hosted)", ["laboratory", *rounds], rows))
-    else:
-        con.print("no round of this study has been evaluated yet ('ringplan evaluate' makes one)")
-    for name in record.get("missing_statistics", ()):
-        con.print(f"round {name} was evaluated, but its report/statistics.json is missing; it "
-                  "is left out here (evaluate it again to restore the file)")
-    effect = record["host_effect"]
-    for lab, item in effect["labs"].items():
-        con.print(item["statement"])
-    con.print(effect["pooled"]["statement"])
+    single = list(record["measurands"]) == [history.SHORTHAND_ID]
+    missing = [f"round {name} was evaluated, but its report/statistics.json is missing; it is "
+               "left out here (evaluate it again to restore the file)"
+               for name in record.get("missing_statistics", ())]
+    for mid, block in record["measurands"].items():
+        rounds = block["rounds"]
+        rows = []
+        for lab, data in block["labs"].items():
+            cells = []
+            for name in rounds:
+                entry = data["rounds"].get(name)
+                if entry is None or entry["mean_z"] is None:
+                    cells.append("*" if entry and entry["hosted"] else "")
+                else:
+                    cells.append(f"{entry['mean_z']:+.2f}{' *' if entry['hosted'] else ''}")
+            rows.append([lab, *cells])
+        which = "" if single else f" of {mid}"
+        if rounds:
+            con.print(_table(f"Mean z{which} per round (* hosted)", ["laboratory", *rounds],
+                             rows))
+        elif not single:
+            continue
+        else:
+            con.print("no round of this study has been evaluated yet ('ringplan evaluate' "
+                      "makes one)")
+        if single:
+            for line in missing:
+                con.print(line)
+        effect = block["host_effect"]
+        for lab, item in effect["labs"].items():
+            con.print(("" if single else f"{mid}: ") + item["statement"])
+        con.print(("" if single else f"{mid}: ") + effect["pooled"]["statement"])
+    if not single:
+        if not record["rounds"]:
+            con.print("no round of this study has been evaluated yet ('ringplan evaluate' "
+                      "makes one)")
+        for line in missing:
+            con.print(line)
     if pdf:
         con.print(f"wrote {out}")
 
@@ -600,8 +624,15 @@ def receive(
             typer.echo("  late: tested after the test window: "
                        + ", ".join(codes.format(c) for c in r.late_rows))
         if r.merged:
-            typer.echo(f"  merged with the earlier versions: {r.in_force} results in force")
-        if r.version is not None and r.outstanding:
+            typer.echo(f"  merged with the earlier versions: {r.in_force} "
+                       f"{'results' if study.shorthand else 'units'} in force")
+        if r.version is not None and r.unfilled:
+            for measurand, gaps in _by_measurand(r.unfilled).items():
+                typer.echo(f"  outstanding: {measurand} on {len(gaps)} codes has neither a value "
+                           "nor a remark yet: " + ", ".join(codes.format(c.partition("@")[0])
+                                                            for c in gaps[:20])
+                           + (" ..." if len(gaps) > 20 else ""))
+        elif r.version is not None and r.outstanding:
             typer.echo(f"  outstanding: {len(r.outstanding)} codes have neither a value nor a "
                        "remark yet: " + ", ".join(codes.format(c.partition("@")[0])
                                                  for c in r.outstanding[:20])
@@ -609,6 +640,14 @@ def receive(
         elif r.missing:
             typer.echo(f"  missing: {len(r.missing)} codes have no row: "
                        + ", ".join(codes.format(c) for c in r.missing))
+
+
+def _by_measurand(unfilled: Any) -> dict[str, list[str]]:
+    """Return measurand -> the codes still without its value or a remark."""
+    out: dict[str, list[str]] = {}
+    for code, measurand in unfilled:
+        out.setdefault(measurand, []).append(code)
+    return out
 
 
 @app.command()
@@ -641,7 +680,18 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
           " ".join(f for f, on in (("AFTER-UNSEAL", r["after_unseal"]),
                                    (f"spares:{r['spares_issued']}", r["spares_issued"])) if on)]
          for r in info.rows]))
-    con.print("empty: rows without a value (remark given); missing: codes with no row yet")
+    if any("measurands" in r for r in info.rows):
+        con.print("values and empty count results, one per measurand measured on a unit; empty: "
+                  "no value (remark given); missing: codes without a value or remark for some "
+                  "measurand")
+        for r in info.rows:
+            gaps = [f"{m} on {n['missing']}" for m, n in r.get("measurands", {}).items()
+                    if n["missing"] and r["received"]]
+            if gaps:
+                con.print(f"{r['lab']}: still without a value or remark: " + ", ".join(gaps)
+                          + " codes", markup=False)
+    else:
+        con.print("empty: rows without a value (remark given); missing: codes with no row yet")
     for line in standing.describe_key(info.key):
         con.print(line, markup=False)
     if info.unsealed:
@@ -714,9 +764,12 @@ def evaluate(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) 
         _print_json(result)
         return
     typer.echo(stats.summary_text(result), nl=False)
-    drift = result.get("drift") or {}
-    for material, check in (drift.get("materials") or {}).items():
-        typer.echo(f"drift of artefact {material} between the host's stops: {check['verdict']}")
+    blocks = result["measurands"]
+    for mid, block in blocks.items():
+        which = "" if list(blocks) == [stats.SHORTHAND_ID] else f" ({mid})"
+        for material, check in ((block.get("drift") or {}).get("materials") or {}).items():
+            typer.echo(f"drift of artefact {material}{which} between the host's stops: "
+                       f"{check['verdict']}")
     typer.echo(f"\nwrote {folder}: {evaluation.REPORT_NAME}, {evaluation.STATISTICS_NAME}, "
                f"{evaluation.RESULTS_NAME} and {len(study.laboratories)} letters")
 
@@ -816,7 +869,8 @@ def chain(
 @_command
 def analyze(
     file: Annotated[Path, typer.Argument(help="A CSV with the columns material, lab, trial, "
-                                         "value (optional: uncertainty, k = 2).")],
+                                         "value (optional: uncertainty, k = 2; measurand, "
+                                         "for several measurands).")],
     tolerance: Annotated[float | None, typer.Option(
         help="Tolerance width, for gauge R&R as % of tolerance.")] = None,
     sigma_pt: Annotated[float | None, typer.Option(
@@ -827,12 +881,18 @@ def analyze(
     reference_lab: Annotated[str | None, typer.Option(
         "--reference-lab", help="The laboratory whose mean is the assigned value (default: "
         "the consensus of all, with bands from 5 laboratories on).")] = None,
+    measurand: Annotated[str | None, typer.Option(
+        help="Analyze only this measurand of a file with a measurand column.")] = None,
     as_json: JsonOpt = False,
 ) -> None:
-    """Run the round statistics on any long-format CSV, without a study."""
+    """Run the round statistics on any long-format CSV, without a study.
+
+    With a measurand column, each measurand is analyzed on its own, one section each.
+    """
     import math
 
     from planner import stats
+    from planner.errors import DataError, Where
     from planner.stats import iso13528
 
     for name, v in (("--tolerance", tolerance), ("--sigma-pt", sigma_pt),
@@ -848,9 +908,30 @@ def analyze(
     rows = stats.read_long_csv(file)
     if reference_lab is not None:
         stats.check_reference(rows, reference_lab)
-    result = stats.evaluate_table(
-        rows, tolerance=tolerance, sigma_pt=policy, reference_lab=reference_lab,
-        assigned="reference" if reference_lab is not None else "consensus")
+    options: dict[str, Any] = {
+        "tolerance": tolerance, "sigma_pt": policy, "reference_lab": reference_lab,
+        "assigned": "reference" if reference_lab is not None else "consensus"}
+    if rows[0].measurand is None:
+        if measurand is not None:
+            raise DataError(f"--measurand {measurand!r} needs a measurand column; the file "
+                            "has none", Where(str(file)))
+        result = stats.evaluate_table(rows, **options)
+    else:
+        groups = stats.by_measurand(rows)
+        if measurand is not None:
+            if measurand not in groups:
+                raise DataError(f"no result of measurand {measurand!r}; the file has "
+                                f"{', '.join(groups)}", Where(str(file), field="measurand"))
+            groups = {measurand: groups[measurand]}
+        for name, value in (("--sigma-pt", sigma_pt), ("--tolerance", tolerance)):
+            if value is not None and len(groups) > 1:
+                raise DataError(f"{name} is one value in one unit, but the file has "
+                                f"{len(groups)} measurands ({', '.join(groups)}); give "
+                                "--measurand to analyze one of them"
+                                + (", or use --sigma-pt-percent" if name == "--sigma-pt"
+                                   else ""), Where(str(file)))
+        result = {"measurands": {mid: stats.evaluate_table(group, **options)
+                                 for mid, group in groups.items()}}
     if as_json:
         _print_json(result)
     else:

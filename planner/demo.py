@@ -1,17 +1,19 @@
 """The example study end to end, with simulated results: plan, print, test, receive, evaluate.
 
 ``build_demo`` copies the bundled example study (the invented company Norrvik
-Polymers and five of its laboratories) into a folder and runs a whole round
+Polymers and five of its laboratories, testing melt flow rate, density and ash
+content of the same pellets) into a folder and runs a whole round
 there, as the people of the study would: the coordinator plans it, the host
 prints the documents, one laboratory reports a damaged unit and the host
 sends it a spare, every laboratory fills in its result form (in its own decimal
 convention; one returns the spreadsheet instead of the CSV), the coordinator
 receives the forms, opens the key and evaluates.
 
-The results are simulated, and invented: a true melt flow rate per material,
+The results are simulated, and invented: per measurand a true value per material,
 a small bias per laboratory, a small laboratory-by-material effect and
 repeatability noise, all from numpy's PCG64 generator with the given seed, and
-one laboratory (``BIASED``) reading clearly high, so that its scores show it.
+one laboratory (``BIASED``) reading clearly high on melt flow rate, so that its
+scores show it. A study in the single-measurand form is simulated as melt flow rate.
 The round secret is derived from the seed too, so a demo is the same every
 time it is built with the same seed. The ledger runs on a simulated clock that
 walks through the round's dates; nothing reads the real clock.
@@ -43,13 +45,28 @@ does not host the round (the host's own results are a different story)."""
 BIAS = 0.15
 """Its relative bias (+15 %)."""
 
-# Invented true values (g/10 min), spread over the range a melt flow tester covers.
-TRUE_VALUES = {"HD-BM5": 0.32, "LL-F1": 1.05, "PP-H12": 12.0, "PP-C8": 7.8, "RE-MIX": 2.6,
-               "PP-FR": 24.0}
-_LAB_SD = 0.012       # relative SD of the laboratories' biases
-_INTERACTION_SD = 0.004  # relative SD of laboratory x material effects
-_REPEAT_SD = 0.010    # relative repeatability SD
-_WITH_U = {"tor": 0.05, "crx": 0.04}  # laboratories that state an expanded uncertainty (relative)
+# Invented true values per measurand: melt flow rate (g/10 min) spread over the range a melt
+# flow tester covers, density (g/cm3) and ash content (% m/m) as such grades have them.
+TRUE_VALUES = {
+    "mfr": {"HD-BM5": 0.32, "LL-F1": 1.05, "PP-H12": 12.0, "PP-C8": 7.8, "RE-MIX": 2.6,
+            "PP-FR": 24.0},
+    "density": {"HD-BM5": 0.955, "LL-F1": 0.919, "PP-H12": 0.905, "PP-C8": 0.901,
+                "RE-MIX": 0.938, "PP-FR": 1.043},
+    "ash": {"RE-MIX": 1.85, "PP-FR": 21.4},
+}
+# Relative SDs per measurand: the laboratories' biases, laboratory x material effects and
+# repeatability; ``digits`` significant digits are reported.
+_MODEL = {
+    "mfr": {"lab": 0.012, "inter": 0.004, "repeat": 0.010, "digits": 4},
+    "density": {"lab": 0.0006, "inter": 0.0002, "repeat": 0.0003, "digits": 4},
+    "ash": {"lab": 0.025, "inter": 0.008, "repeat": 0.015, "digits": 3},
+}
+_SHORTHAND_AS = "mfr"  # a single-measurand study is simulated as melt flow rate
+_BIASED_MEASURAND = "mfr"
+# Laboratories that state an expanded uncertainty (relative) where it is optional; where the
+# study requires one, every laboratory gives one (``_REQUIRED_U``).
+_WITH_U = {"tor": 0.05, "crx": 0.04}
+_REQUIRED_U = 0.004
 _XLSX_LAB = "crx"     # returns the spreadsheet form instead of the CSV
 _DAMAGED_LAB = "hel"  # reports a damaged unit and tests a spare in its place
 
@@ -59,7 +76,7 @@ def example_spec() -> Path:
     from planner.resources import example_path
 
     try:
-        path = example_path("norrvik-mfr", "study.yaml")
+        path = example_path("norrvik-pellets", "study.yaml")
     except FileNotFoundError:
         path = None
     if path is not None and path.is_file():
@@ -88,8 +105,9 @@ def _secret(seed: int) -> bytes:
 
 
 def _simulate(study: Any, units: Any, *, seed: int, biased: str,
-              sent: Mapping[str, str]) -> dict[str, tuple[float, float | None]]:
-    """Return code -> (value, expanded uncertainty or None) for every test and spare unit.
+              sent: Mapping[str, str]) -> dict[str, dict[str, tuple[float, float | None]]]:
+    """Return code -> measurand id -> (value, expanded uncertainty or None) for every test and
+    spare unit, for each measurand that applies to the unit's material.
 
     A spare is measured by the laboratory it was ``sent`` to (spare code -> laboratory);
     one still with the host, by the host.
@@ -99,21 +117,35 @@ def _simulate(study: Any, units: Any, *, seed: int, biased: str,
     rng = np.random.Generator(np.random.PCG64(seed))
     labs = [lab.id for lab in study.laboratories]
     mats = [m.id for m in study.materials]
-    bias = {lab: float(rng.normal(0.0, _LAB_SD)) for lab in labs}
-    bias[biased] = BIAS + float(rng.normal(0.0, _LAB_SD / 3))
-    inter = {(lab, m): float(rng.normal(0.0, _INTERACTION_SD)) for lab in labs for m in mats}
-    out: dict[str, tuple[float, float | None]] = {}
-    for u in sorted(units, key=lambda u: u.code):
-        if u.kind not in ("test", "spare"):
-            continue
-        true = TRUE_VALUES.get(u.material, 5.0)
-        lab = sent.get(u.code, u.lab)
-        x = true * (1 + bias[lab] + inter[(lab, u.material)]
-                    + float(rng.normal(0.0, _REPEAT_SD)))
-        value = float(f"{x:.4g}")
-        rel_u = _WITH_U.get(lab)
-        out[u.code] = (value, float(f"{value * rel_u:.2g}") if rel_u else None)
+    out: dict[str, dict[str, tuple[float, float | None]]] = {}
+    for measurand in study.all_measurands:
+        name = _SHORTHAND_AS if measurand.id == "value" else measurand.id
+        model = _MODEL.get(name, _MODEL[_SHORTHAND_AS])
+        truth = TRUE_VALUES.get(name, {})
+        bias = {lab: float(rng.normal(0.0, model["lab"])) for lab in labs}
+        if name == _BIASED_MEASURAND:
+            bias[biased] = BIAS + float(rng.normal(0.0, model["lab"] / 3))
+        inter = {(lab, m): float(rng.normal(0.0, model["inter"])) for lab in labs for m in mats}
+        for u in sorted(units, key=lambda u: u.code):
+            if u.kind not in ("test", "spare") or not measurand.applies_to(u.material):
+                continue
+            true = truth.get(u.material, 5.0)
+            lab = sent.get(u.code, u.lab)
+            x = true * (1 + bias[lab] + inter[(lab, u.material)]
+                        + float(rng.normal(0.0, model["repeat"])))
+            value = float(f"{x:.{model['digits']}g}")
+            rel_u = (None if measurand.uncertainty == "none" else _REQUIRED_U
+                     if measurand.uncertainty == "required" else _WITH_U.get(lab))
+            out.setdefault(u.code, {})[measurand.id] = (
+                value, float(f"{value * rel_u:.2g}") if rel_u else None)
     return out
+
+
+def _columns(measurand_id: str) -> tuple[str, str]:
+    """Return the form's value and uncertainty column names of a measurand."""
+    if measurand_id == "value":
+        return "value", "uncertainty"
+    return measurand_id, f"{measurand_id} uncertainty"
 
 
 def _number(v: float, decimal: str) -> str:
@@ -121,7 +153,8 @@ def _number(v: float, decimal: str) -> str:
     return text.replace(".", ",") if decimal == "comma" else text
 
 
-def _fill_csv(text: str, values: Mapping[str, tuple[float, float | None]], *, decimal: str,
+def _fill_csv(text: str, values: Mapping[str, Mapping[str, tuple[float, float | None]]], *,
+              decimal: str,
               swap: Mapping[str, str], day_of: Callable[[int], date], analyst: str) -> str:
     """Return the blank CSV form filled in as the laboratory would (its separator and decimal)."""
     from planner import codes
@@ -144,9 +177,11 @@ def _fill_csv(text: str, values: Mapping[str, tuple[float, float | None]], *, de
             remarks = f"unit {codes.format(code)} arrived damaged; tested spare instead"
             code = swap[code]
             row[col["code"]] = codes.format(code)
-        value, unc = values[code]
-        row[col["value"]] = _number(value, decimal)
-        row[col["uncertainty"]] = _number(unc, decimal) if unc is not None else ""
+        for measurand, (value, unc) in values[code].items():
+            value_col, unc_col = _columns(measurand)
+            row[col[value_col]] = _number(value, decimal)
+            if unc_col in col:
+                row[col[unc_col]] = _number(unc, decimal) if unc is not None else ""
         row[col["date"]] = day_of(int(row[col["trial"]])).isoformat()
         row[col["analyst"]] = analyst
         row[col["remarks"]] = remarks
@@ -154,7 +189,8 @@ def _fill_csv(text: str, values: Mapping[str, tuple[float, float | None]], *, de
     return "\n".join(out) + "\n" + buf.getvalue()
 
 
-def _fill_xlsx(source: Path, target: Path, values: Mapping[str, tuple[float, float | None]], *,
+def _fill_xlsx(source: Path, target: Path,
+               values: Mapping[str, Mapping[str, tuple[float, float | None]]], *,
                day_of: Callable[[int], date], analyst: str) -> None:
     """Fill the spreadsheet form's value, uncertainty, date and analyst cells; save as target."""
     from openpyxl import load_workbook
@@ -165,19 +201,20 @@ def _fill_xlsx(source: Path, target: Path, values: Mapping[str, tuple[float, flo
     sheet = book.worksheets[0]
     col: dict[str, int] = {}
     for row in sheet.iter_rows():
-        cells = {str(c.value).strip().lower(): c.column for c in row if c.value is not None}
+        cells = {str(c.value).strip(): c.column for c in row if c.value is not None}
         if not col:
-            if "code" in cells and "value" in cells:
+            if "code" in cells and "trial" in cells:
                 col = cells
             continue
         code_cell = sheet.cell(row=row[0].row, column=col["code"]).value
         if not code_cell:
             continue
-        value, unc = values[codes.compact(str(code_cell))]
         r = row[0].row
-        sheet.cell(row=r, column=col["value"]).value = value
-        if unc is not None:
-            sheet.cell(row=r, column=col["uncertainty"]).value = unc
+        for measurand, (value, unc) in values[codes.compact(str(code_cell))].items():
+            value_col, unc_col = _columns(measurand)
+            sheet.cell(row=r, column=col[value_col]).value = value
+            if unc is not None and unc_col in col:
+                sheet.cell(row=r, column=col[unc_col]).value = unc
         trial = int(sheet.cell(row=r, column=col["trial"]).value)
         sheet.cell(row=r, column=col["date"]).value = day_of(trial)
         sheet.cell(row=r, column=col["analyst"]).value = analyst

@@ -1,18 +1,24 @@
 """Evaluate a round: unblind the accepted results with the key, compute, write report/.
 
 ``unblind`` joins each accepted result to its unit in the decoding key, so that
-a code becomes (material, laboratory, trial). ``evaluate_round`` does that for
+a code becomes (material, laboratory, trial), and a unit tested for several
+measurands gives one result per measurand. ``evaluate_round`` does that for
 a round whose key has been unsealed, runs the statistics of ``planner.stats``
-twice (once with every laboratory, once with the host left out of the
-consensus, because the host prepared the material and may know more about
-it), and writes into ``rounds/<round>/report/``:
+for each measurand on the materials it applies to, with that measurand's
+evaluation settings, twice (once with every laboratory, once with the host
+left out of the consensus, because the host prepared the material and may
+know more about it), and writes into ``rounds/<round>/report/``:
 
 - ``results.csv``      the unblinded results, one line per result (long format:
-                       material, lab, trial, code, value, uncertainty, flags);
-                       ``ringplan analyze`` reads it as it is
-- ``statistics.json``  everything computed, the same structure ``ringplan
-                       analyze --json`` prints plus the round's identity and
-                       ``opening``: how the key was opened, as the ledger shows it
+                       material, measurand, lab, trial, code, value,
+                       uncertainty, flags); ``ringplan analyze`` reads it as it is
+- ``statistics.json``  everything computed (format ``ringplan-statistics/3``):
+                       the round's identity and ``opening`` (how the key was
+                       opened, as the ledger shows it) at the top, and under
+                       ``measurands.<id>`` each measurand's name, unit and
+                       settings with the structure ``ringplan analyze --json``
+                       prints; a study in the single-measurand form has the
+                       one measurand ``value``
 - ``report.pdf``       for the coordinator, with the laboratories' ids
 - ``letter-<lab>.pdf`` one per laboratory: its own results and scores, the
                        others only under participant codes drawn anew each round
@@ -20,7 +26,7 @@ it), and writes into ``rounds/<round>/report/``:
 A circulating set (``design.mode: circulate``) is evaluated from each
 laboratory's own stop, the host's first; the host's later stops (middle, end)
 feed ``drift_check``, the stability check of the artefacts, which goes into
-statistics.json as ``drift`` and into the report as its own section.
+statistics.json as each measurand's ``drift`` and into the report as its own section.
 
 Flags on a result: ``late`` (received after the results were due),
 ``after-unseal`` (received after the key was opened), ``in-house`` (the host's
@@ -45,7 +51,7 @@ from planner.results import Unblinded
 
 if TYPE_CHECKING:
     from planner.ledger import Ledger
-    from planner.spec import SigmaPtPolicy, Study
+    from planner.spec import Measurand, SigmaPtPolicy, Study
     from planner.stats.iso13528 import SigmaPt
 
 __all__ = [
@@ -60,7 +66,8 @@ RESULTS_NAME = "results.csv"
 STATISTICS_NAME = "statistics.json"
 REPORT_NAME = "report.pdf"
 FLAGS = ("late", "after-unseal", "in-house", "spare-used")
-_STATS_FORMAT = "ringplan-statistics/2"
+_STATS_FORMAT = "ringplan-statistics/3"
+_SHORTHAND = "value"  # spec.SHORTHAND_ID, without importing spec (pydantic) for it
 _PARALLEL_FROM = 24  # letters; below this a process pool costs more than it saves
 
 DRIFT_FACTOR = 0.3
@@ -108,13 +115,16 @@ def unblind(key: Mapping[str, Any], results: Iterable[Any], *,
 
     Each result (a mapping or an object) gives ``lab``, ``code``, ``value`` and
     optionally ``uncertainty``, ``trial`` (needed for a spare or a circulating
-    artefact) and ``flags`` ("late", "after-unseal", ...). ``issued`` maps each unit
+    artefact) and ``flags`` ("late", "after-unseal", ...). A result with
+    ``measurements`` ({measurand id: (value, uncertainty)}) gives one row per entry,
+    its ``measurand`` the id; without it one row of the measurand "value". ``issued`` maps each unit
     the host sent to replace a damaged one (a spare, or a retained unit once the
     spares of its material were gone; ``intake.issued_spares``) to the laboratory it
     went to; such a result is flagged "spare-used". Raises DataError for a code
     that is not in the key, belongs to another laboratory or to a unit nobody tests,
-    a spare without a trial, or a unit (or material and trial) reported twice. Rows
-    come sorted by material, laboratory and trial.
+    a spare without a trial, or a unit (or material and trial) reported twice, or a
+    measurement that is not a (value, uncertainty) pair. Rows come sorted by material,
+    laboratory and trial (measurands of a unit in the order given).
     """
     units = {u.code: u for u in plan.units_from_key(dict(key))}
     sent = issued or {}
@@ -166,8 +176,21 @@ def unblind(key: Mapping[str, Any], results: Iterable[Any], *,
             flags.append("in-house")
         ordered = tuple(f for f in FLAGS if f in flags) + tuple(
             sorted({f for f in flags if f not in FLAGS}))
-        rows.append(Unblinded(unit.material, lab, trial, code, _number(_field(record, "value")),
-                              _number(_field(record, "uncertainty")), ordered))
+        measurements = _field(record, "measurements")
+        if measurements is None:
+            rows.append(Unblinded(unit.material, lab, trial, code,
+                                  _number(_field(record, "value")),
+                                  _number(_field(record, "uncertainty")), ordered))
+            continue
+        for measurand, pair in measurements.items():
+            # tuple or list (checked by type first: the generic check costs on 100 000 rows)
+            if not ((type(pair) is tuple or type(pair) is list or (
+                    isinstance(pair, Sequence) and not isinstance(pair, (str, bytes))))
+                    and len(pair) == 2):
+                raise DataError(f"the result of unit {shown} from {lab!r} for measurand "
+                                f"{measurand!r} is {pair!r}, not a (value, uncertainty) pair")
+            rows.append(Unblinded(unit.material, lab, trial, code, _number(pair[0]),
+                                  _number(pair[1]), ordered, str(measurand)))
     rows.sort(key=lambda r: (r.material, r.lab, r.trial))
     return rows
 
@@ -192,36 +215,56 @@ def letter_name(lab: str) -> str:
 def results_csv(rows: Sequence[Unblinded]) -> str:
     """Return the long-format CSV of unblinded results (decimal point, ',' separated).
 
-    Results without a value are left out (they are listed as missing in
+    Each line names its measurand after the material ("value" in a study of one
+    measurand). Results without a value are left out (they are listed as missing in
     statistics.json), so that ``ringplan analyze`` reads the file as it is.
     """
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(["material", "lab", "trial", "code", "value", "uncertainty", "flags"])
+    writer.writerow(["material", "measurand", "lab", "trial", "code", "value", "uncertainty",
+                     "flags"])
+    shown: dict[str, str] = {}  # a unit of several measurands has several lines
     for r in rows:
         if r.value is None:
             continue
-        writer.writerow([r.material, r.lab, r.trial, codes.format(r.code), repr(r.value),
-                         "" if r.uncertainty is None else repr(r.uncertainty), " ".join(r.flags)])
+        code = shown.get(r.code)
+        if code is None:
+            code = shown[r.code] = codes.format(r.code)
+        writer.writerow([r.material, r.measurand, r.lab, r.trial, code,
+                         repr(r.value), "" if r.uncertainty is None else repr(r.uncertainty),
+                         " ".join(r.flags)])
     return out.getvalue()
 
 
 def _ordered(rows: Sequence[Unblinded], study: Study) -> list[Unblinded]:
     mat_rank = {m.id: i for i, m in enumerate(study.materials)}
     lab_rank = {lab.id: i for i, lab in enumerate(study.laboratories)}
+    m_rank = {m.id: i for i, m in enumerate(study.all_measurands)}
     return sorted(rows, key=lambda r: (mat_rank.get(r.material, len(mat_rank)), r.material,
-                                       lab_rank.get(r.lab, len(lab_rank)), r.lab, r.trial))
+                                       lab_rank.get(r.lab, len(lab_rank)), r.lab, r.trial,
+                                       m_rank.get(r.measurand, len(m_rank)), r.measurand))
 
 
 def _without_host(full: Mapping[str, Any], alt: Mapping[str, Any], host: str,
-                  assigned: str, reference_lab: str | None) -> dict[str, Any]:
-    """Return, per material, the consensus without the host and its difference to the full one."""
+                  assigned: Mapping[str, str], reference_lab: str | None,
+                  known: Mapping[str, Any]) -> dict[str, Any]:
+    """Return, per material, the consensus without the host and its difference to the full one.
+
+    ``alt`` holds the scores against the consensus without the host, by material. Only a
+    material whose assigned value is the consensus has one; the others say why not.
+    """
     out: dict[str, Any] = {}
     for m, sc in full["scores"].items():
-        other = alt["scores"].get(m, {})
-        if assigned == "reference":
+        other = alt.get(m, {})
+        how = assigned.get(m, "consensus")
+        if how == "reference":
             out[m] = {"skipped": f"the assigned value is the result of the reference laboratory "
                                  f"{reference_lab!r}, not a consensus"}
+        elif how == "known":
+            source = known[m].source if m in known else ""
+            out[m] = {"skipped": "the assigned value is a known value"
+                                 + (f" ({source})" if source else "")
+                                 + " from outside the round, not a consensus"}
         elif host not in sc.get("labs", {}):
             out[m] = {"skipped": f"the host {host!r} reported no result for this material"}
         elif "skipped" in sc or "skipped" in other:
@@ -241,44 +284,147 @@ def _without_host(full: Mapping[str, Any], alt: Mapping[str, Any], host: str,
     return out
 
 
-def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
-                     missing: Sequence[Mapping[str, Any]] = (),
-                     visits: Mapping[str, Sequence[Unblinded]] | None = None,
-                     opening: Mapping[str, Any] | None = None) -> dict[str, Any]:
-    """Return the statistics.json content of a round: the stats of every method and the identity.
+def _check_measurands(study: Study, rows: Sequence[Unblinded]) -> dict[str, list[Unblinded]]:
+    """Return the rows of each measurand of the study (spec order); DataError for a row of a
+    measurand the study does not have, or on a material the measurand is not measured on."""
+    items = {m.id: m for m in study.all_measurands}
+    out: dict[str, list[Unblinded]] = {m: [] for m in items}
+    for r in rows:
+        group = out.get(r.measurand)
+        if group is None:
+            raise DataError(f"unit {codes.format(r.code)} of {r.lab!r} has a result for "
+                            f"measurand {r.measurand!r}, which this study does not have "
+                            f"(its measurands: {', '.join(items)})")
+        group.append(r)
+    for mid, group in out.items():
+        only = items[mid].materials
+        if only is None:
+            continue
+        for r in group:
+            if r.material not in only:
+                raise DataError(f"unit {codes.format(r.code)} of {r.lab!r} has a result for "
+                                f"measurand {mid!r}, which is not measured on material "
+                                f"{r.material!r} (only on {', '.join(only)})")
+    return out
 
-    The host is left out of a second consensus; ``scores.<material>.without_host`` holds
-    that consensus and its difference from the full one. ``visits`` (a circulating set)
-    are the host's results of its later stops by visit; with them ``drift`` holds the
-    drift check of ``drift_check``. ``opening`` is the ledger's record of the key
-    (``status.read_key_history``); ``opening`` in the result holds of it ``at``, ``forced``,
-    ``reason``, ``missing``, ``early_decryptions``, ``first_result_at`` and
-    ``received_after``, and is None without it. Raises DataError when no result has a value.
-    """
+
+def _measurand_block(item: Measurand, study: Study, rows: Sequence[Unblinded], host: str, *,
+                     visits: Mapping[str, Sequence[Unblinded]] | None,
+                     artefacts: Mapping[str, str]) -> dict[str, Any]:
+    """Return what statistics.json holds of one measurand: name, unit, settings, every method."""
     from planner import stats
+    from planner.stats.iso13528 import Known
 
-    host = str(key["host"])
-    ev = study.evaluation
+    ev = item.evaluation
+    mats = [m.id for m in study.materials if item.applies_to(m.id)]
     table = [{"material": r.material, "lab": r.lab, "trial": str(r.trial), "value": r.value,
               "uncertainty": r.uncertainty} for r in rows if r.value is not None]
+    policies = {m: sigma_policy(ev.sigma_pt_for(m)) for m in mats}
+    assigned = {m: ev.assigned_for(m) for m in mats}
+    known = {m: Known(kv.value, kv.u, kv.source) for m in mats
+             if (kv := ev.known_value_for(m)) is not None}
+    counts: dict[str, int] = {}
+    for r in rows:
+        if r.value is not None:
+            counts[r.lab] = counts.get(r.lab, 0) + 1
+    block: dict[str, Any] = {
+        "name": item.name, "unit": item.unit, "resolution": item.resolution,
+        "method": item.method, "measured_on": mats,
+        "settings": {
+            "tolerance": ev.tolerance,
+            "tolerance_by_material": {m: t for m in mats
+                                      if (t := ev.tolerance_for(m)) != ev.tolerance},
+            "sigma_pt": {m: pol.describe() for m, pol in policies.items()},
+            "assigned_value": ev.assigned_value,
+            "assigned_by_material": {m: a for m, a in assigned.items()
+                                     if a != ev.assigned_value},
+            "known_values": {m: {"value": k.value, "u": k.u, "source": k.source}
+                             for m, k in known.items()},
+            "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha,
+            "resolution": item.resolution, "excluded_for_second_consensus": [host]},
+        "results": {"count": len(table),
+                    "per_lab": {lab.id: counts.get(lab.id, 0) for lab in study.laboratories}},
+    }
     if not table:
-        raise DataError("no accepted result of this round has a value; nothing to evaluate")
-    policies = {m.id: sigma_policy(ev.sigma_pt_for(m.id)) for m in study.materials}
-    options = {"tolerance": ev.tolerance, "sigma_pt": policies, "assigned": ev.assigned_value,
-               "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha}
-    full = stats.evaluate_table(table, **options)  # type: ignore[arg-type]
-    if ev.assigned_value == "consensus":
-        alt = stats.evaluate_table(table, **options,  # type: ignore[arg-type]
-                                   exclude_labs_for_consensus=(host,))
-    else:
-        alt = full
-    without = _without_host(full, alt, host, ev.assigned_value, ev.reference_lab)
+        block.update(materials=[], labs=[], skipped="no result of this measurand has a value")
+        return block
+    options: dict[str, Any] = {
+        "tolerance": ev.tolerance, "sigma_pt": policies, "assigned": assigned,
+        "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha, "known": known,
+        "resolution": item.resolution}
+    full = stats.evaluate_table(table, **options, also_without=(host,))
+    without = _without_host(full, full.pop("scores_without"), host, assigned,
+                            ev.reference_lab, known)
     for m, extra in without.items():
         if isinstance(full["scores"].get(m), dict):
             full["scores"][m]["without_host"] = extra
         host_entry = full["scores"].get(m, {}).get("labs", {}).get(host)
         if host_entry is not None:
             host_entry["in_house"] = True
+    own_tolerance = {m: t for m in full["materials"]
+                     if (t := ev.tolerance_for(m)) is not None and t != ev.tolerance}
+    if own_tolerance:
+        full["tolerance_by_material"] = _tolerance_by_material(full, own_tolerance)
+    block.update(full)
+    if visits is not None:
+        start = [r for r in rows if r.lab == host]
+        sigma = {m: full["scores"].get(m, {}).get("sigma_pt") for m in full["materials"]}
+        block["drift"] = drift_check({"start": start, **visits}, sigma,
+                                     materials=[m for m in mats if m in artefacts],
+                                     codes_of=artefacts, host=host)
+    return block
+
+
+def _tolerance_by_material(result: Mapping[str, Any], tolerance: Mapping[str, float]
+                           ) -> dict[str, Any]:
+    """Return, for each material with a tolerance of its own, k GRR and k s_R against it.
+
+    GRR is the gauge study's, pooled over the materials (the model assumes one spread for
+    all); s_R is the material's own (ISO 5725-2); k is the gauge study's multiplier (6).
+    """
+    ga = result.get("grr_anova") or {}
+    k = ga.get("multiplier") or 6.0  # gauge_rr.evaluate's default, when it could not run
+    out: dict[str, Any] = {}
+    for m, tol in tolerance.items():
+        grr = ga.get("grr_sd") if "skipped" not in ga else None
+        s_big = (result["precision"].get(m) or {}).get("s_R")
+        out[m] = {"tolerance": tol, "multiplier": k,
+                  "pct_grr": 100.0 * k * grr / tol if grr is not None else None,
+                  "pct_s_R": 100.0 * k * s_big / tol if s_big is not None else None}
+    return out
+
+
+def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
+                     missing: Sequence[Mapping[str, Any]] = (),
+                     visits: Mapping[str, Sequence[Unblinded]] | None = None,
+                     opening: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Return the statistics.json content of a round: the round's identity at the top and,
+    under ``measurands.<id>``, every method's statistics of each measurand.
+
+    Each measurand is evaluated on the materials it is measured on, with its own
+    evaluation settings (sigma_pt, tolerance, where the assigned value comes from). The
+    host is left out of a second consensus; ``scores.<material>.without_host`` holds that
+    consensus and its difference from the full one (materials with a consensus assigned
+    value only). ``visits`` (a circulating set) are the host's results of its later stops
+    by visit; with them each measurand's ``drift`` holds the drift check of
+    ``drift_check``. ``opening`` is the ledger's record of the key
+    (``status.read_key_history``); ``opening`` in the result holds of it ``at``,
+    ``forced``, ``reason``, ``missing``, ``early_decryptions``, ``first_result_at`` and
+    ``received_after``, and is None without it. Raises DataError when no result has a
+    value, or a result is of a measurand the study (or its material) does not have.
+    """
+    host = str(key["host"])
+    grouped = _check_measurands(study, rows)
+    if not any(r.value is not None for r in rows):
+        raise DataError("no accepted result of this round has a value; nothing to evaluate")
+    later = ({v: _check_measurands(study, rs) for v, rs in visits.items()}
+             if visits is not None else None)
+    artefacts = ({u.material: codes.format(u.code) for u in plan.units_from_key(dict(key))
+                  if u.kind == "artefact"} if visits is not None else {})
+    blocks = {item.id: _measurand_block(
+        item, study, grouped[item.id], host, artefacts=artefacts,
+        visits=({v: g[item.id] for v, g in later.items()} if later is not None else None))
+        for item in study.all_measurands}
     flagged: dict[str, dict[str, None]] = {}
     counts: dict[str, int] = {}
     for r in rows:
@@ -288,33 +434,30 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
             counts[r.lab] = counts.get(r.lab, 0) + 1
     flags = {f: list(labs) for f, labs in flagged.items()}
     per_lab = {lab.id: counts.get(lab.id, 0) for lab in study.laboratories}
+    labs: dict[str, None] = {}
+    sources: dict[str, Any] = {}
+    for block in blocks.values():
+        labs.update(dict.fromkeys(block.get("labs", ())))
+        for name, text in block.pop("sources", {}).items():
+            # The same texts in every block, except that a measurand with a known value
+            # names its clause as well.
+            if len(text) > len(sources.get(name, "")):
+                sources[name] = text
     secret = bytes.fromhex(str(key["secret"]))
-    head = {
+    return {
         "format": _STATS_FORMAT,
         "study": study.id, "title": study.study.title, "round": str(key["round"]),
-        "host": host, "measurand": study.study.measurand, "unit": study.study.unit,
-        "organiser": study.study.organiser, "fingerprint": seal.fingerprint(seal.canonical(
-            dict(key))),
+        "host": host, "organiser": study.study.organiser,
+        "fingerprint": seal.fingerprint(seal.canonical(dict(key))),
         "trials": study.design.trials,
-        "settings": {"tolerance": ev.tolerance,
-                     "sigma_pt": {m: pol.describe() for m, pol in policies.items()},
-                     "assigned_value": ev.assigned_value, "reference_lab": ev.reference_lab,
-                     "pool_alpha": ev.pool_alpha, "excluded_for_second_consensus": [host]},
-        "results": {"count": len(table), "per_lab": per_lab, "missing": list(missing),
-                    "flags": flags},
+        "results": {"count": sum(b["results"]["count"] for b in blocks.values()),
+                    "per_lab": per_lab, "missing": list(missing), "flags": flags},
         "participants": participant_codes(secret, [lab.id for lab in study.laboratories]),
         "opening": _opening(opening),
+        "labs": list(labs),
+        "sources": sources,
+        "measurands": blocks,
     }
-    out = {**head, **full}
-    if visits is not None:
-        start = [r for r in rows if r.lab == host]
-        sigma = {m: full["scores"].get(m, {}).get("sigma_pt") for m in full["materials"]}
-        artefacts = {u.material: codes.format(u.code) for u in plan.units_from_key(dict(key))
-                     if u.kind == "artefact"}
-        materials = [m.id for m in study.materials if m.id in artefacts]
-        out["drift"] = drift_check({"start": start, **visits}, sigma, materials=materials,
-                                   codes_of=artefacts, host=host)
-    return out
 
 
 def _opening(record: Mapping[str, Any] | None) -> dict[str, Any] | None:
@@ -411,46 +554,64 @@ def drift_check(by_visit: Mapping[str, Sequence[Unblinded]],
             "materials": out}
 
 
-def _missing(key: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[dict[str, Any]]:
-    """Return the test units with no value (neither their own nor a spare's), and why."""
-    have = {(r.material, r.lab, r.trial) for r in rows if r.value is not None}
-    failed = {(r.material, r.lab, r.trial) for r in rows if r.value is None}
+def _missing(study: Study, key: Mapping[str, Any],
+             rows: Sequence[Unblinded]) -> list[dict[str, Any]]:
+    """Return each test unit and measurand with no value (neither the unit's own nor a
+    spare's), and why."""
+    have = {(r.material, r.lab, r.trial, r.measurand) for r in rows if r.value is not None}
+    failed = {(r.material, r.lab, r.trial, r.measurand) for r in rows if r.value is None}
+    of = {m.id: [item.id for item in study.measurands_of(m.id)] for m in study.materials}
     out = []
     for u in plan.units_from_key(dict(key)):
-        slot = (u.material, u.lab, u.trial)
-        if u.kind == "test" and slot not in have:
-            out.append({"material": u.material, "lab": u.lab, "trial": u.trial,
-                        "position": u.position, "code": codes.format(u.code),
-                        "why": "reported without a value" if slot in failed else "not reported"})
+        if u.kind != "test":
+            continue
+        for measurand in of.get(u.material, (_SHORTHAND,)):
+            slot = (u.material, u.lab, u.trial, measurand)
+            if slot not in have:
+                out.append({"material": u.material, "measurand": measurand, "lab": u.lab,
+                            "trial": u.trial, "position": u.position,
+                            "code": codes.format(u.code),
+                            "why": "reported without a value" if slot in failed
+                            else "not reported"})
     out.sort(key=lambda d: (d["lab"], d["trial"], d["position"] or 0))
     return out
 
 
-def _missing_circulating(manifest: Mapping[str, Any], key: Mapping[str, Any],
+def _missing_circulating(study: Study, manifest: Mapping[str, Any], key: Mapping[str, Any],
                          accepted: Sequence[Any]) -> list[dict[str, Any]]:
-    """Return every (stop, trial, artefact) of a circulating set with no value, and why."""
+    """Return every (stop, trial, artefact, measurand) of a circulating set with no value,
+    and why."""
     from planner import audit
 
     material = {u.code: u.material for u in plan.units_from_key(dict(key))}
-    have: set[tuple[str, str, int]] = set()
-    failed: set[tuple[str, str, int]] = set()
+    of = {m.id: [item.id for item in study.measurands_of(m.id)] for m in study.materials}
+    have: set[tuple[str, str, int, str]] = set()
+    failed: set[tuple[str, str, int, str]] = set()
     for r in accepted:
         slot = circulate.station_key(str(_field(r, "lab")), _field(r, "visit"))
         trial = _field(r, "trial")
         if trial in (None, ""):
             continue
-        item = (slot, codes.compact(str(_field(r, "code", ""))), int(trial))
-        (have if _number(_field(r, "value")) is not None else failed).add(item)
+        code = codes.compact(str(_field(r, "code", "")))
+        measurements = _field(r, "measurements")
+        pairs = (measurements.items() if measurements is not None
+                 else [(_SHORTHAND, (_field(r, "value"), None))])
+        for measurand, pair in pairs:
+            item = (slot, code, int(trial), str(measurand))
+            (have if _number(pair[0]) is not None else failed).add(item)
     out = []
     for slot in audit.report_slots(manifest):
         for trial, run in enumerate(audit.slot_runs(manifest, slot), start=1):
             for position, code in enumerate(run, start=1):
-                if (slot, code, trial) not in have:
-                    out.append({"material": material.get(code, ""), "lab": slot,
-                                "trial": trial, "position": position,
-                                "code": codes.format(code),
-                                "why": "reported without a value"
-                                if (slot, code, trial) in failed else "not reported"})
+                mat = material.get(code, "")
+                for measurand in of.get(mat, (_SHORTHAND,)):
+                    item = (slot, code, trial, measurand)
+                    if item not in have:
+                        out.append({"material": mat, "measurand": measurand, "lab": slot,
+                                    "trial": trial, "position": position,
+                                    "code": codes.format(code),
+                                    "why": "reported without a value"
+                                    if item in failed else "not reported"})
     return out
 
 
@@ -474,7 +635,8 @@ def accepted_results(study: Study, ledger: Ledger, round_id: str, *,
     were due or a test date lies after the test window, "after-unseal" when that form
     came after the key was opened. A circulating set's results also say the ``visit``
     of the host's later stops ("middle", "end"; None for a laboratory's own stop and the
-    host's first).
+    host's first). With several measurands ``value`` and ``uncertainty`` are None and
+    ``measurements`` maps each measurand measured on the unit to (value, uncertainty).
     """
     from planner import audit, intake, returns
 
@@ -485,9 +647,11 @@ def accepted_results(study: Study, ledger: Ledger, round_id: str, *,
     slots = (audit.round_slots(study, ledger, round_id, manifest=manifest) if circulating
              else [lab.id for lab in study.laboratories])
     swaps = intake.spare_swaps(ledger, round_id)
+    absent = plan.not_applicable(manifest, swaps)
     for slot in slots:
         lab_id, visit = audit.split_slot(slot)
-        state = returns.slot_state(manifest, ledger, round_id, slot, swaps=swaps)
+        state = returns.slot_state(manifest, ledger, round_id, slot, swaps=swaps,
+                                   absent=absent)
         for sub, r in state.rows:
             flags = {_INTAKE_FLAGS.get(f, f) for f in r.flags} - {""}
             if sub.late:
@@ -497,6 +661,13 @@ def accepted_results(study: Study, ledger: Ledger, round_id: str, *,
             record = {"lab": lab_id, "code": r.code, "trial": r.trial, "value": r.value,
                       "uncertainty": r.uncertainty, "remarks": r.remarks,
                       "flags": tuple(sorted(flags))}
+            if not study.shorthand:
+                # One entry per measurand measured on the unit: (None, None) for a blank
+                # explained in remarks, or one never reported when the key was forced open.
+                got = {m: (v, u) for m, v, u in r.measurements}
+                record["measurements"] = {m.id: got.get(m.id, (None, None))
+                                          for m in study.all_measurands
+                                          if m.id not in absent.get(r.code, ())}
             if circulating:
                 record["visit"] = visit
             out.append(record)
@@ -550,10 +721,11 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
         rows = _ordered(unblind(key, own), study)
         visits = {v: _ordered(unblind(key, rs), study) for v, rs in later.items()}
         statistics = round_statistics(study, key, rows, visits=visits, opening=opening,
-                                      missing=_missing_circulating(manifest, key, accepted))
+                                      missing=_missing_circulating(study, manifest, key,
+                                                                   accepted))
     else:
         rows = _ordered(unblind(key, accepted, issued=issued), study)
-        statistics = round_statistics(study, key, rows, missing=_missing(key, rows),
+        statistics = round_statistics(study, key, rows, missing=_missing(study, key, rows),
                                       opening=opening)
     # The record this evaluation rests on: the chain head goes onto every letter, so a
     # laboratory can later show the ledger was not rewritten behind the letter.

@@ -2,12 +2,12 @@
 
 A result form is the CSV that ``plan`` wrote into ``labs/<lab>/result-form.csv``
 (identity lines ``# key: value``, then a header row with at least ``code`` and
-``value``), or the XLSX workbook of the same content. The CSV is UTF-8 (a byte
-order mark is allowed) and separated by ``;``, ``,`` or a tab, whichever splits
-the header into ``code`` and ``value``; comment lines below the table are
-skipped. The workbook is read from the form's sheet, or its first sheet, with
-identity lines in the first cells of the rows above the header. An old-style
-``.xls`` workbook is refused.
+``value``, or a column per measurand), or the XLSX workbook of the same content.
+The CSV is UTF-8 (a byte order mark is allowed) and separated by ``;``, ``,`` or
+a tab, whichever splits the header into ``code`` and the columns beside it;
+comment lines below the table are skipped. The workbook is read from the form's
+sheet, or its first sheet, with identity lines in the first cells of the rows
+above the header. An old-style ``.xls`` workbook is refused.
 
 ``read_form`` only reads: it keeps every cell as found, with its line (CSV) or
 row (XLSX), and leaves checking against the round to ``planner.intake``.
@@ -39,7 +39,10 @@ __all__ = ["IDENTITY_KEYS", "MAX_BYTES", "MAX_ROWS", "MAX_UNPACKED", "Form", "Fo
 
 IDENTITY_KEYS = ("study", "round", "laboratory", "fingerprint", "unit")
 """Identity lines a returned form must carry."""
-_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit", "submission token")
+_MORE_IDENTITY = ("decimal", "measurand", "results due", "visit", "submission token",
+                  "measurands")
+# Read from a workbook's two-cell rows too (key, value): what intake checks.
+_CHECKED_IDENTITY = IDENTITY_KEYS + ("visit", "submission token", "measurands")
 
 MAX_BYTES = 20_000_000
 """Largest form file read, in bytes (a form of 20,000 rows is about 2 MB)."""
@@ -159,8 +162,9 @@ def _read_csv(name: str, data: bytes) -> Form:
                           Where(name, len(lines) or 1))
     sep = _separator(lines[header_at])
     if sep is None:
-        raise IntakeError(f"expected the header row with the columns 'code' and 'value', "
-                          f"found {lines[header_at].strip()[:60]!r}", Where(name, header_at + 1))
+        raise IntakeError(f"expected the header row with the columns 'code' and 'value' (or "
+                          "one column per measurand), found "
+                          f"{lines[header_at].strip()[:60]!r}", Where(name, header_at + 1))
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
     identity: list[tuple[str, str, int]] = []
     rows: list[FormRow] = []
@@ -192,9 +196,11 @@ def _read_csv(name: str, data: bytes) -> Form:
 
 
 def _separator(header: str) -> str | None:
+    # 'code' and a column beside it: a form with several measurands has no 'value' column,
+    # and with another separator the header would be a single cell.
     for sep in (";", ",", "\t"):
-        cells = {c.strip().strip('"').lower() for c in header.split(sep)}
-        if {"code", "value"} <= cells:
+        cells = [c.strip().strip('"').lower() for c in header.split(sep)]
+        if "code" in cells and sum(1 for c in cells if c) >= 2:
             return sep
     return None
 
@@ -246,13 +252,15 @@ def _read_xlsx(name: str, data: bytes) -> Form:
             continue
         if not columns:
             lowered = tuple(str(c).strip().lower() if c is not None else "" for c in cells)
-            if {"code", "value"} <= set(lowered):
+            # 'trial' too: a form with several measurands has no 'value' column. A heading
+            # row in the laboratory's words stands above and has neither word.
+            if "code" in lowered and {"value", "trial"} & set(lowered):
                 columns, header_line = lowered, number
                 continue
             found = _identity_line(str(filled[0]))
             if found is None and len(filled) >= 2:
                 key = str(filled[0]).strip().rstrip(":").strip().lower()
-                if key in IDENTITY_KEYS or key in ("visit", "submission token"):
+                if key in _CHECKED_IDENTITY:
                     found = (key, str(filled[1]).strip())
             if found:
                 identity.append((*found, number))
@@ -263,7 +271,8 @@ def _read_xlsx(name: str, data: bytes) -> Form:
                             len(cells)))
     if not columns:
         raise IntakeError(f"the sheet {sheet.title!r} has no header row with the columns "
-                          "'code' and 'value'; send the result form as it was printed",
+                          "'trial', 'code' and the results; send the result form as it was "
+                          "printed",
                           Where(name))
     return Form(name, "xlsx", hashlib.sha256(data).hexdigest(), tuple(identity), header_line,
                 columns, len(columns), None, tuple(rows), data)

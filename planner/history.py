@@ -21,6 +21,12 @@ the rounds a laboratory hosted with those it did not: mean |z| and mean
 relative bias, the number of rounds behind each, and the difference. It is a
 description, not a test. With fewer than ``MIN_ROUNDS`` rounds on either side
 (our own rule: one round is no comparison) it says so instead of giving numbers.
+
+All of it is per measurand: scores of different properties are not averaged
+together. ``measurands.<id>`` holds each measurand's record (the rounds it was
+measured in, ``labs``, ``host_effect``); a study of one measurand in the
+single-measurand form (id "value", and every statistics.json written before
+format 3) also has its ``labs`` and ``host_effect`` at the top, as before.
 """
 
 from __future__ import annotations
@@ -37,10 +43,13 @@ from planner.errors import DataError, Where
 if TYPE_CHECKING:
     from planner.ledger import Ledger
 
-__all__ = ["HISTORY_FORMAT", "MIN_ROUNDS", "collect", "estimate_host_effect"]
+__all__ = ["HISTORY_FORMAT", "MIN_ROUNDS", "collect", "estimate_host_effect", "SHORTHAND_ID"]
 
 MIN_ROUNDS = 2
-HISTORY_FORMAT = "ringplan-history/1"
+HISTORY_FORMAT = "ringplan-history/2"
+SHORTHAND_ID = "value"
+"""The measurand of a study in the single-measurand form (``spec.SHORTHAND_ID``), and of
+every statistics.json written before format 3."""
 _STATISTICS = Path("report") / "statistics.json"
 _MANIFEST = "manifest.json"
 
@@ -111,25 +120,37 @@ def _round_of(folder: Path, ledger: Ledger) -> dict[str, Any]:
     manifest_path = folder / _MANIFEST
     manifest = _read_json(manifest_path) if manifest_path.is_file() else {}
     host = stats.get("host") or manifest.get("host")
+    if isinstance(stats.get("measurands"), dict):
+        blocks = {str(mid): b for mid, b in stats["measurands"].items() if isinstance(b, dict)}
+    else:
+        # Up to format 2: one measurand, its blocks at the top.
+        blocks = {SHORTHAND_ID: {"name": stats.get("measurand"), "unit": stats.get("unit"),
+                                 "scores": stats.get("scores"),
+                                 "materials": stats.get("materials")}}
     return {
         "round": str(stats.get("round") or folder.name),
         "host": str(host) if host else None,
         "date": (manifest.get("dates") or {}).get("test_start"),
-        "scores": stats.get("scores") or {},
-        "materials": list(stats.get("materials") or (stats.get("scores") or {}).keys()),
+        "measurands": {mid: {"name": b.get("name"), "unit": b.get("unit"),
+                             "scores": b.get("scores") or {},
+                             "materials": list(b.get("materials")
+                                               or (b.get("scores") or {}).keys())}
+                       for mid, b in blocks.items()},
     }
 
 
-def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = ()
-            ) -> dict[str, Any]:
-    """Return the study's record: evaluated rounds, per laboratory and round the scores, host effect.
+def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = (),
+            measurands: Sequence[str] = ()) -> dict[str, Any]:
+    """Return the study's record: evaluated rounds and, per measurand, per laboratory and
+    round the scores and the host effect.
 
     ``ledger`` is the study's ledger (None only where no round folder holds statistics:
     a statistics file without a ledger is refused). ``labs`` gives the order of laboratories (the
-    spec's); others found follow in order of appearance. Rounds come in order of their
-    test start date, then id. Raise DataError if a statistics file cannot be read, or
-    is not the one the ledger's last evaluation of its round recorded (edited since, or
-    in a folder of a round the ledger never evaluated).
+    spec's), ``measurands`` the order of measurands (the spec's); others found follow in
+    order of appearance. Rounds come in order of their test start date, then id. Raise
+    DataError if a statistics file cannot be read, or is not the one the ledger's last
+    evaluation of its round recorded (edited since, or in a folder of a round the ledger
+    never evaluated).
     """
     base = Path(study_dir) / "rounds"
     folders = sorted(p for p in base.iterdir() if (p / _STATISTICS).is_file()) if base.is_dir() else []
@@ -140,9 +161,39 @@ def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = ()
                     key=lambda r: (r["date"] is None, r["date"] or "", r["round"]))
     order = list(dict.fromkeys(labs))
     for r in rounds:
-        for sc in r["scores"].values():
-            if isinstance(sc, dict):
-                order.extend(lab for lab in sc.get("labs", {}) if lab not in order)
+        for block in r["measurands"].values():
+            for sc in block["scores"].values():
+                if isinstance(sc, dict):
+                    order.extend(lab for lab in sc.get("labs", {}) if lab not in order)
+    ids = list(dict.fromkeys([*measurands, *(mid for r in rounds for mid in r["measurands"])]))
+    if not ids:
+        ids = list(measurands) or [SHORTHAND_ID]
+    per_measurand: dict[str, Any] = {}
+    for mid in ids:
+        seen = [r for r in rounds if mid in r["measurands"]]
+        last = seen[-1]["measurands"][mid] if seen else {}
+        table = _table(order, [{**r, **r["measurands"][mid]} for r in seen])
+        per_measurand[mid] = {"name": last.get("name"), "unit": last.get("unit"),
+                              "rounds": [r["round"] for r in seen], "labs": table,
+                              "host_effect": estimate_host_effect(table)}
+    # Rounds the ledger evaluated whose statistics file is gone: said, not silently dropped.
+    shown = {r["round"] for r in rounds}
+    lost = sorted({row.round for row in ledger.rounds() if ledger.events(row.round, "evaluated")}
+                  - shown) if ledger is not None else []
+    out: dict[str, Any] = {
+        "format": HISTORY_FORMAT,
+        "rounds": [{"round": r["round"], "host": r["host"], "date": r["date"]} for r in rounds],
+        "measurands": per_measurand,
+        "missing_statistics": lost,
+    }
+    if ids == [SHORTHAND_ID]:
+        out["labs"] = per_measurand[SHORTHAND_ID]["labs"]
+        out["host_effect"] = per_measurand[SHORTHAND_ID]["host_effect"]
+    return out
+
+
+def _table(order: Sequence[str], rounds: Sequence[Mapping[str, Any]]) -> dict[str, Any]:
+    """Return per laboratory its rounds (scores by material, summaries) and hosted rounds."""
     table: dict[str, Any] = {}
     for lab in order:
         per_round: dict[str, Any] = {}
@@ -164,17 +215,7 @@ def collect(study_dir: Path, ledger: Ledger | None, *, labs: Sequence[str] = ()
                 "mean_bias_pct": _mean(e["bias_pct"] for e in materials.values()),
             }
         table[lab] = {"rounds": per_round, "hosted": [k for k, v in per_round.items() if v["hosted"]]}
-    # Rounds the ledger evaluated whose statistics file is gone: said, not silently dropped.
-    shown = {r["round"] for r in rounds}
-    lost = sorted({row.round for row in ledger.rounds() if ledger.events(row.round, "evaluated")}
-                  - shown) if ledger is not None else []
-    return {
-        "format": HISTORY_FORMAT,
-        "rounds": [{"round": r["round"], "host": r["host"], "date": r["date"]} for r in rounds],
-        "labs": table,
-        "host_effect": estimate_host_effect(table),
-        "missing_statistics": lost,
-    }
+    return table
 
 
 def _side(rows: Sequence[Mapping[str, Any]]) -> dict[str, Any]:

@@ -17,6 +17,16 @@ is the host's id and its later stops ``host@middle`` and ``host@end``, whose
 forms carry the identity line ``# visit: middle`` or ``# visit: end``. Such a
 set has no spares.
 
+A study with several measurands (``measurands:`` in study.yaml) has, in place of
+``value`` and ``uncertainty``, a column per measurand and ``<id> uncertainty``
+unless its uncertainty is "none" (``plan.form_columns``), and the identity line
+``# measurands: mfr [g/10 min]; ...`` in place of ``# unit``. Each measurand's
+column is checked as the ``value`` column is (a blank needs a remark, shared by
+the row); an uncertainty the study requires must be given with every value; the
+cells of a measurand not measured on a unit (the manifest's ``not_measured``)
+must stay ``n/a`` or empty. A form may leave out a measurand's columns: its
+results are then outstanding, as the rows of units a form leaves out are.
+
 Numbers follow the laboratory's ``decimal`` setting in the study (point or
 comma). A number with both marks, with a mark twice, or with spaces or
 apostrophes between digits is refused: thousands separators read differently
@@ -57,7 +67,6 @@ __all__ = [
     "spare_swaps",
 ]
 
-_KNOWN_COLUMNS = frozenset(plan.FORM_COLUMNS)
 _NUMBER = {
     "point": re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"),
     "comma": re.compile(r"[+-]?(?:\d+(?:,\d*)?|,\d+)(?:[eE][+-]?\d+)?"),
@@ -153,7 +162,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                  swaps: Mapping[str, str], unsealed: bool, lab: str | None, today: date | None,
                  elsewhere: Mapping[str, str],
                  token_digests: Mapping[str, str] | None = None,
-                 owners: Mapping[str, tuple[str, str]] | None = None) -> Checked:
+                 owners: Mapping[str, tuple[str, str]] | None = None,
+                 absent: Mapping[str, frozenset[str]] | None = None) -> Checked:
     """Return what checking a form against its round found: its problems, slot and rows.
 
     The arguments are those of ``check_form``, all given; ``planner.returns``
@@ -161,7 +171,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     SHA-256 of its submission token, from the ledger) makes the form's token line
     required and checked; None for a round planned before there were tokens.
     ``owners`` is ``code_owners(manifest, swaps)``, made once by a caller that checks
-    many forms of one round (it holds every code of the round).
+    many forms of one round (it holds every code of the round); ``absent`` likewise is
+    ``plan.not_applicable(manifest, swaps)``.
     """
     problems = _check_identity(study, manifest, form, lab=lab)
     if problems:
@@ -188,8 +199,12 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
             form.where(line)),), None, (), (), ())
     if token:  # after the codes: a slip in the laboratory line is told as that
         return Checked(tuple(token), None, (), (), ())
-    problems += _check_columns(form)
+    problems += _check_columns(form, study)
+    lacking = _missing_results(form, study)
+    if lacking:
+        return Checked(tuple(problems + lacking), None, (), (), ())
     decimal = study.lab(form_lab).decimal
+    absent = plan.not_applicable(manifest, swaps) if absent is None else absent
     dates = manifest["dates"]
     start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
     # this laboratory's units that a spare replaced, mapped to the spare now in force
@@ -216,7 +231,9 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                            owners=owners, lab=form_lab, host=str(manifest["host"]),
                            round_id=str(manifest["round"]),
                            elsewhere=elsewhere, first_seen=first_seen, form=form)
-        value, uncertainty, remarks = _check_values(row, decimal, where, found)
+        value, uncertainty, remarks, measured = _check_results(
+            row, study, form.columns, decimal, where, found,
+            skip=absent.get(code, frozenset()) if code is not None else None)
         tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
         if code is not None and code in expected:
             _check_slot(row, where, found, code=code, slot=expected[code])
@@ -224,7 +241,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         if found or code is None:
             continue
         flags = []
-        if value is None:
+        if _no_value(study, value, measured):
             flags.append("no-value")
         if tested is not None and tested > end:
             flags.append("late-date")
@@ -236,7 +253,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         trial, position = expected[code]
         kept.append(ResultRow(code, trial, position, value, uncertainty,
                               tested.isoformat() if tested else None,
-                              forms.cell_text(row.get("analyst")), remarks, tuple(flags)))
+                              forms.cell_text(row.get("analyst")), remarks, tuple(flags),
+                              measured))
     if not rows:
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
@@ -247,7 +265,10 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
 def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                     lab: str | None) -> list[PlannerError]:
     """Return identity problems, the most telling first; later ones would only repeat it."""
-    absent = [k for k in forms.IDENTITY_KEYS if form.ident(k) is None]
+    # A study with several measurands names them (with their units) in one line instead.
+    required = (forms.IDENTITY_KEYS if study.shorthand else
+                tuple("measurands" if k == "unit" else k for k in forms.IDENTITY_KEYS))
+    absent = [k for k in required if form.ident(k) is None]
     if absent:
         return [IntakeError(f"the form has no '# {k}: ...' line; send the result form that "
                             "'ringplan plan' wrote, with its first lines unchanged",
@@ -255,7 +276,6 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form,
                 for k in absent]
     (study_id, study_at), (round_id, round_at) = form.ident("study"), form.ident("round")  # type: ignore[misc]
     (lab_id, lab_at), (print_, print_at) = form.ident("laboratory"), form.ident("fingerprint")  # type: ignore[misc]
-    unit, unit_at = form.ident("unit")  # type: ignore[misc]
     if study_id != study.id:
         return [IntakeError(f"the form is for study {study_id!r}, not {study.id!r}",
                             form.where(study_at))]
@@ -280,11 +300,37 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form,
                                f"({manifest['fingerprint'][:16]}...); the form belongs to an "
                                "earlier plan of the round; send the current form",
                                form.where(print_at)))
-    if "".join(unit.split()) != "".join(study.study.unit.split()):
-        out.append(IntakeError(f"the form reports in {unit!r}, but the study's unit is "
-                               f"{study.study.unit!r}; report the results in "
-                               f"{study.study.unit!r}", form.where(unit_at)))
+    if study.shorthand:
+        unit, unit_at = form.ident("unit")  # type: ignore[misc]
+        want = str(study.study.unit)
+        if "".join(unit.split()) != "".join(want.split()):
+            out.append(IntakeError(f"the form reports in {unit!r}, but the study's unit is "
+                                   f"{want!r}; report the results in {want!r}",
+                                   form.where(unit_at)))
+    else:
+        out += _check_measurands_line(study, form, str(manifest["round"]))
     return out
+
+
+def _check_measurands_line(study: Study, form: forms.Form, round_id: str) -> list[PlannerError]:
+    """Return the problem of a form's ``measurands`` line: its ids and units must be the
+    round's, in spec order (``plan.measurands_line``)."""
+    text, line = form.ident("measurands")  # type: ignore[misc]
+    expected = plan.measurands_line(study)
+    if "".join(text.split()) == "".join(expected.split()):
+        return []
+    found = plan.read_measurands_line(text)
+    want = [(m.id, m.unit) for m in study.all_measurands]
+    if found is not None and [i.lower() for i, _ in found] == [i.lower() for i, _ in want]:
+        for (_, unit), (mid, own) in zip(found, want, strict=True):
+            if "".join(unit.split()) != "".join(own.split()):
+                return [IntakeError(f"the form reports {mid} in {unit!r}, but the study's unit "
+                                    f"for {mid} is {own!r}; report {mid} in {own!r}",
+                                    form.where(line))]
+        return []
+    return [IntakeError(f"the form lists the measurands {text!r}, but round {round_id!r} "
+                        f"measures {expected!r}; send the result form that 'ringplan plan' "
+                        "wrote for this round, with its first lines unchanged", form.where(line))]
 
 
 def _check_token(form: forms.Form, digests: Mapping[str, str]) -> list[PlannerError]:
@@ -351,8 +397,12 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
     expected = {(code, trial): position for trial, run in enumerate(runs, start=1)
                 for position, code in enumerate(run, start=1)}
     artefacts = frozenset(code for code, _ in expected)
-    problems: list[PlannerError] = list(_check_columns(form))
+    problems: list[PlannerError] = list(_check_columns(form, study))
+    lacking = _missing_results(form, study)
+    if lacking:
+        return Checked(tuple(problems + lacking), None, (), (), ())
     decimal = study.lab(form_lab).decimal
+    absent = plan.not_applicable(manifest)
     # Each stop tests in its own window while it holds the set.
     dates = next((s for s in manifest["route"]
                   if circulate.station_key(str(s["lab"]), s.get("visit")) == slot),
@@ -374,7 +424,9 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
         hit = _check_artefact(row, where, found, artefacts=artefacts, trials=len(runs),
                               round_id=str(manifest["round"]), elsewhere=elsewhere,
                               first_seen=first_seen, form=form)
-        value, uncertainty, remarks = _check_values(row, decimal, where, found)
+        value, uncertainty, remarks, measured = _check_results(
+            row, study, form.columns, decimal, where, found,
+            skip=absent.get(hit[0], frozenset()) if hit is not None else None)
         tested = _check_date(row.get("date"), where, found, start=start, end=end, today=today)
         if hit is not None:
             _check_slot(row, where, found, code=hit[0], slot=(hit[1], expected[hit]))
@@ -383,7 +435,7 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
             continue
         code, trial = hit
         flags = []
-        if value is None:
+        if _no_value(study, value, measured):
             flags.append("no-value")
         if tested is not None and tested > end:
             flags.append("late-date")
@@ -392,7 +444,8 @@ def _inspect_circulating(study: Study, manifest: Mapping[str, Any], form: forms.
             flags.append("after-unseal")
         kept.append(ResultRow(code, trial, expected[hit], value, uncertainty,
                               tested.isoformat() if tested else None,
-                              forms.cell_text(row.get("analyst")), remarks, tuple(flags)))
+                              forms.cell_text(row.get("analyst")), remarks, tuple(flags),
+                              measured))
     if not form.rows:
         problems.append(IntakeError("the form has no result rows below the header; fill in "
                                     "the rows of the blank form", form.where(form.header_line)))
@@ -466,6 +519,63 @@ def condense(problems: Sequence[PlannerError], *, repeat: int = 3) -> list[str]:
     return out
 
 
+def _check_results(row: forms.FormRow, study: Study, columns: Sequence[str], decimal: str,
+                   where: Where, found: list[PlannerError], *, skip: frozenset[str] | None
+                   ) -> tuple[float | None, float | None, str,
+                              tuple[tuple[str, float | None, float | None], ...]]:
+    """Return (value, expanded uncertainty, remarks, measurements) of a row, adding its
+    problems to ``found``: the ``value`` column of a study in the single-measurand form, or
+    one entry per measurand whose column the form has (value None for a blank explained in
+    remarks). ``skip`` are the measurands not measured on the row's unit (None: the row's
+    code is unknown), whose cells must stay n/a or empty."""
+    if study.shorthand:
+        return (*_check_values(row, decimal, where, found), ())
+    remarks = forms.cell_text(row.get("remarks"))
+    out: list[tuple[str, float | None, float | None]] = []
+    for m in study.all_measurands:
+        name, u_name = m.id, plan.uncertainty_column(m.id)
+        has_value, has_u = name.lower() in columns, u_name.lower() in columns
+        raw = row.get(name.lower()) if has_value else ""
+        raw_u = row.get(u_name.lower()) if has_u else ""
+        if skip is None or m.id in skip:
+            for column, cell in ((name, raw), (u_name, raw_u)):
+                text = forms.cell_text(cell)
+                if skip is not None and text and text.lower() != plan.NOT_APPLICABLE:
+                    found.append(IntakeError(
+                        f"{column} {text!r} is given for a unit that {m.id} is not measured on "
+                        f"(the form marks the cell {plan.NOT_APPLICABLE}); leave it "
+                        f"{plan.NOT_APPLICABLE}", where))
+            if skip is not None or forms.cell_text(raw).lower() == plan.NOT_APPLICABLE:
+                continue
+        value = _quantity(raw, decimal, name, where, found, result=True)
+        uncertainty = _quantity(raw_u, decimal, u_name, where, found)
+        blank = forms.cell_text(raw) == ""
+        if blank and uncertainty is not None:
+            found.append(IntakeError(f"{u_name} is given without a value of {name}; give the "
+                                     "value too, or leave both empty", where))
+        elif blank and has_value and not remarks:
+            found.append(IntakeError(f"{name} is empty; enter the result, or say in remarks "
+                                     "why there is none", where))
+        elif (value is not None and m.uncertainty == "required" and has_u
+              and forms.cell_text(raw_u) == ""):
+            found.append(IntakeError(f"{u_name} is empty, but every {name} result needs its "
+                                     "expanded uncertainty (k = 2); give it", where))
+        if uncertainty is not None and uncertainty <= 0:
+            found.append(IntakeError(f"{u_name} {raw_u!r} is not above 0; give the expanded "
+                                     "uncertainty (k = 2), or leave it empty", where))
+        if value is not None or (blank and has_value):
+            out.append((m.id, value, uncertainty))
+    return None, None, remarks, tuple(out)
+
+
+def _no_value(study: Study, value: float | None,
+              measured: Sequence[tuple[str, float | None, float | None]]) -> bool:
+    """Return whether a row reports a blank: its value, or with several measurands any."""
+    if study.shorthand:
+        return value is None
+    return any(v is None for _, v, _ in measured)
+
+
 def _check_values(row: forms.FormRow, decimal: str, where: Where,
                   found: list[PlannerError]) -> tuple[float | None, float | None, str]:
     """Return (value, expanded uncertainty, remarks) of a row, adding its problems to ``found``."""
@@ -486,7 +596,9 @@ def _check_values(row: forms.FormRow, decimal: str, where: Where,
     return value, uncertainty, remarks
 
 
-def _check_columns(form: forms.Form) -> list[PlannerError]:
+def _check_columns(form: forms.Form, study: Study) -> list[PlannerError]:
+    wanted = plan.form_columns(study)
+    known = {c.lower() for c in wanted}
     out: list[PlannerError] = []
     seen: set[str] = set()
     for name in form.columns:
@@ -495,14 +607,40 @@ def _check_columns(form: forms.Form) -> list[PlannerError]:
         if name in seen:
             out.append(IntakeError(f"column {name!r} appears twice in the header; keep one",
                                    form.where(form.header_line)))
-        elif name not in _KNOWN_COLUMNS:
-            guess = difflib.get_close_matches(name, sorted(_KNOWN_COLUMNS), n=1)
+        elif name not in known:
+            guess = difflib.get_close_matches(name, sorted(known), n=1)
             out.append(IntakeError(
                 f"unknown column {name!r}" + (f"; did you mean {guess[0]!r}?" if guess else
-                                              f"; the form's columns are {', '.join(plan.FORM_COLUMNS)}"),
+                                              f"; the form's columns are {', '.join(wanted)}"),
                 form.where(form.header_line)))
         seen.add(name)
     return out
+
+
+def _missing_results(form: forms.Form, study: Study) -> list[PlannerError]:
+    """Return the problem of a form without a column for any result, or without the column
+    of an uncertainty the study requires; its rows then go unread.
+
+    With several measurands a form may leave out some measurands' columns: their results
+    are then outstanding, as the rows of a form that leaves out some units are.
+    """
+    where = form.where(form.header_line)
+    if study.shorthand:
+        if "value" in form.columns:
+            return []
+        return [IntakeError("the form has no 'value' column; send the result form that "
+                            "'ringplan plan' wrote, with its header row unchanged", where)]
+    present = [m for m in study.all_measurands if m.id.lower() in form.columns]
+    if not present:
+        ids = ", ".join(repr(m.id) for m in study.all_measurands)
+        return [IntakeError(f"the form has no result column; the round's are {ids}; send the "
+                            "result form that 'ringplan plan' wrote, with its header row "
+                            "unchanged", where)]
+    return [IntakeError(f"the form has no {plan.uncertainty_column(m.id)!r} column, but every "
+                        f"{m.id} result needs its expanded uncertainty (k = 2); add the column "
+                        "as on the blank form", where)
+            for m in present if m.uncertainty == "required"
+            and plan.uncertainty_column(m.id).lower() not in form.columns]
 
 
 def _read_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
@@ -583,18 +721,24 @@ def _check_slot(row: forms.FormRow, where: Where, found: list[PlannerError], *, 
 
 
 def _quantity(raw: Any, decimal: str, what: str, where: Where,
-              found: list[PlannerError]) -> float | None:
-    """Return the number in a cell (None if empty); note a problem and return None if it is not one."""
+              found: list[PlannerError], *, result: bool | None = None) -> float | None:
+    """Return the number in a cell (None if empty); note a problem and return None if it is not one.
+
+    ``result``: the cell is a result, whose blank is explained in remarks (default: the
+    ``value`` column is one).
+    """
     if raw is None or (isinstance(raw, str) and not raw.strip()):
         return None
     try:
-        return _number(raw, decimal, what)
+        return _number(raw, decimal, what, result=result)
     except IntakeError as exc:
         found.append(IntakeError(exc.message, where))
         return None
 
 
-def _number(raw: Any, decimal: str, what: str) -> float:
+def _number(raw: Any, decimal: str, what: str, *, result: bool | None = None) -> float:
+    if result is None:
+        result = what == "value"
     if isinstance(raw, (bool, date)):   # datetime is a date
         raise IntakeError(f"{what} {raw!r} is not a number")
     if isinstance(raw, (int, float)):
@@ -603,7 +747,7 @@ def _number(raw: Any, decimal: str, what: str) -> float:
         text = str(raw).strip().replace("\u2212", "-")  # the minus sign of typeset text
         mark = _MARK[decimal]
         other = "point" if decimal == "comma" else "comma"
-        _refuse_marker(text, what, decimal)
+        _refuse_marker(text, what, decimal, result=result)
         if (_GROUPED.search(text) or ("." in text and "," in text)
                 or text.count(".") > 1 or text.count(",") > 1):
             raise IntakeError(
@@ -620,7 +764,7 @@ def _number(raw: Any, decimal: str, what: str) -> float:
         else:
             raise IntakeError(f"{what} {text!r} is not a number; write it like "
                               f"{_EXAMPLE[decimal]!r}" + (", or leave it empty and say why in "
-                                                          "remarks" if what == "value" else ""))
+                                                          "remarks" if result else ""))
     if not math.isfinite(value):
         raise IntakeError(f"{what} {raw!r} is not a finite number")
     if abs(value) > 1e100 or (value != 0 and abs(value) < 1e-100):
@@ -630,10 +774,9 @@ def _number(raw: Any, decimal: str, what: str) -> float:
     return value
 
 
-def _refuse_marker(text: str, what: str, decimal: str) -> None:
+def _refuse_marker(text: str, what: str, decimal: str, *, result: bool = False) -> None:
     """Raise IntakeError for a cell that holds a marker or a limit where a number belongs."""
-    empty = (f"; leave the {what} empty" + (" and write it under remarks" if what == "value"
-                                              else ""))
+    empty = (f"; leave the {what} empty" + (" and write it under remarks" if result else ""))
     if text[:1] in "<>\u2264\u2265":
         raise IntakeError(f"{what} {text!r} is a limit, not a result, and cannot be scored{empty}")
     if text[:1] in "\u2010\u2011\u2012\u2013\u2014" and any(c.isdigit() for c in text):

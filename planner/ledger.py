@@ -109,7 +109,8 @@ def _append_only(*tables: str) -> str:
         for t in tables for verb, done in (("UPDATE", "changed"), ("DELETE", "deleted")))
 
 
-_CHAINED = ("rounds", "units", "events", "submissions", "result_rows")
+_FIRST = ("rounds", "units", "events", "submissions", "result_rows")  # schema version 1
+_CHAINED = (*_FIRST, "result_values")
 
 _CHAIN = """
 CREATE TABLE chain (
@@ -122,10 +123,26 @@ CREATE TABLE chain (
 );
 """
 
+# A study with several measurands: one row per measurand reported on a unit. The row of
+# result_rows with the same submission, code and trial holds the cells they share (date,
+# analyst, remarks, flags) and no value; a blank value (NULL) was explained in its remarks.
+_VALUES = """
+CREATE TABLE result_values (
+    submission INTEGER NOT NULL REFERENCES submissions(id),
+    code TEXT NOT NULL,
+    trial INTEGER,
+    measurand TEXT NOT NULL,
+    value REAL,
+    uncertainty REAL,
+    PRIMARY KEY (submission, code, trial, measurand)
+);
+"""
+
 # Each entry brings the schema from version i to i + 1; never edit one that has shipped.
 _MIGRATIONS: tuple[str, ...] = (
-    _TABLES + _append_only(*_CHAINED),
+    _TABLES + _append_only(*_FIRST),
     _CHAIN + _append_only("chain"),
+    _VALUES + _append_only("result_values"),
 )
 SCHEMA_VERSION = len(_MIGRATIONS)
 _GENESIS = "0" * 64
@@ -161,6 +178,10 @@ class Submission:
 
 @dataclass(frozen=True, slots=True)
 class ResultRow:
+    """One row of a result form; with several measurands ``value`` and ``uncertainty`` are
+    None and ``measurements`` holds (measurand id, value, uncertainty) per measurand reported,
+    value None for a blank explained in ``remarks``."""
+
     code: str
     trial: int | None
     position: int | None
@@ -170,6 +191,7 @@ class ResultRow:
     analyst: str
     remarks: str
     flags: tuple[str, ...]
+    measurements: tuple[tuple[str, float | None, float | None], ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -434,7 +456,12 @@ class Ledger:
         """Append a chain link for the rows added since the last one (none: no link)."""
         upto = self._upto()
         covers: dict[str, list[int]] = {}
+        # While a ledger is migrated, the tables of later versions do not exist yet.
+        made = {name for (name,) in self.db.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'table'")}
         for table in _CHAINED:
+            if table not in made:
+                continue
             (hi,) = self.db.execute(f"SELECT COALESCE(MAX(rowid), 0) FROM {table}").fetchone()
             if hi > upto[table]:
                 covers[table] = [upto[table] + 1, int(hi)]
@@ -592,11 +619,18 @@ class Ledger:
             "after_unseal, reason) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (round_id, lab, last + 1, sha256, file_name, self.now(), int(late),
              int(after_unseal), reason))
+        rows = list(rows)
         self.db.executemany(
             "INSERT INTO result_rows (submission, code, trial, position, value, uncertainty, "
             "date, analyst, remarks, flags) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             ((cur.lastrowid, r.code, r.trial, r.position, r.value, r.uncertainty, r.date,
               r.analyst, r.remarks, " ".join(r.flags)) for r in rows))
+        measured = [(cur.lastrowid, r.code, r.trial, m, v, u) for r in rows
+                    for m, v, u in r.measurements]
+        if measured:  # a study in the single-measurand form writes what it always wrote
+            self.db.executemany(
+                "INSERT INTO result_values (submission, code, trial, measurand, value, "
+                "uncertainty) VALUES (?, ?, ?, ?, ?, ?)", measured)
         return int(last + 1)
 
     def submissions(self, round_id: str, lab: str | None = None) -> list[Submission]:
@@ -611,8 +645,15 @@ class Ledger:
                 for r in self.db.execute(query + " ORDER BY id", args)]
 
     def result_rows(self, submission_row: int) -> list[ResultRow]:
-        """Return the result rows of one submission, in run order."""
-        return [ResultRow(c, t, p, v, u, d, a, rem, tuple(f.split()))
+        """Return the result rows of one submission, in run order, each with its measurements
+        (in the order recorded, which is the spec's)."""
+        measured: dict[tuple[str, int | None], list[tuple[str, float | None, float | None]]] = {}
+        for c, t, m, v, u in self.db.execute(
+                "SELECT code, trial, measurand, value, uncertainty FROM result_values "
+                "WHERE submission = ? ORDER BY rowid", (submission_row,)):
+            measured.setdefault((c, t), []).append((m, v, u))
+        return [ResultRow(c, t, p, v, u, d, a, rem, tuple(f.split()),
+                          tuple(measured.get((c, t), ())))
                 for c, t, p, v, u, d, a, rem, f in self.db.execute(
                     "SELECT code, trial, position, value, uncertainty, date, analyst, remarks, "
                     "flags FROM result_rows WHERE submission = ? ORDER BY trial, position, code",

@@ -58,15 +58,22 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
             "total_amount": round(m.amount * counts.total, 6), "stability_days": m.stability_days,
             "hazard": m.hazard.word if m.hazard else None,
         })
+        if not study.shorthand:
+            materials[-1]["measurands"] = [x.id for x in study.measurands_of(m.id)]
     past = past_rounds(study, study_dir)
     proposals = rotation.propose(study, past, rounds=1)
     host = proposals[0].host
     dates, route = plan.dates_for(study, host)
+    several = {} if study.shorthand else {"measurands": [
+        {"id": x.id, "name": x.name, "unit": x.unit, "method": x.method,
+         "materials": list(x.materials) if x.materials else None,
+         "uncertainty": x.uncertainty} for x in study.all_measurands]}
     return {
         "study": study.id,
         "title": study.study.title,
         "measurand": study.study.measurand,
         "unit": study.study.unit,
+        **several,
         "laboratories": [{"id": lab.id, "name": lab.name, "country": lab.country,
                           "can_host": lab.can_host, "decimal": lab.decimal,
                           "hosted": sum(1 for _, h, _ in past if h == lab.id)}
@@ -88,7 +95,8 @@ def summarize(study: Study, study_dir: Path | None = None) -> dict[str, Any]:
 
 def warnings(study: Study, study_dir: Path | None = None) -> list[str]:
     """Return what ``check`` and ``plan`` warn of: what could tell materials apart to a
-    laboratory (``parcel.tells``), and text the fonts cannot draw (``undrawable``)."""
+    laboratory (``parcel.tells``, a measurand measured on some materials only among them),
+    and text the fonts cannot draw (``undrawable``)."""
     from planner import parcel
 
     return parcel.tells(study) + undrawable(study, study_dir)

@@ -19,7 +19,8 @@ is one text for the whole round:
 What the documents cannot hide, ``tells`` names for ``check`` and ``plan`` to warn
 of: a different amount per unit (a laboratory can weigh its units), a different
 unit of amount, storage texts that were joined without the coordinator writing
-one text for the parcel. ``notes`` says when hazard words some materials do not
+one text for the parcel, a measurand measured on some materials only (its cells
+on the forms and run sheets are marked for the other units). ``notes`` says when hazard words some materials do not
 carry are printed on every unit.
 """
 
@@ -100,6 +101,15 @@ def tells(study: Study) -> list[str]:
         out.append(f"storage conditions differ ({_groups(texts)}); every label carries all of "
                    f"them joined: {storage(study)!r}; check that this one text is right for "
                    "every unit, or write it as parcel.storage")
+    for m in study.measurands or ():
+        if m.materials is None or set(m.materials) >= {x.id for x in materials}:
+            continue
+        count = len(m.materials)
+        out.append(f"measurand {m.id!r} is measured on {', '.join(m.materials)} only: the "
+                   "result forms mark its cells n/a and the run sheets show a dash for every "
+                   "other unit, so a laboratory can tell which of its units hold "
+                   + ("that material" if count == 1 else f"one of these {count} materials")
+                   + " and which do not; measure it on every material to hide that")
     return out
 
 

@@ -13,9 +13,10 @@ import csv
 import io
 import json
 import os
+import re
 import secrets
 import shutil
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -27,8 +28,9 @@ from planner.errors import LedgerError, PlannerError, SealError, Where
 if TYPE_CHECKING:
     from planner.calendar import RoundDates
     from planner.circulate import Route
+    from planner.language import Texts
     from planner.ledger import Ledger
-    from planner.spec import Study
+    from planner.spec import Measurand, Study
 
 __all__ = [
     "Unit", "RoundPlan", "plan_round", "key_of", "manifest_of", "result_form_csv",
@@ -40,6 +42,9 @@ __all__ = [
     "compare_units",
     "FORM_COLUMNS", "FORM_IDENTITY", "MANIFEST_NAME", "KINDS", "run_orders", "build_units",
     "host_visit_forms",
+    "NOT_APPLICABLE", "form_columns", "uncertainty_column", "measurands_line",
+    "read_measurands_line", "not_measured", "codes_not_measured", "manifest_measurands",
+    "not_applicable", "measurands_of_manifest",
     "expected_runs", "manifest_runs",
 ]
 
@@ -48,8 +53,12 @@ HOST_SEALED_NAME = "key.host.sealed"  # the host's own copy, with trustees
 KINDS = ("test", "spare", "retained", "homogeneity", "artefact")
 FORM_COLUMNS = ("trial", "position", "code", "value", "uncertainty", "date", "analyst", "remarks")
 FORM_IDENTITY = ("study", "round", "visit", "laboratory", "fingerprint", "unit", "decimal",
-                 "measurand", "results due", "submission token")
-"""Keys of a result form's identity lines (``# round: 2027-1``): English in every language."""
+                 "measurand", "results due", "submission token", "measurands")
+"""Keys of a result form's identity lines (``# round: 2027-1``): English in every language.
+A study in the single-measurand form has ``unit`` and ``measurand``; one with ``measurands:``
+has ``measurands`` (``measurands_line``) in their place."""
+NOT_APPLICABLE = "n/a"
+"""What a result form holds in the cell of a measurand that is not measured on that unit."""
 _KEY_FORMAT = "ringplan-key/3"
 # Keys of rounds planned while every parcel carried spares of each material (their spare
 # units belong to the laboratories); since ringplan-key/3 the host keeps every spare.
@@ -329,7 +338,7 @@ def manifest_of(study: Study, plan: RoundPlan) -> dict[str, Any]:
 
 def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
     dates = plan.dates.to_json()
-    return {
+    head = {
         "format": "ringplan-manifest/1",
         "study": study.id,
         "title": study.study.title,
@@ -344,6 +353,116 @@ def _manifest_head(study: Study, plan: RoundPlan) -> dict[str, Any]:
         "trials": study.design.trials,
         "dates": {k: v for k, v in dates.items() if k != "labs"},
     }
+    if study.shorthand:
+        return head
+    # Several measurands: what each is and, for one measured on some materials only, the
+    # codes it is not measured on (the forms and run sheets mark them; intake reads them).
+    del head["measurand"], head["unit"]
+    return {**head, "measurands": measurands_of_manifest(study),
+            "not_measured": not_measured(study, plan.units)}
+
+
+def measurands_of_manifest(study: Study) -> list[dict[str, Any]]:
+    """Return the manifest's ``measurands`` list of a study with several measurands."""
+    return [_measurand_json(m) for m in study.all_measurands]
+
+
+def _measurand_json(m: Measurand) -> dict[str, Any]:
+    return {"id": m.id, "name": m.name, "unit": m.unit, "resolution": m.resolution,
+            "method": m.method, "materials": list(m.materials) if m.materials else None,
+            "uncertainty": m.uncertainty}
+
+
+def not_measured(study: Study, units: Iterable[Unit]) -> dict[str, list[str]]:
+    """Return measurand id -> the codes (sorted) of the units a laboratory reports on that it
+    is not measured on, for every measurand measured on some materials only.
+
+    A unit the host sends in place of a damaged one holds the same material and takes the
+    damaged unit's place here (``not_applicable``).
+    """
+    return codes_not_measured({m.id: m.materials for m in study.all_measurands}, units)
+
+
+def codes_not_measured(materials: Mapping[str, Iterable[str] | None], units: Iterable[Unit]
+                       ) -> dict[str, list[str]]:
+    """Return ``not_measured`` from measurand id -> the materials it is measured on (None:
+    every material), as a manifest's ``measurands`` list them; ``audit`` checks a manifest
+    against its key with it."""
+    reported = [u for u in units if u.kind in ("test", "artefact")]
+    out: dict[str, list[str]] = {}
+    for mid, found in materials.items():
+        if found is not None:
+            chosen = frozenset(found)
+            out[mid] = sorted(u.code for u in reported if u.material not in chosen)
+    return out
+
+
+def manifest_measurands(manifest: Mapping[str, Any]) -> tuple[str, ...] | None:
+    """Return the measurand ids a round's manifest lists, in spec order; None for a study in
+    the single-measurand form (its forms have the one ``value`` column)."""
+    found = manifest.get("measurands")
+    return None if found is None else tuple(str(m["id"]) for m in found)
+
+
+def not_applicable(manifest: Mapping[str, Any], swaps: Mapping[str, str] | None = None, *,
+                   only: Iterable[str] | None = None) -> dict[str, frozenset[str]]:
+    """Return code -> the ids of the measurands not measured on it (codes with none left out).
+
+    ``swaps`` (damaged -> spare, in issue order) carry a damaged unit's measurands over to
+    the spare that replaced it: it holds the same material. ``only`` limits the answer to
+    these codes (one laboratory's documents), which is quicker in a large round.
+    """
+    out: dict[str, set[str]] = {}
+    wanted = None if only is None else set(only) | set(swaps or ())
+    for measurand, found in (manifest.get("not_measured") or {}).items():
+        for code in (found if wanted is None else wanted.intersection(found)):
+            out.setdefault(str(code), set()).add(str(measurand))
+    for damaged, spare in (swaps or {}).items():
+        if damaged in out:
+            out.setdefault(spare, set()).update(out[damaged])
+    return {code: frozenset(ids) for code, ids in out.items()}
+
+
+def form_columns(study: Study) -> tuple[str, ...]:
+    """Return the header of a study's result form.
+
+    The single-measurand form keeps ``FORM_COLUMNS``; a study with ``measurands:`` has, in
+    place of ``value`` and ``uncertainty``, per measurand in spec order a column named by its
+    id and, unless its uncertainty is "none", ``<id> uncertainty``.
+    """
+    if study.shorthand:
+        return FORM_COLUMNS
+    results: list[str] = []
+    for m in study.all_measurands:
+        results.append(m.id)
+        if m.uncertainty != "none":
+            results.append(uncertainty_column(m.id))
+    return ("trial", "position", "code", *results, "date", "analyst", "remarks")
+
+
+def uncertainty_column(measurand_id: str) -> str:
+    """Return the form column of a measurand's expanded uncertainty: ``<id> uncertainty``."""
+    return f"{measurand_id} uncertainty"
+
+
+def measurands_line(study: Study) -> str:
+    """Return the value of a form's ``measurands`` identity line: ``mfr [g/10 min]; ...``."""
+    return "; ".join(f"{m.id} [{m.unit}]" for m in study.all_measurands)
+
+
+_MEASURAND_ITEM = re.compile(r"\s*([^\s\[\];]+)\s*\[(.*)\]\s*")
+
+
+def read_measurands_line(text: str) -> list[tuple[str, str]] | None:
+    """Return (id, unit) of each item of a ``measurands`` identity line, or None if an item
+    is not written ``id [unit]``."""
+    out = []
+    for item in text.split("; "):
+        found = _MEASURAND_ITEM.fullmatch(item)
+        if found is None:
+            return None
+        out.append((found.group(1), found.group(2).strip()))
+    return out
 
 
 def expected_runs(study: Study | Frame, *, host: str, secret: bytes,
@@ -387,32 +506,68 @@ def result_form_csv(study: Study, manifest: dict[str, Any], lab_id: str,
     Identity lines start with '#'; laboratories that write a decimal comma get
     ';' as the separator, as spreadsheets in those locales expect. ``token`` is the
     laboratory's submission token (``planner.tokens``), printed on its form only.
+    A study with ``measurands:`` has a column per measurand (``form_columns``), a note
+    line saying what each is, and ``n/a`` in the cells of a measurand not measured on
+    that unit.
     """
     lab = study.lab(lab_id)
     sep = ";" if lab.decimal == "comma" else ","
     out = io.StringIO()
-    identity = [("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
-                ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
-                ("decimal", lab.decimal), ("measurand", study.study.measurand),
-                ("results due", manifest["dates"].get("results_due", ""))]
+    if study.shorthand:
+        identity = [("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
+                    ("fingerprint", manifest["fingerprint"]), ("unit", study.study.unit),
+                    ("decimal", lab.decimal), ("measurand", study.study.measurand),
+                    ("results due", manifest["dates"].get("results_due", ""))]
+    else:
+        identity = [("study", study.id), ("round", manifest["round"]), ("laboratory", lab.id),
+                    ("fingerprint", manifest["fingerprint"]),
+                    ("measurands", measurands_line(study)), ("decimal", lab.decimal),
+                    ("results due", manifest["dates"].get("results_due", ""))]
     if token is not None:
         identity.append(("submission token", tokens.format(token)))
     if visit is not None:
         identity.insert(3, ("visit", visit))
     for key, value in identity:
         out.write(f"# {key}: {value}\n")
-    # The keys above and the column names below are read back and stay English; the one
-    # note line is in the laboratory's language (planner.language).
+    # The keys above and the column names below are read back and stay English; the note
+    # lines are in the laboratory's language (planner.language).
     t = language.texts(language.of(lab))
-    note = t("form.note", decimal=t(f"common.decimal_{lab.decimal}"))
-    out.write(f"# {note}\n")
+    decimal = t(f"common.decimal_{lab.decimal}")
+    if study.shorthand:
+        notes = [t("form.note", decimal=decimal)]
+    else:
+        notes = [t("form.note_several", decimal=decimal)] + _measurand_notes(study, t)
+    for note in notes:
+        out.write(f"# {note}\n")
     writer = csv.writer(out, delimiter=sep, lineterminator="\n")
-    writer.writerow(FORM_COLUMNS)
+    columns = form_columns(study)
+    writer.writerow(columns)
     runs = manifest["host_visits"][visit] if visit else manifest["labs"][lab_id]["trials"]
+    ids = {m.id: m.id for m in study.all_measurands}
+    ids.update({uncertainty_column(m.id): m.id for m in study.all_measurands})
+    absent = not_applicable(manifest, only=[c for run in runs for c in run])
     for trial, run in enumerate(runs, start=1):
         for position, code in enumerate(run, start=1):
-            writer.writerow([trial, position, codes.format(code), "", "", "", "", ""])
+            skip = absent.get(code, frozenset())
+            writer.writerow([trial, position, codes.format(code)]
+                            + [NOT_APPLICABLE if ids.get(name) in skip else ""
+                               for name in columns[3:]])
     return out.getvalue()
+
+
+def _measurand_notes(study: Study, t: Texts) -> list[str]:
+    """Return the note lines that say what each measurand's columns hold, in ``t``'s words."""
+    out = []
+    for m in study.all_measurands:
+        if m.method:
+            out.append(t("form.measurand_method", column=m.id, name=m.name, unit=m.unit,
+                         method=m.method))
+        else:
+            out.append(t("form.measurand", column=m.id, name=m.name, unit=m.unit))
+        if m.uncertainty != "none":
+            out.append(t(f"form.uncertainty_{m.uncertainty}", column=uncertainty_column(m.id),
+                         id=m.id, unit=m.unit))
+    return out
 
 
 def round_study(study_dir: Path, round_id: str, ledger: Ledger) -> Study:
@@ -475,6 +630,12 @@ def check_manifest(manifest: dict[str, Any], ledger: Ledger, round_id: str, *,
     if manifest.get("dates") != current.dates:
         raise LedgerError("manifest.json was edited after planning: its dates are not the ones "
                           "the ledger recorded; restore it from a backup", where)
+    recorded = planned[-1].detail.get("measured") if planned else None
+    if (recorded is not None or "not_measured" in manifest) and (
+            recorded != _measured_digest(manifest)):
+        raise LedgerError("manifest.json was edited after planning: its measurands, or the "
+                          "units each is not measured on, are not the ones the ledger "
+                          "recorded; restore it from a backup", where)
     units = ledger.units(current.row)
     issued = {code for code, *_ in units}
     listed = {code for runs in manifest_runs(manifest).values() for run in runs for code in run}
@@ -491,6 +652,12 @@ def check_manifest(manifest: dict[str, Any], ledger: Ledger, round_id: str, *,
     if not listed <= issued:
         raise LedgerError("manifest.json was edited after planning: it lists codes the ledger "
                           "never issued for this round; restore it from a backup", where)
+
+
+def _measured_digest(manifest: Mapping[str, Any]) -> str:
+    """Return the SHA-256 of a manifest's measurands and the codes each is not measured on."""
+    return seal.fingerprint(seal.canonical({"measurands": manifest.get("measurands"),
+                                            "not_measured": manifest.get("not_measured")}))
 
 
 def round_dir(study_dir: Path, round_id: str) -> Path:
@@ -581,14 +748,17 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                 units=[(u.code, u.lab, u.kind, u.trial, u.position)
                        for u in sorted(plan.units, key=lambda u: u.code)],
                 replaces=current.row if current else None)
-            ledger.record_event(plan.round_id, "planned",
-                                {"fingerprint": plan.fingerprint, "host": plan.host,
-                                 "units": len(plan.units), "replaced": current is not None,
-                                 "definition": seal.fingerprint(plan.definition),
-                                 "round": json.loads(plan.definition),
-                                 "sealing": sealing_of(study),
-                                 # only digests: a token in the ledger could be copied
-                                 "tokens": {lab: tokens.digest(t) for lab, t in token.items()}})
+            detail = {"fingerprint": plan.fingerprint, "host": plan.host,
+                      "units": len(plan.units), "replaced": current is not None,
+                      "definition": seal.fingerprint(plan.definition),
+                      "round": json.loads(plan.definition),
+                      "sealing": sealing_of(study),
+                      # only digests: a token in the ledger could be copied
+                      "tokens": {lab: tokens.digest(t) for lab, t in token.items()}}
+            if not study.shorthand:
+                # which cells of the forms are n/a: intake reads them from the manifest
+                detail["measured"] = _measured_digest(manifest)
+            ledger.record_event(plan.round_id, "planned", detail)
             if _fail_after_files:
                 raise RuntimeError("injected failure after the files were written")
     except BaseException:

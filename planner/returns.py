@@ -45,6 +45,7 @@ __all__ = [
     "write_receipts",
     "receive",
     "settle_results",
+    "count_values",
 ]
 
 RESULTS_DIR = "results"
@@ -73,6 +74,7 @@ class Receipt:
     in_force: int | None = None  # rows in force after merging with earlier versions
     outstanding: tuple[str, ...] = ()  # expected codes still without a value or remark
     merged: bool = False  # rows of more than one version are in force
+    unfilled: tuple[tuple[str, str], ...] = ()  # (code, measurand) still without either
 
     @property
     def late(self) -> bool:
@@ -125,13 +127,18 @@ class SlotState:
     ``rows`` pairs each row with the submission it came from (a later version's row
     replaces an earlier one of the same code and trial); ``outstanding`` lists the
     expected codes (``CODE`` or ``CODE@trial`` for a circulating set) that have neither
-    a value nor a remark yet.
+    a value nor a remark yet. With several measurands a row's measurements are merged
+    one by one (a later version's result of a measurand replaces the earlier one; a
+    form without a measurand's column leaves it as it was), a code is outstanding while
+    a measurand measured on it has neither, and ``unfilled`` names those pairs
+    (code as in ``outstanding``, measurand id).
     """
 
     slot: str
     versions: tuple[int, ...]
     rows: tuple[tuple[Submission, ResultRow], ...]
     outstanding: tuple[str, ...]
+    unfilled: tuple[tuple[str, str], ...] = ()
 
     @property
     def complete(self) -> bool:
@@ -145,12 +152,15 @@ class SlotState:
 
 def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot: str, *,
                swaps: Mapping[str, str] | None = None,
-               upto_version: int | None = None) -> SlotState:
+               upto_version: int | None = None,
+               absent: Mapping[str, frozenset[str]] | None = None) -> SlotState:
     """Return what is in force for one slot of a round, and what is still outstanding.
 
     A correction may carry only the rows it changes: the versions are merged in the
-    order received, each row replacing the earlier one of its code and trial.
-    ``upto_version`` gives the state as it was right after that version.
+    order received, each row replacing the earlier one of its code and trial (and, with
+    several measurands, each result the earlier one of its measurand).
+    ``upto_version`` gives the state as it was right after that version. ``absent`` is
+    ``plan.not_applicable(manifest, swaps)``, made once by a caller that looks at many slots.
     """
     from planner import audit
     from planner.intake import expected_codes
@@ -158,22 +168,59 @@ def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot:
     history = [s for s in ledger.submissions(round_id, slot)
                if upto_version is None or s.version <= upto_version]
     merged: dict[tuple[str, int | None], tuple[Submission, ResultRow]] = {}
+    measured: dict[tuple[str, int | None], dict[str, tuple[float | None, float | None]]] = {}
     for sub in history:
         for row in ledger.result_rows(sub.row):
             merged[(row.code, row.trial)] = (sub, row)
-    done = {key for key, (_, row) in merged.items()
-            if row.value is not None or row.remarks.strip()}
+            measured.setdefault((row.code, row.trial), {}).update(
+                (m, (v, u)) for m, v, u in row.measurements)
+    ids = plan.manifest_measurands(manifest)
+    if ids is None:
+        absent = {}
+    elif absent is None:
+        absent = plan.not_applicable(manifest, swaps)
+    unfilled: list[tuple[str, str]] = []
+    if ids is None:
+        done = {key for key, (_, row) in merged.items()
+                if row.value is not None or row.remarks.strip()}
+    else:
+        # Intake records a blank only with a remark: an entry is a value or a reason.
+        done = set()
+        for key, (sub, row) in merged.items():
+            have = measured[key]
+            merged[key] = (sub, replace(row, measurements=tuple(
+                (m, *have[m]) for m in ids if m in have)))
+            if all(m in have for m in ids if m not in absent.get(key[0], ())):
+                done.add(key)
     if manifest.get("mode") == "circulate":
         expected = [(code, trial) for trial, run in
                     enumerate(audit.slot_runs(manifest, slot), start=1) for code in run]
         outstanding = [f"{c}@{t}" for c, t in expected if (c, t) not in done]
+        if ids is not None:
+            unfilled = [(f"{c}@{t}", m) for c, t in expected for m in ids
+                        if m not in absent.get(c, ()) and m not in measured.get((c, t), {})]
     else:
         lab = audit.split_slot(slot)[0]
         codes_done = {code for code, _ in done}
         outstanding = [c for c in expected_codes(manifest, lab, swaps or {}) if c not in codes_done]
+        if ids is not None:
+            have_code = {code: have for (code, _), have in measured.items()}
+            unfilled = [(c, m) for c in outstanding for m in ids
+                        if m not in absent.get(c, ()) and m not in have_code.get(c, {})]
     order = sorted(merged.values(), key=lambda sr: (sr[1].trial or 0, sr[1].position or 0,
                                                     sr[1].code))
-    return SlotState(slot, tuple(s.version for s in history), tuple(order), tuple(outstanding))
+    return SlotState(slot, tuple(s.version for s in history), tuple(order), tuple(outstanding),
+                     tuple(unfilled))
+
+
+def count_values(rows: Sequence[ResultRow], *, several: bool) -> tuple[int, int]:
+    """Return (results with a value, results without) of rows: one per row, or with
+    ``several`` measurands one per measurement the rows carry."""
+    if several:
+        found = [v for r in rows for _, v, _ in r.measurements]
+        return sum(1 for v in found if v is not None), sum(1 for v in found if v is None)
+    return (sum(1 for r in rows if r.value is not None),
+            sum(1 for r in rows if r.value is None))
 
 
 def _other_rounds(ledger: Ledger, round_id: str) -> dict[str, str]:
@@ -216,6 +263,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     swaps = spare_swaps(ledger, round_id)
     elsewhere = _other_rounds(ledger, round_id)
     owners = code_owners(manifest, swaps)  # one table for every form of the call
+    absent = plan.not_applicable(manifest, swaps)
     planned = ledger.events(round_id, "planned")
     # The chained planning event holds the tokens' digests; a round planned before
     # there were tokens has none, and its forms are taken without.
@@ -230,7 +278,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             continue
         checked = inspect_form(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
                                today=today, elsewhere=elsewhere, token_digests=digests,
-                               owners=owners)
+                               owners=owners, absent=absent)
         problems += checked.problems
         if not checked.problems:
             accepted.append((form, checked))
@@ -245,6 +293,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     if problems:
         raise IntakeError("\n".join(condense(problems)))
     due = date.fromisoformat(manifest["dates"]["results_due"])
+    several = not study.shorthand
     plans = []
     stale: list[PlannerError] = []
     for form, checked in accepted:
@@ -264,7 +313,8 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
         raise IntakeError("\n".join(condense(stale)))
     receipts: list[Receipt] = []
     if check_only:
-        return [_receipt(f, c, last, None, None, today > due, unsealed) for f, c, last in plans]
+        return [_receipt(f, c, last, None, None, today > due, unsealed,
+                         several=several) for f, c, last in plans]
     staging, results = folder / STAGING_DIR, folder / RESULTS_DIR
     # Links or files in the way are refused before anything is recorded.
     files.make_folders(staging, root=study_dir)
@@ -277,7 +327,8 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             write_receipts(folder, study.id, round_id, ledger, manifest)
             for form, checked, last in plans:
                 if last is not None and last.sha256 == form.sha256:
-                    receipts.append(_receipt(form, checked, last, None, None, False, unsealed))
+                    receipts.append(_receipt(form, checked, last, None, None, False, unsealed,
+                                             several=several))
                     continue
                 target = staging / _results_name(form.sha256, form.kind)
                 if not target.exists():
@@ -292,7 +343,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
                     "lab": checked.lab, "version": version, "sha256": form.sha256})
                 stored = f"{RESULTS_DIR}/{_results_name(form.sha256, form.kind)}"
                 receipts.append(_receipt(form, checked, last, version, stored, today > due,
-                                         unsealed))
+                                         unsealed, several=several))
             if _pause is not None:
                 _pause("before-commit")
     except BaseException:
@@ -311,10 +362,11 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     out = []
     for r in receipts:
         if r.version is not None:
-            state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps)
+            state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps, absent=absent)
             name, head = written.get((r.lab, r.version), (receipt_name(r.lab, r.version), None))
             r = replace(r, in_force=len(state.rows), outstanding=state.outstanding,
-                        merged=state.merged, receipt=name, chain_head=head)
+                        merged=state.merged, receipt=name, chain_head=head,
+                        unfilled=state.unfilled)
         out.append(r)
     return out
 
@@ -336,6 +388,8 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
     from planner.intake import spare_swaps
 
     swaps = spare_swaps(ledger, round_id)
+    several = plan.manifest_measurands(manifest)
+    absent = plan.not_applicable(manifest, swaps) if several is not None else None
     received = ledger.events(round_id, "received")
     out: dict[tuple[str, int], tuple[str, str]] = {}
     for sub in ledger.submissions(round_id):
@@ -344,7 +398,7 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
             continue
         rows = ledger.result_rows(sub.row)
         state = slot_state(manifest, ledger, round_id, sub.lab, swaps=swaps,
-                           upto_version=sub.version)
+                           upto_version=sub.version, absent=absent)
         link = ledger.link_of("submissions", sub.row)
         at = next((e.at for e in reversed(received) if e.detail.get("lab") == sub.lab
                    and e.detail.get("version") == sub.version), sub.received_at)
@@ -354,11 +408,11 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
             f"form version {sub.version}" + (f" (replaces version {sub.version - 1})"
                                              if sub.version > 1 else "") + f", recorded {at}",
             f"file {sub.file_name}, SHA-256 {sub.sha256}",
-            f"this form: {sum(1 for r in rows if r.value is not None)} results with a value, "
-            f"{sum(1 for r in rows if r.value is None)} without",
+            "this form: {} results with a value, {} without".format(*count_values(
+                rows, several=several is not None)),
             "in force for the laboratory"
             + (" (merged with its earlier versions)" if state.merged else "")
-            + f": {len(state.rows)} results"
+            + f": {len(state.rows)} " + ("results" if several is None else "units")
             + (f"; still outstanding: {len(state.outstanding)} codes" if state.outstanding
                else "; complete"),
             f"ledger chain after recording: link {link.seq}, head {link.head}",
@@ -375,12 +429,13 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
 
 
 def _receipt(form: forms.Form, checked: Checked, last: Any, version: int | None,
-             stored: str | None, received_late: bool, unsealed: bool) -> Receipt:
+             stored: str | None, received_late: bool, unsealed: bool, *,
+             several: bool) -> Receipt:
+    counts = count_values(checked.rows, several=several)
     repeat = last.version if last is not None and last.sha256 == form.sha256 else None
     return Receipt(
         file=form.path, lab=str(checked.lab), sha256=form.sha256, version=version,
         supersedes=last.version if last is not None and repeat is None else None,
-        stored=stored, values=sum(1 for r in checked.rows if r.value is not None),
-        failed=sum(1 for r in checked.rows if r.value is None), missing=checked.missing,
+        stored=stored, values=counts[0], failed=counts[1], missing=checked.missing,
         late_rows=checked.late_rows, received_late=received_late, after_unseal=unsealed,
         repeat_of=repeat)

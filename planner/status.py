@@ -65,6 +65,7 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
     due = date.fromisoformat(manifest["dates"]["results_due"])
     swaps = intake.spare_swaps(ledger, round_id)
     issued_to = list(intake.issued_spares(ledger, round_id).values())
+    absent = plan.not_applicable(manifest, swaps)
     unsealed = ledger.round_status(round_id) in ("unsealed", "evaluated")
     key = read_key_history(ledger, round_id)
     if manifest.get("mode") == "circulate":
@@ -78,12 +79,14 @@ def round_status_table(study: Study, study_dir: Path, round_id: str, ledger: Led
             continue
         expected = intake.expected_codes(manifest, lab.id, swaps)
         history = ledger.submissions(round_id, lab.id)
-        state = returns.slot_state(manifest, ledger, round_id, lab.id, swaps=swaps)
+        state = returns.slot_state(manifest, ledger, round_id, lab.id, swaps=swaps,
+                                   absent=absent)
         got = [r for _, r in state.rows]
         missing = [codes.format(c) for c in state.outstanding]
         rows.append(_row(lab.id, history, got, expected=len(expected), missing=missing,
                          spares=issued_to.count(lab.id), today=today, due=due,
-                         merged=state.merged))
+                         merged=state.merged, measurands=plan.manifest_measurands(manifest),
+                         unfilled=state.unfilled))
     waiting = tuple(audit.missing_labs(study, ledger, round_id, manifest=manifest))
     return RoundStatus(round_id, due, unsealed, not unsealed and not waiting, waiting,
                        tuple(rows), key)
@@ -226,18 +229,20 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
     stations = {circulate.station_key(str(s["lab"]), s.get("visit")): s
                 for s in manifest["route"]}
     rows = []
+    absent = plan.not_applicable(manifest)
     for slot in audit.report_slots(manifest):
         runs = audit.slot_runs(manifest, slot)
         expected = [(code, trial) for trial, run in enumerate(runs, start=1) for code in run]
         history = ledger.submissions(round_id, slot)
-        state = returns.slot_state(manifest, ledger, round_id, slot)
+        state = returns.slot_state(manifest, ledger, round_id, slot, absent=absent)
         got = [r for _, r in state.rows]
         missing = [f"{codes.format(c)} (trial {t})" for c, _, t in
                    (o.partition("@") for o in state.outstanding)]
         station = stations.get(slot, {})
         rows.append({
             **_row(slot, history, got, expected=len(expected), missing=missing, spares=0,
-                   today=today, due=due, merged=state.merged),
+                   today=today, due=due, merged=state.merged,
+                   measurands=plan.manifest_measurands(manifest), unfilled=state.unfilled),
             "laboratory": station.get("lab", slot),
             "visit": station.get("visit"),
             "test_end": station.get("test_end"),
@@ -247,18 +252,25 @@ def _circulating_rows(manifest: Mapping[str, Any], ledger: Ledger, round_id: str
 
 def _row(slot: str, history: Sequence[Submission], got: Sequence[ResultRow], *, expected: int,
          missing: list[str], spares: int, today: date, due: date,
-         merged: bool = False) -> dict[str, Any]:
-    """Return the status row of one laboratory (or stop) from the rows in force."""
+         merged: bool = False, measurands: Sequence[str] | None = None,
+         unfilled: Sequence[tuple[str, str]] = ()) -> dict[str, Any]:
+    """Return the status row of one laboratory (or stop) from the rows in force.
+
+    With several ``measurands`` the values are counted per result, and ``measurands``
+    gives per measurand the results with a value, the blanks (remark given) and the units
+    still without either (``unfilled``: (code, measurand) pairs).
+    """
     last = history[-1] if history else None
-    return {
+    values, failed = returns.count_values(got, several=measurands is not None)
+    row = {
         "lab": slot,
         "received": last is not None,
         "complete": last is not None and not missing,
         "version": last.version if last else None,
         "merged": merged,
         "received_at": last.received_at if last else None,
-        "values": sum(1 for r in got if r.value is not None),
-        "failed": sum(1 for r in got if r.value is None),
+        "values": values,
+        "failed": failed,
         "expected": expected,
         "missing": len(missing),
         "missing_codes": missing,
@@ -267,6 +279,13 @@ def _row(slot: str, history: Sequence[Submission], got: Sequence[ResultRow], *, 
         "spares_issued": spares,
         "days_left": None if last else (due - today).days,
     }
+    if measurands is not None:
+        found = [(m, v) for r in got for m, v, _ in r.measurements]
+        row["measurands"] = {m: {"values": sum(1 for k, v in found if k == m and v is not None),
+                                 "empty": sum(1 for k, v in found if k == m and v is None),
+                                 "missing": sum(1 for _, k in unfilled if k == m)}
+                             for m in measurands}
+    return row
 
 
 def leftovers(folder: Path, removed: Sequence[Leftover], kept: Sequence[Leftover]

@@ -31,6 +31,7 @@ from planner import (
     forms,
     intake,
     plan,
+    results,
     returns,
     spares,
     spec,
@@ -152,7 +153,8 @@ def round_(tmp_path_factory):
         audit.unseal_round(study, folder_root, ROUND, ledger, passphrase=PASSPHRASE)
         report_dir = evaluate.evaluate_round(study, folder_root, ROUND, ledger)
         verdict = audit.verify_round(study, folder_root, ROUND, ledger)
-    stats = json.loads((report_dir / evaluate.STATISTICS_NAME).read_text(encoding="utf-8"))
+    stats = results.measurand_view(  # the single-measurand form
+        json.loads((report_dir / evaluate.STATISTICS_NAME).read_text(encoding="utf-8")), "value")
     return {"study": study, "study_dir": folder_root, "folder": folder, "manifest": manifest,
             "key": key, "values": values, "printed": printed, "status": standing,
             "stats": stats, "report_dir": report_dir, "gate_before_end": gate_before_end,

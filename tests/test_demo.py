@@ -8,7 +8,7 @@ import json
 import pytest
 
 from conftest import run_cli
-from planner import demo
+from planner import demo, results
 
 
 @pytest.fixture(scope="module")
@@ -27,7 +27,8 @@ def test_demo_runs_the_round_to_the_end(built):
 
 
 def test_the_biased_laboratory_shows_in_the_scores(built):
-    s = json.loads(built["statistics"].read_text(encoding="utf-8"))
+    raw = json.loads(built["statistics"].read_text(encoding="utf-8"))
+    s = results.measurand_view(raw, results.measurand_ids(raw)[0])
     biased = built["biased_lab"]
     assert biased != built["host"]
     bands = {lab: [s["scores"][m]["labs"][lab]["band"] for m in s["materials"]]
@@ -42,7 +43,10 @@ def test_the_biased_laboratory_shows_in_the_scores(built):
 def test_flags_come_through_intake(built):
     with open(built["results"], encoding="utf-8") as f:
         table = list(csv.DictReader(f))
-    assert len(table) == 5 * 6 * 3
+    # 5 laboratories x 3 trials x (6 materials for mfr and density, 2 for ash)
+    per = {m: sum(r["measurand"] == m for r in table) for m in ("mfr", "density", "ash")}
+    assert per == {"mfr": 5 * 6 * 3, "density": 5 * 6 * 3, "ash": 5 * 2 * 3}
+    table = [r for r in table if r["measurand"] == "mfr"]
     spare = [r for r in table if "spare-used" in r["flags"]]
     assert [(r["lab"], r["code"].replace("-", "")) for r in spare] == [
         (built["spare"]["lab"], built["spare"]["spare"])]
@@ -53,7 +57,10 @@ def test_flags_come_through_intake(built):
 def test_comma_laboratories_return_comma_forms(built):
     text = (built["study_dir"] / "returned" / "kal.csv").read_text(encoding="utf-8")
     row = [ln for ln in text.splitlines() if not ln.startswith("#")][1]
-    assert row.count(";") == 7 and "," in row.split(";")[3]
+    # trial, position, code, mfr, mfr uncertainty, density, density uncertainty, ash, date,
+    # analyst, remarks
+    cells = row.split(";")
+    assert len(cells) == 11 and "," in cells[3] and "," in cells[5] and "," in cells[6]
 
 
 def test_demo_is_the_same_for_the_same_seed(built, tmp_path):

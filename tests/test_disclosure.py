@@ -266,7 +266,8 @@ def test_history_refuses_a_statistics_file_edited_after_evaluation(forced, tmp_p
     study_dir = _copy(forced, tmp_path)
     path = _report(study_dir) / "statistics.json"
     s = json.loads(path.read_text(encoding="utf-8"))
-    for entry in s["scores"][s["materials"][0]]["labs"].values():
+    block = s["measurands"]["value"]
+    for entry in block["scores"][block["materials"][0]]["labs"].values():
         entry["z"] = 0.0                      # everyone made satisfactory
     path.write_text(json.dumps(s, indent=1) + "\n", encoding="utf-8")
     result = run_cli(runner, "history", study_dir, "--no-pdf")

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from conftest import PASSPHRASE, SECRET, run_cli
-from planner import audit, evaluate, spec
+from planner import audit, evaluate, results, spec
 from planner import plan as planning
 from planner.errors import DataError, LedgerError
 from planner.ledger import Ledger
@@ -150,7 +150,9 @@ def test_results_csv_is_the_unblinded_long_table(evaluated):
     assert status == "evaluated"
     with open(out / "results.csv", encoding="utf-8") as f:
         table = list(csv.DictReader(f))
-    assert list(table[0]) == ["material", "lab", "trial", "code", "value", "uncertainty", "flags"]
+    assert list(table[0]) == ["material", "measurand", "lab", "trial", "code", "value",
+                              "uncertainty", "flags"]
+    assert {line["measurand"] for line in table} == {"value"}  # the single-measurand form
     assert len(table) == len(records)
     units = {u.code: u for u in result.units}
     for line in table:
@@ -161,11 +163,19 @@ def test_results_csv_is_the_unblinded_long_table(evaluated):
 
 def test_statistics_json_holds_every_method_and_the_host_free_consensus(evaluated):
     study, result, records, out, _ = evaluated
-    s = json.loads((out / "statistics.json").read_text(encoding="utf-8"))
-    for k in ("format", "study", "round", "host", "fingerprint", "settings", "results",
-              "participants", "materials", "labs", "anova", "grr_anova", "grr_range",
-              "precision", "scores"):
-        assert k in s
+    raw = json.loads((out / "statistics.json").read_text(encoding="utf-8"))
+    assert raw["format"] == "ringplan-statistics/3"
+    for k in ("study", "round", "host", "fingerprint", "results", "participants", "labs",
+              "sources", "measurands"):
+        assert k in raw
+    # a study in the single-measurand form: its one measurand "value", today's blocks in it
+    assert list(raw["measurands"]) == ["value"]
+    block = raw["measurands"]["value"]
+    assert (block["name"], block["unit"]) == (study.study.measurand, study.study.unit)
+    for k in ("settings", "materials", "labs", "anova", "grr_anova", "grr_range", "precision",
+              "scores"):
+        assert k in block
+    s = results.measurand_view(raw, "value")
     assert s["fingerprint"] == (out.parent / "key.fingerprint").read_text().split()[0]
     assert s["materials"] == [m.id for m in study.materials]
     units = {u.code: u for u in result.units}

@@ -87,7 +87,8 @@ def test_materials_reordered_and_settings_changed_do_not_touch_the_round(planned
     assert run_cli(runner, "evaluate", planned, "--round", ROUND).exit_code == 0
     stats = json.loads((plan.round_dir(planned, ROUND) / "report" / "statistics.json")
                        .read_text(encoding="utf-8"))
-    assert set(stats["settings"]["sigma_pt"].values()) == {"5 % of the assigned value"}
+    settings = stats["measurands"]["value"]["settings"]
+    assert set(settings["sigma_pt"].values()) == {"5 % of the assigned value"}
 
 
 def test_the_definition_is_committed_in_the_fingerprint_and_the_manifest(planned):

@@ -53,8 +53,9 @@ def test_a_one_row_correction_merges_with_the_earlier_form(planned, runner, tmp_
     assert run_cli(runner, "unseal", planned, "--round", ROUND).exit_code == 0
     assert run_cli(runner, "evaluate", planned, "--round", ROUND).exit_code == 0
     results = (plan.round_dir(planned, ROUND) / "report" / "results.csv").read_text()
-    by_code = {ln.split(",")[3]: float(ln.split(",")[4]) for ln in results.splitlines()[1:]
-               if ln.split(",")[1] == "kal"}
+    # results.csv: material, measurand, lab, trial, code, value, ...
+    by_code = {ln.split(",")[4]: float(ln.split(",")[5]) for ln in results.splitlines()[1:]
+               if ln.split(",")[2] == "kal"}
     fixed = codes.format(codes.compact(get_cell(full, row, "code", "kal")))
     kept = codes.format(codes.compact(get_cell(full, FIRST_ROW, "code", "kal")))
     assert len(by_code) == 18 and by_code[fixed] == 99.75

@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 from conftest import PASSPHRASE, SECRET
-from planner import audit, evaluate, spec
+from planner import audit, evaluate, results, spec
 from planner import plan as planning
 from planner.ledger import Ledger
 
@@ -40,7 +40,7 @@ def _round(folder: Path, evaluation: str, *, drop: str | None = None,
                            force=True, reason="test")
         out = evaluate.evaluate_round(study, folder, ROUND, ledger, results=records)
     stats = json.loads((out / evaluate.STATISTICS_NAME).read_text(encoding="utf-8"))
-    return out, stats
+    return out, results.measurand_view(stats, "value")  # the single-measurand form
 
 
 def _text(path: Path) -> str:

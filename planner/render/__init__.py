@@ -112,8 +112,8 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     round was not planned, SealError if the key is not the round's,
     PlannerError for an unknown kind, laboratory or sheet.
     """
-    from planner import language, plan
-    from planner.render import labels, packing_list, prep_sheet, result_form, run_sheet
+    from planner import plan
+    from planner.render import _qr, labels, prep_sheet
 
     folder = plan.round_dir(study_dir, round_id)
     manifest = plan.read_manifest(folder)
@@ -126,50 +126,168 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
         from planner.errors import SealError
 
         raise SealError("labels and the preparation sheet name materials: they need the key")
-    circulating = manifest.get("mode") == "circulate"
     paper = study.study.paper
     lab_ids = [lab] if lab else [x.id for x in study.laboratories if x.id in manifest["labs"]]
-    title = f"{study.id} round {round_id}"
     out: list[Path] = []
-
+    items: list[Any] = []
     if geometry is not None:
         if lab:
             items = labels.lab_labels(study, manifest, key, lab)
-            target = folder / "labs" / lab
         else:
             items = labels.host_labels(study, manifest, key, issued=issued)
-            target = folder / "host"
-        name = "labels.pdf"
         if codes:
             items = labels.pick(items, codes, round_id=round_id)
-            name = "labels-reprint.pdf"
-        out.append(labels.render(target / name, items, geometry, title=f"labels, {title}",
-                                 start_at=start_at, offset_mm=offset_mm, workers=workers))
-    if "prep" in wanted and not lab:
-        out.append(prep_sheet.render(folder / "host" / "prep-sheet.pdf", study, manifest, key,
-                                     paper=paper))
-    for lab_id in lab_ids:
-        lab_dir = folder / "labs" / lab_id
-        if circulating:
-            out += _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper,
-                                token=_token(folder, key, lab_id))
-            continue
-        if "packing" in wanted:
-            out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest,
-                                           lab_id, paper=paper))
-        token = _token(folder, key, lab_id)
-        if "runsheets" in wanted:
-            out.append(run_sheet.render(lab_dir / "run-sheet.pdf", study, manifest, lab_id,
-                                        paper=paper, token=token))
-        if "forms" in wanted:
-            csv_path = lab_dir / "result-form.csv"
-            if csv_path.is_file():
-                text = csv_path.read_text(encoding="utf-8")
-            else:
-                text = plan.result_form_csv(study, manifest, lab_id, token=token)
-            out.append(result_form.render(lab_dir / "result-form.xlsx", text,
-                                          language=language.of(study.lab(lab_id))))
+    job = _LabJob(study, folder, manifest, key, wanted, paper)
+    with _qr.session():
+        # Every symbol once, in batches: a unit's label and its run-sheet row share it.
+        _qr.prepare([_code_text(item.code) for item in items if isinstance(item, labels.Label)]
+                    + (_run_sheet_codes(manifest, lab_ids) if "runsheets" in wanted else []),
+                    workers=workers)
+        # The laboratories' documents are made in worker processes while this one draws
+        # the labels and the preparation sheet.
+        pending = _lab_documents_elsewhere(job, lab_ids, workers)
+        try:
+            if geometry is not None:
+                target = folder / "labs" / lab if lab else folder / "host"
+                name = "labels-reprint.pdf" if codes else "labels.pdf"
+                out.append(labels.render(target / name, items, geometry,
+                                         title=f"labels, {study.id} round {round_id}",
+                                         start_at=start_at, offset_mm=offset_mm,
+                                         workers=1 if pending else workers))
+            if "prep" in wanted and not lab:
+                out.append(prep_sheet.render(folder / "host" / "prep-sheet.pdf", study,
+                                             manifest, key, paper=paper))
+        except BaseException:
+            if pending is not None:
+                _stop(pending)
+            raise
+        if pending is None:
+            for lab_id in lab_ids:
+                out += _lab_documents(job, lab_id)
+        else:
+            out += _gathered(pending)
     return out
+
+
+def _code_text(code: str) -> str:
+    from planner import codes
+
+    return codes.format(code)
+
+
+def _run_sheet_codes(manifest: dict[str, Any], lab_ids: Sequence[str]) -> list[str]:
+    """Return the printed codes of the run sheets of ``lab_ids``, every stop's included."""
+    found = [c for lab_id in lab_ids for run in manifest["labs"].get(lab_id, {}).get("trials", ())
+             for c in run]
+    found += [c for visit in (manifest.get("host_visits") or {}).values() for run in visit
+              for c in run]
+    return [_code_text(c) for c in found]
+
+
+class _LabJob:
+    """What every laboratory's documents are made from (shared with forked workers)."""
+
+    __slots__ = ("folder", "key", "manifest", "paper", "study", "wanted")
+
+    def __init__(self, study: Study, folder: Path, manifest: dict[str, Any],
+                 key: dict[str, Any] | None, wanted: set[str], paper: str) -> None:
+        self.study, self.folder, self.manifest = study, folder, manifest
+        self.key, self.wanted, self.paper = key, wanted, paper
+
+
+_job: _LabJob | None = None
+"""The job of the forked workers of ``_lab_documents_elsewhere``, set before they fork."""
+
+_LABS_PER_TASK = 8
+
+
+def _lab_documents(job: _LabJob, lab_id: str) -> list[Path]:
+    """Write one laboratory's packing list (or hand-over sheets), run sheets and forms."""
+    from planner import language, plan
+    from planner.render import packing_list, result_form, run_sheet
+
+    study, folder, manifest, wanted, paper = (job.study, job.folder, job.manifest, job.wanted,
+                                              job.paper)
+    lab_dir = folder / "labs" / lab_id
+    if manifest.get("mode") == "circulate":
+        return _print_stops(study, manifest, lab_dir, lab_id, wanted, paper=paper,
+                            token=_token(folder, job.key, lab_id))
+    out: list[Path] = []
+    if "packing" in wanted:
+        out.append(packing_list.render(lab_dir / "packing-list.pdf", study, manifest,
+                                       lab_id, paper=paper))
+    token = _token(folder, job.key, lab_id)
+    if "runsheets" in wanted:
+        out.append(run_sheet.render(lab_dir / "run-sheet.pdf", study, manifest, lab_id,
+                                    paper=paper, token=token))
+    if "forms" in wanted:
+        csv_path = lab_dir / "result-form.csv"
+        if csv_path.is_file():
+            text = csv_path.read_text(encoding="utf-8")
+        else:
+            text = plan.result_form_csv(study, manifest, lab_id, token=token)
+        out.append(result_form.render(lab_dir / "result-form.xlsx", text,
+                                      language=language.of(study.lab(lab_id))))
+    return out
+
+
+def _lab_task(lab_ids: list[str]) -> tuple[list[Path], tuple[type, str, Any] | None]:
+    """Write the documents of ``lab_ids`` in a forked worker; a user's error comes back as
+    its class, message and place (an exception's pickle would lose the place)."""
+    from planner.errors import PlannerError
+
+    assert _job is not None
+    out: list[Path] = []
+    try:
+        for lab_id in lab_ids:
+            out += _lab_documents(_job, lab_id)
+    except PlannerError as exc:
+        return out, (type(exc), exc.message, exc.where)
+    return out, None
+
+
+def _lab_documents_elsewhere(job: _LabJob, lab_ids: Sequence[str], workers: int) -> Any:
+    """Start the laboratories' documents in ``workers`` forked processes, which share this
+    one's memory (the study, the manifest and the symbols made); return the pending tasks,
+    or None when they are better made here (one worker, few laboratories, nothing wanted,
+    or no fork on this system)."""
+    import multiprocessing
+
+    global _job
+    if (workers <= 1 or len(lab_ids) < 2 * _LABS_PER_TASK
+            or not job.wanted & {"packing", "runsheets", "forms"}
+            or "fork" not in multiprocessing.get_all_start_methods()):
+        return None
+    from planner.render import _workers
+
+    _job = job
+    pool = _workers.pool(workers, fork=True)
+    tasks = [pool.submit(_lab_task, list(lab_ids[i:i + _LABS_PER_TASK]))
+             for i in range(0, len(lab_ids), _LABS_PER_TASK)]
+    return pool, tasks
+
+
+def _gathered(pending: Any) -> list[Path]:
+    """Return the paths of the pending tasks in order; raise the first user's error."""
+    _, tasks = pending
+    out: list[Path] = []
+    try:
+        for task in tasks:
+            paths, error = task.result()
+            out += paths
+            if error is not None:
+                kind, message, where = error
+                raise kind(message, where)
+    finally:
+        _stop(pending)
+    return out
+
+
+def _stop(pending: Any) -> None:
+    """Shut the workers of ``_lab_documents_elsewhere`` down, cancelling what has not begun."""
+    global _job
+    pending[0].shutdown(cancel_futures=True)
+    _job = None
 
 
 def needs_key(wanted: set[str], *, labels: bool, lab: str | None) -> bool:

@@ -11,18 +11,24 @@ no seams between neighbouring modules for an anti-aliasing renderer to show.
 ``/Interpolate`` is left at its default (false), so printers and viewers scale
 the modules as sharp squares. The quiet zone of 4 modules (ISO/IEC 18004) is
 left blank around the image by the caller; ``QUIET`` gives its width.
+
+While a ``session`` is open, every symbol is made once: ``prepare`` makes the symbols of
+a round's codes in batches (in worker processes if asked) and keeps their operators, and
+``image_masks`` and ``flowable`` take them from there, so that a unit's label and its row
+on a run sheet share one symbol. Outside a session nothing is kept.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from reportlab.pdfgen.canvas import Canvas
 
-__all__ = ["QUIET", "draw", "flowable", "image_mask", "image_masks", "matrices", "matrix",
-           "modules"]
+__all__ = ["CHUNK", "QUIET", "draw", "flowable", "image_mask", "image_masks", "matrices",
+           "matrix", "modules", "prepare", "session", "stream"]
 
 QUIET = 4
 """Width of the blank quiet zone around a symbol, in modules."""
@@ -191,9 +197,70 @@ def image_mask(grid: Sequence[Sequence[bool]]) -> str:
     return f"BI /W {n} /H {n} /IM true /BPC 1 /D [1 0] /F /AHx ID {''.join(rows)}> EI"
 
 
+def _made(texts: Sequence[str]) -> list[str]:
+    """Return ``image_mask(matrix(t))`` for every text, made now; a worker process's task."""
+    return [image_mask(grid) for grid in matrices(texts)]
+
+
 def image_masks(texts: Iterable[str]) -> list[str]:
-    """Return ``image_mask(matrix(t))`` for every text; the unit of work of a worker process."""
-    return [image_mask(grid) for grid in matrices(list(texts))]
+    """Return ``image_mask(matrix(t))`` for every text; symbols of the open session are made
+    once (the rest together, in batches) and kept."""
+    wanted = list(texts)
+    if _kept is None:
+        return _made(wanted)
+    missing = list(dict.fromkeys(t for t in wanted if t not in _kept))
+    if missing:
+        _kept.update(zip(missing, _made(missing)))
+    return [_kept[t] for t in wanted]
+
+
+CHUNK = 240
+"""Symbols per task handed to a worker process."""
+
+_kept: dict[str, str] | None = None
+
+
+@contextmanager
+def session() -> Iterator[None]:
+    """Keep every symbol made inside the block for the rest of it (nested blocks share it)."""
+    global _kept
+    if _kept is not None:
+        yield
+        return
+    _kept = {}
+    try:
+        yield
+    finally:
+        _kept = None
+
+
+def stream(texts: Sequence[str], *, workers: int = 1, chunk: int = CHUNK) -> Iterator[str]:
+    """Yield ``image_mask(matrix(t))`` for every text in order: from the open session if it
+    has them all, else made in batches, in ``workers`` processes (``chunk`` symbols a task)
+    when there are enough, while the caller draws the first; kept in the open session."""
+    if _kept is not None and all(t in _kept for t in texts):
+        yield from (_kept[t] for t in texts)
+        return
+    if workers <= 1 or len(texts) < 2 * chunk:
+        yield from image_masks(texts)
+        return
+    from planner.render import _workers
+
+    chunks = [texts[i:i + chunk] for i in range(0, len(texts), chunk)]
+    with _workers.pool(workers) as pool:
+        for part, made in zip(chunks, pool.map(_made, chunks)):
+            if _kept is not None:
+                _kept.update(zip(part, made))
+            yield from made
+
+
+def prepare(texts: Iterable[str], *, workers: int = 1) -> None:
+    """Make the symbols of ``texts`` that the open session lacks, in ``workers`` processes
+    when there are enough of them; without a session, do nothing."""
+    if _kept is None:
+        return
+    for _ in stream([t for t in dict.fromkeys(texts) if t not in _kept], workers=workers):
+        pass
 
 
 def draw(canvas: Canvas, ops: str, x: float, y: float, side: float) -> None:
@@ -208,7 +275,7 @@ def flowable(text: str, side: float) -> Any:
     """Return a platypus flowable of the symbol of ``text``, ``side`` points across with its quiet zone."""
     from reportlab.platypus import Flowable
 
-    ops = image_mask(matrix(text))
+    ops = image_masks([text])[0]
     n = modules(ops)
 
     class _Symbol(Flowable):  # type: ignore[misc]

@@ -5,7 +5,8 @@ materials) joined by a line, on a scale from -4 to 4 with the zero line and
 dashed lines at -2 and +2; rounds it hosted have a filled mark, others an open
 one. Beside the row: its mean |z| when hosting and when not. Under the rows,
 the pooled host-effect statement. Drawn from ``planner.history.collect``'s
-result alone; the rows shrink to keep everything on one page.
+result alone; the rows shrink to keep everything on one page. A study with
+several measurands gets such a page per measurand, its title naming it.
 """
 
 from __future__ import annotations
@@ -109,18 +110,15 @@ def _rows_flowable(record: Mapping[str, Any], width: float, height: float) -> An
     return Rows()
 
 
-def render(path: Path, record: Mapping[str, Any], *, study_id: str, title: str,
-           paper: str) -> Path:
-    """Write the one-page history of ``record`` (from history.collect) to ``path``; return it."""
+def _page(record: Mapping[str, Any], heading: str, width: float, page_h: float) -> list[Any]:
+    """One measurand's page: its rows of laboratories and its host effect."""
     from reportlab.platypus import Paragraph, Spacer
 
     st = _layout.styles()
     esc = _layout.escape
-    width = _layout.content_width(paper)
-    page_h = _layout.page_size(paper)[1]
     pooled = record["host_effect"]["pooled"]
-    story: list[Any] = [
-        Paragraph("Laboratories over rounds", st["title"]),
+    return [
+        Paragraph(esc(heading), st["title"]),
         Paragraph(f"{len(record['rounds'])} evaluated round(s), {len(record['labs'])} "
                   "laboratories. Each row: the laboratory's mean z per round (scale -4 to 4, "
                   "dotted at -2 and +2); a filled mark is a round it hosted.", st["lead"]),
@@ -131,6 +129,26 @@ def render(path: Path, record: Mapping[str, Any], *, study_id: str, title: str,
         Paragraph("Host effect", st["h2"]),
         Paragraph(esc(pooled["statement"]), st["body"]),
     ]
+
+
+def render(path: Path, record: Mapping[str, Any], *, study_id: str, title: str,
+           paper: str) -> Path:
+    """Write the history of ``record`` (from history.collect) to ``path``, a page per
+    measurand; return it."""
+    from reportlab.platypus import PageBreak
+
+    width = _layout.content_width(paper)
+    page_h = _layout.page_size(paper)[1]
+    blocks = record["measurands"]
+    single = list(blocks) == ["value"]  # history.SHORTHAND_ID: the page reads as it always has
+    story: list[Any] = []
+    for k, (mid, block) in enumerate(blocks.items()):
+        one = {**record, "labs": block["labs"], "host_effect": block["host_effect"],
+               "rounds": [r for r in record["rounds"] if r["round"] in block["rounds"]]}
+        heading = ("Laboratories over rounds" if single else
+                   f"Laboratories over rounds: {mid}" + (f", {block['name']}" if block.get("name")
+                                                         else ""))
+        story += ([PageBreak()] if k else []) + _page(one, heading, width, page_h)
     names = [r["round"] for r in record["rounds"]]
     span = f"{names[0]} to {names[-1]}" if len(names) > 1 else (names[0] if names else "none")
     running = _layout.Running(study_id, title, span, "history")

@@ -318,16 +318,52 @@ def _code_lines(printed: str, size: float, width: float, height: float,
     return [_Line(first + "-", _layout.MONO, two), _Line(second, _layout.MONO, two)]
 
 
-def _options(texts: dict[str, tuple[str, ...]], body: float, width: float
-             ) -> tuple[dict[str, list[list[_Line]]], list[str]]:
+class _Cache:
+    """What the labels of one document share, so that each is worked out once: every field's
+    text fitted to the width (``fits``), every arrangement of fields (``arrangements``: which
+    alternative of each field, which fields dropped) and the place of every line of one
+    (``places``), and the operators that show a text (``shown``, per document).
+
+    An arrangement depends only on the form of the fitted fields (how many lines each
+    alternative takes, in which face and size), not on their words, so the labels of a
+    round's hundreds of laboratories share a few arrangements; ``hits`` and ``misses``
+    count, per table, how often one was found and how often made.
+    """
+
+    __slots__ = ("arrangements", "fits", "hits", "misses", "places", "shown")
+
+    def __init__(self) -> None:
+        self.fits: dict[tuple[Any, ...], list[_Line] | None] = {}
+        self.arrangements: dict[tuple[Any, ...], tuple[dict[str, int], list[str], list[str]]]
+        self.arrangements = {}
+        self.places: dict[tuple[Any, ...], list[tuple[float, float]]] = {}
+        self.shown: dict[tuple[str, str, float], str] = {}
+        self.hits: dict[str, int] = {"fits": 0, "arrangements": 0, "places": 0, "shown": 0}
+        self.misses: dict[str, int] = dict.fromkeys(self.hits, 0)
+
+    def fit(self, text: str, font: str, size: float, width: float, boxed: bool
+            ) -> list[_Line] | None:
+        key = (text, font, size, width, boxed)
+        if key in self.fits:
+            self.hits["fits"] += 1
+            return self.fits[key]
+        self.misses["fits"] += 1
+        found = self.fits[key] = _fit(text, font, size, width, boxed=boxed)
+        return found
+
+
+def _options(texts: dict[str, tuple[str, ...]], body: float, width: float,
+             cache: _Cache | None = None) -> tuple[dict[str, list[list[_Line]]], list[str]]:
     """Return every alternative of every field fitted to ``width``, and the fields none of
     whose alternatives fits (one word wider than the label)."""
     options: dict[str, list[list[_Line]]] = {}
     dropped: list[str] = []
+    fit = cache.fit if cache is not None else (
+        lambda text, font, size, width, boxed: _fit(text, font, size, width, boxed=boxed))
     for name in _KEEP:
         font = _layout.BOLD if name in ("hazard", "trial") else _layout.FONT
         fitted = [lines for text in texts[name] if text
-                  for lines in [_fit(text, font, body, width, boxed=name == "hazard")] if lines]
+                  for lines in [fit(text, font, body, width, name == "hazard")] if lines]
         if fitted:
             options[name] = fitted
         elif any(texts[name]):
@@ -335,11 +371,12 @@ def _options(texts: dict[str, tuple[str, ...]], body: float, width: float
     return options, dropped
 
 
-def layout(label: Label, g: Geometry) -> tuple[list[_Line], tuple[str, ...]]:
+def layout(label: Label, g: Geometry, *, cache: _Cache | None = None
+           ) -> tuple[list[_Line], tuple[str, ...]]:
     """Return the text lines of ``label`` on geometry ``g`` and the fields that had to be dropped.
 
-    Raises PlannerError when the label is too small for the code at the
-    smallest size.
+    ``cache`` keeps what labels of one document share (``_Cache``). Raises PlannerError
+    when the label is too small for the code at the smallest size.
     """
     frame = _frame(g)
     code_size, body = _sizes(frame)
@@ -348,15 +385,39 @@ def layout(label: Label, g: Geometry) -> tuple[list[_Line], tuple[str, ...]]:
     texts: dict[str, tuple[str, ...]] = {
         "hazard": (label.hazard,), "trial": (label.trial,), "lab": label.lab,
         "use_by": (label.use_by,), "study": (label.study,), "storage": (label.storage,)}
-    options, dropped = _options(texts, body, width)
+    options, unfit = _options(texts, body, width, cache)
+    # What decides the arrangement: the form of every fitted alternative, not its words.
+    form = (tuple((ln.font, ln.size) for ln in code_lines), tuple(
+        (name, tuple(tuple((ln.size, ln.boxed) for ln in alt) for alt in options[name]))
+        for name in options), tuple(unfit))
+    found = cache.arrangements.get(form) if cache is not None else None
+    if found is None:
+        found = _arrange(options, unfit, code_lines, body, height, g)
+        if cache is not None:
+            cache.arrangements[form] = found
+            cache.misses["arrangements"] += 1
+    else:
+        assert cache is not None
+        cache.hits["arrangements"] += 1
+    choice, kept, dropped = found
+    lines = code_lines + [ln for name in _SHOWN if name in kept
+                          for ln in options[name][choice[name]]]
+    return lines, tuple(dropped)
+
+
+def _arrange(options: dict[str, list[list[_Line]]], unfit: list[str],
+             code_lines: list[_Line], body: float, height: float, g: Geometry
+             ) -> tuple[dict[str, int], list[str], list[str]]:
+    """Return which alternative of each field is shown, the fields kept and the fields dropped
+    (``unfit`` first), dropping from the end of ``_KEEP`` until the label's height holds them."""
     choice = {name: 0 for name in options}
     kept = [name for name in _KEEP if name in options]
+    dropped = list(unfit)
     while True:
-        lines = code_lines + [ln for name in _SHOWN if name in kept
-                              for ln in options[name][choice[name]]]
-        gap = 0.25 * body if len(lines) > len(code_lines) else 0.0
-        if _height(lines) + gap <= height:
-            return lines, tuple(dropped)
+        lines = [ln for name in _SHOWN if name in kept for ln in options[name][choice[name]]]
+        gap = 0.25 * body if lines else 0.0
+        if _height(code_lines + lines) + gap <= height:
+            return choice, kept, dropped
         if not kept:
             raise PlannerError(f"label sheet {g.name!r} is too small for a readable code; "
                                "choose a sheet with larger labels", Where(field="--sheet"))
@@ -424,7 +485,7 @@ def _draw_lines(canvas: Any, lines: Sequence[_Line], x: float, top: float, botto
 
 def _pdf_string(data: bytes) -> str:
     """Return the character codes ``data`` as a PDF literal string; control bytes as octal
-    escapes, so that the code marks below never occur in one."""
+    escapes."""
     out = []
     for byte in data:
         if byte in (0x28, 0x29, 0x5C):
@@ -434,9 +495,6 @@ def _pdf_string(data: bytes) -> str:
         else:
             out.append(f"\\{byte:03o}")
     return "(" + "".join(out) + ")"
-
-
-_CODE_MARK = ("\x00", "\x01")
 
 
 def _shown(text: str, font: str, size: float, doc: Any) -> str:
@@ -449,20 +507,42 @@ def _shown(text: str, font: str, size: float, doc: Any) -> str:
                     f"{_pdf_string(data)} Tj" for subset, data in face.splitString(text, doc))
 
 
-def _text_ops(lines: Sequence[_Line], frame: _Frame, code_count: int, doc: Any,
-              ink: str) -> str:
-    """Return the operators of a label's text relative to its cell, with the operators that
-    show the code left as the marks ``_CODE_MARK`` (one template serves every label alike)."""
+def _text_ops(lines: Sequence[_Line], frame: _Frame, code_count: int, doc: Any, ink: str,
+              cache: _Cache) -> str:
+    """Return the operators of a label's text relative to its cell.
+
+    The places of the lines are worked out once per arrangement of sizes, and the operators
+    of a text once per document (the code's, new on every label, after the other lines', so
+    that glyphs are numbered in the order they always were).
+    """
+    form = (code_count, *((ln.font, ln.size, ln.boxed) for ln in lines))
+    places = cache.places.get(form)
+    if places is None:
+        cache.misses["places"] += 1
+        places = cache.places[form] = [
+            (x, baseline) for _, x, baseline, _ in
+            _placed(lines, frame.text_x, frame.text_top, frame.text_bottom, code_count)]
+    else:
+        cache.hits["places"] += 1
+    shown: list[str] = [""] * len(lines)
+    for i in (*range(code_count, len(lines)), *range(code_count)):
+        line = lines[i]
+        key = (line.text, line.font, line.size)
+        if i >= code_count and key in cache.shown:
+            cache.hits["shown"] += 1
+            shown[i] = cache.shown[key]
+            continue
+        shown[i] = _shown(line.text, line.font, line.size, doc)
+        if i >= code_count:  # a code is shown once; keeping it would only fill memory
+            cache.misses["shown"] += 1
+            cache.shown[key] = shown[i]
     parts = [f"{ink} rg {ink} RG BT"]
     boxes = []
-    for i, (line, x, baseline, box) in enumerate(
-            _placed(lines, frame.text_x, frame.text_top, frame.text_bottom, code_count)):
-        place = f"1 0 0 1 {x:.2f} {baseline:.2f} Tm"
-        if i < code_count:
-            parts.append(f"{place} {_CODE_MARK[i]}")
-        else:
-            parts.append(f"{place} {_shown(line.text, line.font, line.size, doc)}")
-        if box is not None:
+    for line, (x, baseline), ops in zip(lines, places, shown):
+        parts.append(f"1 0 0 1 {x:.2f} {baseline:.2f} Tm {ops}")
+        if line.boxed:
+            width = _text_width(line.text, line.font, line.size) + 0.7 * line.size
+            box = (frame.text_x, baseline - 0.3 * line.size, width, line.size * 1.12)
             boxes.append("0.6 w {:.2f} {:.2f} {:.2f} {:.2f} re S".format(*box))
     parts.append("ET")
     return " ".join(parts + boxes)
@@ -494,17 +574,10 @@ def _draw_separator(canvas: Any, sep: Separator, cell: tuple[float, float, float
 
 
 def _symbols(items: Sequence[Label | Separator], workers: int) -> Iterator[str]:
-    """Yield the QR operators of every Label in order, computed in worker processes if asked."""
+    """Yield the QR operators of every Label in order, computed in worker processes if asked
+    (those ``_qr.prepare`` made already are taken as they are)."""
     texts = [codes.format(item.code) for item in items if isinstance(item, Label)]
-    if workers <= 1 or len(texts) < 2 * CHUNK:
-        yield from _qr.image_masks(texts)
-        return
-    from planner.render import _workers
-
-    chunks = [texts[i:i + CHUNK] for i in range(0, len(texts), CHUNK)]
-    with _workers.pool(workers) as pool:
-        for result in pool.map(_qr.image_masks, chunks):
-            yield from result
+    yield from _qr.stream(texts, workers=workers, chunk=CHUNK)
 
 
 def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *,
@@ -536,7 +609,7 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
         qr_place = (f"q 0 g {frame.qr_side:.3f} 0 0 {frame.qr_side:.3f} {frame.qr_x:.3f} "
                     f"{frame.qr_y:.3f} cm")
         symbols = _symbols(items, workers)
-        cache: dict[tuple[Any, ...], tuple[str, list[_Line]]] = {}
+        cache = _Cache()
         cell_index = start_at - 1
         for item in items:
             if cell_index and cell_index % geometry.per_page == 0:
@@ -547,21 +620,9 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
                 _draw_separator(canvas, item, cell, geometry)
                 continue
             x, y, _, _ = cell
-            # Every code is 10 characters of a monospaced face, so the layout
-            # depends only on the other fields: one operator template serves
-            # all labels alike, with the code filled in.
-            shape = (item.hazard, item.trial, item.lab, item.use_by, item.study, item.storage)
-            template = cache.get(shape)
-            if template is None:
-                lines, _dropped = layout(item, geometry)
-                code_lines = [ln for ln in lines if ln.font == _layout.MONO]
-                template = cache[shape] = (_text_ops(lines, frame, len(code_lines), canvas._doc,
-                                                     ink), code_lines)
-            ops, code_lines = template
-            printed = codes.format(item.code)
-            parts = (printed[:5], printed[5:]) if len(code_lines) == 2 else (printed,)
-            for mark, part, line in zip(_CODE_MARK, parts, code_lines):
-                ops = ops.replace(mark, _shown(part, line.font, line.size, canvas._doc))
+            lines, _dropped = layout(item, geometry, cache=cache)
+            code_count = sum(1 for ln in lines if ln.font == _layout.MONO)
+            ops = _text_ops(lines, frame, code_count, canvas._doc, ink, cache)
             canvas.addLiteral(f"q 1 0 0 1 {x:.2f} {y:.2f} cm {qr_place} {next(symbols)} Q "
                               f"{ops} Q")
         canvas.showPage()

@@ -19,6 +19,11 @@ with its full fingerprint, the assigned values, the laboratory's scores with
 their bands, its results unit by unit, a chart of everyone's scores with its
 own marked, and for rounds of up to ``TABLE_LABS`` participants a table of the
 others' scores by participant code.
+
+A study with several measurands gets one letter per laboratory all the same: after
+the key, a table of its scores by measurand, then the parts from its scores on once
+per measurand under the measurand's heading. A study in the single-measurand form
+reads as it always has, without measurand headings.
 """
 
 from __future__ import annotations
@@ -33,12 +38,14 @@ from typing import TYPE_CHECKING, Any
 
 from planner import codes, language
 from planner.render import _layout
+from planner.results import SHORTHAND_ID, is_shorthand, measurand_ids, measurand_view
 
 if TYPE_CHECKING:
     from planner.language import Texts
     from planner.results import Unblinded
 
-__all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "anonymous_view"]
+__all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "anonymous_view",
+           "anonymous_views"]
 
 TABLE_LABS = 40
 """Largest round whose letters list every other participant's scores in a table."""
@@ -66,11 +73,19 @@ def _num(v: Any, digits: int = 4, comma: bool = False) -> str:
     return text.replace(".", ",") if comma else text
 
 
-def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
-    """Return what every letter shares: per material the scores under participant codes.
+def anonymous_views(statistics: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
+    """Return ``anonymous_view`` of each measurand of a round's statistics, by measurand id."""
+    return {mid: anonymous_view(measurand_view(statistics, mid))
+            for mid in measurand_ids(statistics)}
 
-    ``{"codes": [participant codes sorted], "materials": {m: {"name": "z" or "z'",
-    "scores": {code: score}}}}``; no laboratory id appears in it.
+
+def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
+    """Return what every letter shares of one measurand: per material the scores under
+    participant codes.
+
+    ``statistics`` is one measurand's view (``results.measurand_view``). ``{"codes":
+    [participant codes sorted], "materials": {m: {"name": "z" or "z'", "scores": {code:
+    score}}}}``; no laboratory id appears in it.
     """
     codes_of = statistics["participants"]
     out: dict[str, Any] = {"codes": sorted(codes_of.values()), "materials": {}}
@@ -92,12 +107,72 @@ def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Addressee,
-           view: Mapping[str, Any], paper: str, t: Texts) -> list[Any]:
+           views: Mapping[str, Mapping[str, Any]], paper: str, t: Texts) -> list[Any]:
+    from reportlab.platypus import Paragraph, Spacer
+
+    shorthand = is_shorthand(statistics)
+    s = measurand_view(statistics, SHORTHAND_ID) if shorthand else statistics
+    st = _layout.styles()
+    esc = _layout.escape
+    n_labs = len(s["participants"])
+
+    section, overview, results = _parts(s, to, paper, t)
+
+    address = "<br/>".join(esc(line) for line in (to.name, *to.address))
+    story: list[Any] = [
+        Paragraph(esc(t("letter.title")), st["title"]),
+        Paragraph(address + ("<br/>" + t.markup("letter.attn", contact=to.contact)
+                             if to.contact else ""), st["body"]),
+        Spacer(1, 4 * _MM),
+        Paragraph(t.markup("letter.lead", title=s["title"], round=s["round"], labs=n_labs,
+                           materials=len(s["materials"]), trials=s["trials"],
+                           measurand=s["measurand"], unit=s["unit"], lab=to.lab,
+                           you=t("letter.you")) if shorthand else
+                  t.markup("letter.lead_measurands", title=s["title"], round=s["round"],
+                           labs=n_labs, materials=len({m for b in s["measurands"].values()
+                                                       for m in b.get("measured_on", ())}),
+                           trials=s["trials"], count=len(s["measurands"]),
+                           measurands=t("common.semicolon").join(
+                               t("letter.measurand_item", measurand=mid, name=b["name"],
+                                 unit=b["unit"]) for mid, b in s["measurands"].items()),
+                           lab=to.lab, you=t("letter.you")), st["lead"]),
+    ]
+    if to.lab == s["host"]:
+        story.append(Paragraph(t.markup("letter.in_house"), st["body"]))
+    story += _key_section(s, to, t)
+    if shorthand:
+        story += section(s, rows, views[SHORTHAND_ID])
+    else:
+        story += overview(statistics)
+        heading = _measurand_style()
+        for mid in measurand_ids(statistics):
+            sv = measurand_view(statistics, mid)
+            story.append(Paragraph(esc(t("letter.measurand_heading", measurand=mid,
+                                         name=sv["measurand"], unit=sv["unit"])), heading))
+            story += section(sv, [r for r in rows if r.measurand == mid], views[mid],
+                             own_results=False)
+        story += results(statistics, rows)
+    story.append(Spacer(1, 4 * _MM))
+    story.append(Paragraph(t.markup("letter.issued", organiser=s.get("organiser")
+                                    or t("letter.coordinator")), st["small"]))
+    return story
+
+
+def _measurand_style() -> Any:
+    """The style of a measurand's heading in a letter: above the sections' headings."""
+    from reportlab.lib.styles import ParagraphStyle
+
+    return ParagraphStyle("measurand", parent=_layout.styles()["h2"], fontSize=13.5,
+                          leading=17, spaceBefore=10)
+
+
+def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
+    """Return the functions that write a letter's parts: ``part`` (one measurand's scores,
+    results and standing) and ``overview`` (the scores by measurand)."""
     from reportlab.platypus import KeepTogether, Paragraph, Spacer
 
     from planner.render import _charts
 
-    s = statistics
     st = _layout.styles()
     esc = _layout.escape
     width = _layout.content_width(paper)
@@ -118,7 +193,9 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
             ("ALIGN", (right_from, 0), (-1, -1), "RIGHT"),
             ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
             *extra])
-        return _layout.table([head, *data[1:]], widths, style, repeatRows=1)
+        from planner.render import _tables
+
+        return _tables.table([head, *data[1:]], widths, style, repeatRows=1)
 
     def _head(text: Any, column: float) -> Any:
         from reportlab.lib.colors import HexColor
@@ -145,151 +222,240 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
     def band_word(band: str | None) -> str:
         return t(f"letter.band.{band}") if f"letter.band.{band}" in t.entries else (band or "-")
 
-    address = "<br/>".join(esc(line) for line in (to.name, *to.address))
-    story: list[Any] = [
-        Paragraph(esc(t("letter.title")), st["title"]),
-        Paragraph(address + ("<br/>" + t.markup("letter.attn", contact=to.contact)
-                             if to.contact else ""), st["body"]),
-        Spacer(1, 4 * _MM),
-        Paragraph(t.markup("letter.lead", title=s["title"], round=s["round"], labs=n_labs,
-                           materials=len(s["materials"]), trials=s["trials"],
-                           measurand=s["measurand"], unit=s["unit"], lab=to.lab,
-                           you=t("letter.you")), st["lead"]),
-    ]
-    if in_house:
-        story.append(Paragraph(t.markup("letter.in_house"), st["body"]))
-    story += _key_section(s, to, t)
-    mine = {m: s["scores"].get(m, {}).get("labs", {}).get(to.lab) for m in s["materials"]}
-    own_rows = [r for r in rows if r.lab == to.lab]
-    scored = any(r.value is not None for r in own_rows)
-    if not scored:
-        # Nothing to score: say so in words, not with a table of dashes or "0 of 0".
-        text = t("letter.no_values") if own_rows else t("letter.no_results")
-        story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
-                  Paragraph(f"<b>{esc(text)}</b>", st["body"])]
-    else:
-        story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
-                  Paragraph(esc(_verdict(s, mine, t, comma)), st["body"]), Spacer(1, 2 * _MM)]
-    has_en = any(e and e.get("En") is not None for e in mine.values())
-    head = [t("letter.col_material"), "x_pt", "u(x_pt)", "sigma_pt", t("letter.col_mean"),
-            "D%", t("letter.col_score")] + (["En"] if has_en else []) + [t("letter.col_band")]
-    data: list[list[Any]] = [head]
-    cells = []
-    for m in s["materials"]:
-        sc = s["scores"].get(m, {})
-        e = mine.get(m)
-        if not e:
-            data.append([m, n(sc.get("assigned_value")), "-", "-", t("letter.no_result"), "-",
-                         "-"] + (["-"] if has_en else []) + ["-"])
-            continue
-        zp = bool(sc.get("use_z_prime"))
-        score = e.get("z_prime") if zp else e.get("z")
-        dp = e.get("D_percent")
-        if e.get("reference"):
-            shown, band = band_word("reference"), band_word("reference")
-        elif sc.get("banded"):
-            shown = f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}"
-            band = band_word(e.get("band")) if e.get("band") else "-"
+    said: set[str] = set()  # notes a letter gives once, under its first measurand
+
+    def overview(statistics: Mapping[str, Any]) -> list[Any]:
+        """The laboratory's scores by measurand: how many carry a band, how many are
+        satisfactory, on which materials it is outside the band."""
+        from reportlab.lib.styles import ParagraphStyle
+
+        right = ParagraphStyle("cell8r", parent=st["cell"], fontSize=8, leading=9.6,
+                               alignment=2)
+        data: list[list[Any]] = [[t("letter.col_measurand"), t("letter.col_banded"),
+                                  t("letter.band.satisfactory"), t("letter.col_outside")]]
+        cells = []
+        for mid in measurand_ids(statistics):
+            sv = measurand_view(statistics, mid)
+            mine = {m: sv["scores"].get(m, {}).get("labs", {}).get(to.lab)
+                    for m in sv["materials"]}
+            banded = {m: e for m, e in mine.items() if e and not e.get("reference")
+                      and sv["scores"][m].get("banded")}
+            outside = [m for m, e in banded.items()
+                       if e.get("band") in ("questionable", "unsatisfactory")
+                       or e.get("en_band") == "unsatisfactory"]
+            good = sum(e.get("band") == "satisfactory" for e in banded.values())
+            # The id and unit; the measurand's heading below gives its name. A list of
+            # materials wraps when it is long.
+            listed = ", ".join(outside) or "-"
+            data.append([f"{mid} [{sv['unit']}]",
+                         f"{len(banded)} / {len(sv.get('measured_on') or sv['materials'])}",
+                         str(good) if banded else "-",
+                         Paragraph(esc(listed), right) if len(listed) > 40 else listed])
+            if outside:
+                worst = ("unsatisfactory" if any(banded[m].get("band") == "unsatisfactory"
+                                                 or banded[m].get("en_band") == "unsatisfactory"
+                                                 for m in outside) else "questionable")
+                cells.append((3, len(data) - 1, worst))
+        return [Paragraph(esc(t("letter.overview_heading")), st["h2"]),
+                table(data, [150, 60, 80, 190], [*bands(cells),
+                                                  ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                                                  ("ALIGN", (0, 0), (0, -1), "LEFT")]),
+                Paragraph(esc(t("letter.overview_note")), st["small"])]
+
+    def section(s: Mapping[str, Any], rows: Sequence[Unblinded],
+                view: Mapping[str, Any], own_results: bool = True) -> list[Any]:
+        """One measurand's part of the letter: scores, results (unless ``own_results`` is
+        False: a letter of several measurands lists them once, in ``results``), where the
+        laboratory stands."""
+        story: list[Any] = []
+        mine = {m: s["scores"].get(m, {}).get("labs", {}).get(to.lab) for m in s["materials"]}
+        own_rows = [r for r in rows if r.lab == to.lab]
+        scored = any(r.value is not None for r in own_rows)
+        if not scored:
+            # Nothing to score: say so in words, not with a table of dashes or "0 of 0".
+            text = t("letter.no_values") if own_rows else t("letter.no_results")
+            story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
+                      Paragraph(f"<b>{esc(text)}</b>", st["body"])]
         else:
-            shown, band = "-", t("letter.no_band")
-        row = [m, n(sc.get("assigned_value")), n(sc.get("u_assigned_value"), 3),
-               n(sc.get("sigma_pt"), 3), n(e.get("mean")),
-               (f"{dp:+.1f}".replace(".", ",") if comma else f"{dp:+.1f}") if dp is not None
-               else "-", shown]
-        if has_en:
-            row.append(n(e.get("En"), 3))
-        row.append(band)
-        data.append(row)
-        cells.append((len(head) - 1, len(data) - 1, e.get("band")))
-        if has_en and e.get("en_band") == "unsatisfactory":
-            cells.append((len(head) - 2, len(data) - 1, "unsatisfactory"))
-    if scored:
-        story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
-                           bands(cells)))
-        story.append(Paragraph(esc(_method_note(s, in_house, n, t, comma)), st["small"]))
-
-    # The laboratory's own results, unit by unit.
-    trials = int(s["trials"])
-    own: dict[str, dict[int, Unblinded]] = {}
-    for r in rows:
-        if r.lab == to.lab:
-            own.setdefault(r.material, {})[r.trial] = r
-    data = [[t("letter.col_material")] + [h for i in range(1, trials + 1)
-                                          for h in (t("letter.col_trial", trial=i),
-                                                    t("letter.col_unit"))]]
-    notes: list[str] = []
-    for m in s["materials"]:
-        cells_m = own.get(m, {})
-        row = [m]
-        for i in range(1, trials + 1):
-            r = cells_m.get(i)
-            if r is None:
-                row += ["-", ""]
+            story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
+                      Paragraph(esc(_verdict(s, mine, t, comma)), st["body"]), Spacer(1, 2 * _MM)]
+        has_en = any(e and e.get("En") is not None for e in mine.values())
+        head = [t("letter.col_material"), "x_pt", "u(x_pt)", "sigma_pt", t("letter.col_mean"),
+                "D%", t("letter.col_score")] + (["En"] if has_en else []) + [t("letter.col_band")]
+        data: list[list[Any]] = [head]
+        cells = []
+        for m in s["materials"]:
+            sc = s["scores"].get(m, {})
+            e = mine.get(m)
+            if not e:
+                data.append([m, n(sc.get("assigned_value")), "-", "-", t("letter.no_result"), "-",
+                             "-"] + (["-"] if has_en else []) + ["-"])
                 continue
-            value = n(r.value) if r.value is not None else t("letter.no_value")
-            if r.uncertainty is not None:
-                value += f" ± {n(r.uncertainty, 3)}"
-            # Plain strings, not Paragraphs: a big round makes hundreds of these letters.
-            row += [value, codes.format(r.code)]
-            extra = [t(f"letter.flag.{f}") if f"letter.flag.{f}" in t.entries else f
-                     for f in r.flags if f != "in-house"]
-            if extra:
-                notes.append(t("letter.flag_item", material=m, trial=i, flags=", ".join(extra)))
-        data.append(row)
-    tw = min(62.0, (width - 70) / max(trials, 1) - 58)
-    mono = [("FONT", (c, 1), (c, -1), _layout.MONO_REGULAR, 7) for c in range(2, 2 * trials + 1, 2)]
-    align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
-    if own_rows:
-        story += [Paragraph(esc(t("letter.results_heading")), st["h2"]),
-                  table(data, [70] + [tw, 58] * trials, mono + align)]
-    if notes:
-        story.append(Paragraph(t.markup("letter.flags", flags=t("common.semicolon").join(notes)),
-                               st["small"]))
+            zp = bool(sc.get("use_z_prime"))
+            score = e.get("z_prime") if zp else e.get("z")
+            dp = e.get("D_percent")
+            if e.get("reference"):
+                shown, band = band_word("reference"), band_word("reference")
+            elif sc.get("banded"):
+                shown = f"{'z' + chr(39) if zp else 'z'} = {n(score, 3)}"
+                band = band_word(e.get("band")) if e.get("band") else "-"
+            else:
+                shown, band = "-", t("letter.no_band")
+            row = [m, n(sc.get("assigned_value")), n(sc.get("u_assigned_value"), 3),
+                   n(sc.get("sigma_pt"), 3), n(e.get("mean")),
+                   (f"{dp:+.1f}".replace(".", ",") if comma else f"{dp:+.1f}") if dp is not None
+                   else "-", shown]
+            if has_en:
+                row.append(n(e.get("En"), 3))
+            row.append(band)
+            data.append(row)
+            cells.append((len(head) - 1, len(data) - 1, e.get("band")))
+            if has_en and e.get("en_band") == "unsatisfactory":
+                cells.append((len(head) - 2, len(data) - 1, "unsatisfactory"))
+        if scored:
+            story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
+                               bands(cells)))
+            # The rules of the bands are the same for every measurand: said once a letter.
+            story.append(Paragraph(esc(_method_note(s, in_house, n, t, comma,
+                                                    rules="rules" not in said)), st["small"]))
+            said.add("rules")
 
-    # Everyone's scores, the own marked; then the others by participant code.
-    strip_rows = []
-    for m in s["materials"]:
-        mv = view["materials"].get(m)
-        if not mv:
-            continue
-        strip_rows.append((m, mv["all"], mv["scores"].get(me)))
-    if strip_rows and scored:
-        name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
-        note = (t.markup("letter.stand_note_bars", step=n(0.25))
-                if n_labs > _charts.MAX_LABELS else t.markup("letter.stand_note"))
-        story.append(KeepTogether([
-            Paragraph(esc(t("letter.stand_heading")), st["h2"]),
-            Paragraph(note, st["small"]),
-            _charts.StripChart(strip_rows, width=width, score_name=name,
-                               cache=view.get("cache")),
-        ]))
-    if n_labs <= TABLE_LABS and view["materials"]:
-        mats = [m for m in s["materials"] if m in view["materials"]]
-        for start in range(0, len(mats), 8):
-            part = mats[start:start + 8]
-            data = [[t("letter.col_participant")]
-                    + [m + ("'" if view["materials"][m]["name"] == "z'" else "") for m in part]]
-            cells = []
-            for i, code in enumerate(view["codes"], start=1):
-                row = [t("letter.you") if code == me else code]
-                for j, m in enumerate(part, start=1):
-                    v = view["materials"][m]["scores"].get(code)
-                    row.append("-" if v is None else n(round(v, 2), 3))
-                    cells.append((j, i, view["materials"][m]["bands"].get(code)))
+        # The laboratory's own results, unit by unit.
+        trials = int(s["trials"])
+        own: dict[str, dict[int, Unblinded]] = {}
+        for r in rows:
+            if r.lab == to.lab:
+                own.setdefault(r.material, {})[r.trial] = r
+        data = [[t("letter.col_material")] + [h for i in range(1, trials + 1)
+                                              for h in (t("letter.col_trial", trial=i),
+                                                        t("letter.col_unit"))]]
+        notes: list[str] = []
+        for m in s["materials"]:
+            cells_m = own.get(m, {})
+            row = [m]
+            for i in range(1, trials + 1):
+                r = cells_m.get(i)
+                if r is None:
+                    row += ["-", ""]
+                    continue
+                value = n(r.value) if r.value is not None else t("letter.no_value")
+                if r.uncertainty is not None:
+                    value += f" ± {n(r.uncertainty, 3)}"
+                # Plain strings, not Paragraphs: a big round makes hundreds of these letters.
+                row += [value, codes.format(r.code)]
+                extra = [t(f"letter.flag.{f}") if f"letter.flag.{f}" in t.entries else f
+                         for f in r.flags if f != "in-house"]
+                if extra:
+                    notes.append(t("letter.flag_item", material=m, trial=i, flags=", ".join(extra)))
+            data.append(row)
+        tw = min(62.0, (width - 70) / max(trials, 1) - 58)
+        mono = [("FONT", (c, 1), (c, -1), _layout.MONO_REGULAR, 7)
+                for c in range(2, 2 * trials + 1, 2)]
+        align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
+        if own_rows and own_results:
+            story += [Paragraph(esc(t("letter.results_heading")), st["h2"]),
+                      table(data, [70] + [tw, 58] * trials, mono + align)]
+        if notes and own_results:
+            story.append(Paragraph(t.markup("letter.flags",
+                                            flags=t("common.semicolon").join(notes)),
+                                   st["small"]))
+
+        # Everyone's scores, the own marked; then the others by participant code.
+        strip_rows = []
+        for m in s["materials"]:
+            mv = view["materials"].get(m)
+            if not mv:
+                continue
+            strip_rows.append((m, mv["all"], mv["scores"].get(me)))
+        if strip_rows and scored:
+            name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
+            note = (t.markup("letter.stand_note_bars", step=n(0.25))
+                    if n_labs > _charts.MAX_LABELS else t.markup("letter.stand_note"))
+            story.append(KeepTogether([
+                Paragraph(esc(t("letter.stand_heading")), st["h2"]),
+                *([Paragraph(note, st["small"])] if "stand" not in said else []),
+                _charts.StripChart(strip_rows, width=width, score_name=name,
+                                   cache=view.get("cache")),
+            ]))
+            said.add("stand")
+        if n_labs <= TABLE_LABS and view["materials"]:
+            mats = [m for m in s["materials"] if m in view["materials"]]
+            for start in range(0, len(mats), 8):
+                part = mats[start:start + 8]
+                data = [[t("letter.col_participant")]
+                        + [m + ("'" if view["materials"][m]["name"] == "z'" else "") for m in part]]
+                cells = []
+                for i, code in enumerate(view["codes"], start=1):
+                    row = [t("letter.you") if code == me else code]
+                    for j, m in enumerate(part, start=1):
+                        v = view["materials"][m]["scores"].get(code)
+                        row.append("-" if v is None else n(round(v, 2), 3))
+                        cells.append((j, i, view["materials"][m]["bands"].get(code)))
+                    data.append(row)
+                extra = bands(cells)
+                if me in view["codes"]:
+                    r_me = view["codes"].index(me) + 1
+                    extra.append(("FONT", (0, r_me), (-1, r_me), _layout.BOLD, 8))
+                block = [table(data, [70] + [min(52.0, (width - 70) / len(part))] * len(part),
+                               extra)]
+                if start == 0:
+                    block = [Paragraph(esc(t("letter.all_heading")), st["h2"]),
+                             Paragraph(esc(t("letter.all_note")), st["small"])] + block
+                story.append(KeepTogether(block))
+        return story
+
+    def results(statistics: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[Any]:
+        """The laboratory's own results of every measurand, a line per unit as on its form
+        (material, trial, unit code, then a column per measurand; at most ``_PER_TABLE``
+        measurands to a table)."""
+        ids = measurand_ids(statistics)
+        blocks = statistics["measurands"]
+        by_unit: dict[tuple[str, int], dict[str, Unblinded]] = {}
+        for r in rows:
+            if r.lab == to.lab:
+                by_unit.setdefault((r.material, r.trial), {})[r.measurand] = r
+        if not by_unit:
+            return []
+        rank = {m: i for i, m in enumerate(dict.fromkeys(
+            m for b in blocks.values() for m in b.get("measured_on") or b.get("materials", ())))}
+        units = sorted(by_unit, key=lambda k: (rank.get(k[0], len(rank)), k[0], k[1]))
+        notes: list[str] = []
+        for material, trial in units:
+            first = next(iter(by_unit[material, trial].values()))
+            extra = [t(f"letter.flag.{f}") if f"letter.flag.{f}" in t.entries else f
+                     for f in first.flags if f != "in-house"]
+            if extra:
+                notes.append(t("letter.flag_item", material=material, trial=trial,
+                               flags=", ".join(extra)))
+        story: list[Any] = [Paragraph(esc(t("letter.results_heading")), st["h2"])]
+        for start in range(0, len(ids), _PER_TABLE):
+            part = ids[start:start + _PER_TABLE]
+            data: list[list[Any]] = [[t("letter.col_material"), t("letter.col_trial_short"),
+                                      t("letter.col_unit")]
+                                     + [f"{mid} [{blocks[mid]['unit']}]" for mid in part]]
+            for material, trial in units:
+                got = by_unit[material, trial]
+                row = [material, str(trial), codes.format(next(iter(got.values())).code)]
+                for mid in part:
+                    r = got.get(mid)
+                    if r is None:
+                        row.append("-")  # not measured on this material
+                        continue
+                    value = n(r.value) if r.value is not None else t("letter.no_value")
+                    if r.uncertainty is not None:
+                        value += f" ± {n(r.uncertainty, 3)}"
+                    row.append(value)
                 data.append(row)
-            extra = bands(cells)
-            if me in view["codes"]:
-                r_me = view["codes"].index(me) + 1
-                extra.append(("FONT", (0, r_me), (-1, r_me), _layout.BOLD, 8))
-            block = [table(data, [70] + [min(52.0, (width - 70) / len(part))] * len(part), extra)]
-            if start == 0:
-                block = [Paragraph(esc(t("letter.all_heading")), st["h2"]),
-                         Paragraph(esc(t("letter.all_note")), st["small"])] + block
-            story.append(KeepTogether(block))
-    story.append(Spacer(1, 4 * _MM))
-    story.append(Paragraph(t.markup("letter.issued", organiser=s.get("organiser")
-                                    or t("letter.coordinator")), st["small"]))
-    return story
+            story.append(table(data, [62, 34, 62] + [(width - 158) / len(part)] * len(part),
+                               [("FONT", (2, 1), (2, -1), _layout.MONO_REGULAR, 7),
+                                ("ALIGN", (2, 0), (2, -1), "LEFT")], right_from=1))
+        story.append(Paragraph(esc(t("letter.results_note")), st["small"]))
+        if notes:
+            story.append(Paragraph(t.markup("letter.flags",
+                                            flags=t("common.semicolon").join(notes)), st["small"]))
+        return story
+
+    return section, overview, results
 
 
 def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
@@ -333,13 +499,18 @@ def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
         Paragraph(esc(t("letter.key_heading")), st["h2"]),
         Paragraph(text, st["body"]),
         Spacer(1, 1.5 * _MM),
-        Paragraph(t.markup("letter.fingerprint_handover" if "drift" in s
+        Paragraph(t.markup("letter.fingerprint_handover" if _circulating(s)
                            else "letter.fingerprint_packing", fingerprint=language.Markup(
             mono.format(esc(_layout.grouped_fingerprint(s["fingerprint"]))))), st["body"]),
         *([Paragraph(t.markup("letter.ledger", link=s["ledger"]["link"], head=language.Markup(
             mono.format(esc(_layout.grouped_fingerprint(s["ledger"]["head"]))))), st["small"])]
           if s.get("ledger") else []),
     ]
+
+
+def _circulating(s: Mapping[str, Any]) -> bool:
+    """Return whether the round was a circulating set (its statistics hold a drift check)."""
+    return "drift" in s or any("drift" in b for b in (s.get("measurands") or {}).values())
 
 
 def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any], t: Texts, comma: bool) -> str:
@@ -373,10 +544,17 @@ def _verdict(s: Mapping[str, Any], mine: Mapping[str, Any], t: Texts, comma: boo
     return " ".join(parts)
 
 
-def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: bool) -> str:
+def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: bool, *,
+                 rules: bool = True) -> str:
     st = s["settings"]
-    parts = [t("letter.x_pt_reference") if st["assigned_value"] == "reference"
-             else t("letter.x_pt_consensus")]
+    parts = ([] if st["assigned_value"] == "known" else
+             [t("letter.x_pt_reference") if st["assigned_value"] == "reference"
+              else t("letter.x_pt_consensus")])
+    known = st.get("known_values") or {}
+    if known:
+        parts.append(t("letter.x_pt_known", values=t("common.semicolon").join(
+            f"{m} {n(k['value'])} (u = {n(k['u'], 3)}"
+            + (f", {k['source']}" if k.get("source") else "") + ")" for m, k in known.items())))
     policies = {m: _reworded(str(v), "letter.policy", t, comma)
                 for m, v in (st.get("sigma_pt") or {}).items()}
     kinds = list(dict.fromkeys(policies.values()))
@@ -385,7 +563,8 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: 
     elif kinds:
         parts.append(t("letter.sigma_pt", policy=t("common.semicolon").join(
             f"{m}: {v}" for m, v in policies.items())))
-    parts.append(t("letter.rules", ratio=n(0.3)))
+    if rules:
+        parts.append(t("letter.rules", ratio=n(0.3)))
     # Only the host's own letter gives the consensus without the host: in anyone else's,
     # leaving out each participant code in turn and recomputing would single the host out.
     diffs = []
@@ -399,6 +578,7 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: 
 
 
 _PAD = 8.0  # a table cell's padding, both sides (_layout.table_style)
+_PER_TABLE = 4  # measurands to a table of a laboratory's own results, so that they fit
 
 
 def _fit_columns(data: Sequence[Sequence[Any]], widths: Sequence[float], room: float
@@ -411,8 +591,17 @@ def _fit_columns(data: Sequence[Sequence[Any]], widths: Sequence[float], room: f
     """
     from reportlab.pdfbase.pdfmetrics import stringWidth
 
+    # While render_all makes many letters in one set of fonts, the widths of the texts
+    # that recur (numbers, band words, headings) are measured once.
+    known: dict[tuple[str, str], float] = _SHARED.get("widths", {})
+
     def wide(text: str, font: str) -> float:
-        return stringWidth(text, font, 8) + _PAD + 1
+        got = known.get((text, font))
+        if got is None:
+            if len(known) > 20_000:  # a laboratory's own numbers recur in no other letter
+                known.clear()
+            got = known[(text, font)] = stringWidth(text, font, 8) + _PAD + 1
+        return got
 
     least, most = [], []
     for i, given in enumerate(widths):
@@ -437,17 +626,36 @@ def _reworded(text: str, section: str, t: Texts, comma: bool) -> str:
     """Return a sentence the evaluation wrote in English (statistics.json) in the words of
     ``t``: matched against the English texts of ``section``, its values carried over (with a
     decimal comma if the laboratory writes one); ``text`` itself if no text matches."""
-    english = language.texts()
-    for key, template in english.entries.items():
-        if not key.startswith(section + "."):
-            continue
-        found = _pattern(template).fullmatch(text)
+    # The same few sentences recur on every material of every letter: remember them, for
+    # the texts of a language file (a Texts made otherwise is not remembered).
+    known = t is language.texts(t.code)
+    memo = (text, section, t.code, comma)
+    if known and memo in _REWORDED:
+        return _REWORDED[memo]
+    out = text
+    for key, pattern in _section_patterns(section):
+        found = pattern.fullmatch(text)
         if found is None:
             continue
         values = {name: (value.replace(".", ",") if comma and _NUMBER.fullmatch(value)
                          else value) for name, value in found.groupdict().items()}
-        return t(key, **values)
-    return text
+        out = t(key, **values)
+        break
+    if known:
+        if len(_REWORDED) > 4096:  # a long-lived process: keep it small
+            _REWORDED.clear()
+        _REWORDED[memo] = out
+    return out
+
+
+_REWORDED: dict[tuple[str, str, str, bool], str] = {}
+
+
+@cache
+def _section_patterns(section: str) -> tuple[tuple[str, re.Pattern[str]], ...]:
+    """Return the keys of the English texts of ``section`` with their patterns."""
+    return tuple((key, _pattern(template)) for key, template in language.texts().entries.items()
+                 if key.startswith(section + "."))
 
 
 @cache
@@ -462,14 +670,16 @@ def _pattern(template: str) -> re.Pattern[str]:
 
 
 def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
-           addressee: Addressee, *, paper: str, view: Mapping[str, Any] | None = None) -> Path:
+           addressee: Addressee, *, paper: str,
+           views: Mapping[str, Mapping[str, Any]] | None = None) -> Path:
     """Write the letter to ``addressee`` to ``path`` on ``paper``; return ``path``.
 
-    ``view`` is ``anonymous_view(statistics)``, computed once when many letters are made.
+    ``statistics`` is statistics.json (format ``ringplan-statistics/3``); ``views`` is
+    ``anonymous_views(statistics)``, computed once when many letters are made.
     """
     s = statistics
     t = language.texts(addressee.language)
-    story = _story(s, rows, addressee, view or anonymous_view(s), paper, t)
+    story = _story(s, rows, addressee, views or anonymous_views(s), paper, t)
     running = _layout.Running(s["study"], s["title"], s["round"],
                               t("letter.running", lab=addressee.lab),
                               t("letter.confidential", name=addressee.name),
@@ -494,14 +704,20 @@ def _init(statistics: Mapping[str, Any], rows_by_lab: Mapping[str, Sequence[Unbl
         # The pure-Python ASCII85 encoder costs a sixth of a letter's time, and the
         # files get smaller; every PDF reader takes either.
         rl_config.useA85 = 0
+        import gc
+
+        # What the worker inherited (the statistics, every result) is read, never freed
+        # here: keep it out of the garbage collector's passes, which would otherwise walk
+        # it, and copy its pages from the parent, again and again.
+        gc.freeze()
     _SHARED.update(statistics=statistics, rows=rows_by_lab, paper=paper,
-                   view=anonymous_view(statistics))
+                   views=anonymous_views(statistics), widths={})
 
 
 def _one(job: tuple[Path, Addressee]) -> Path:
     path, to = job
     return render(path, _SHARED["statistics"], _SHARED["rows"].get(to.lab, ()), to,
-                  paper=_SHARED["paper"], view=_SHARED["view"])
+                  paper=_SHARED["paper"], views=_SHARED["views"])
 
 
 def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],

@@ -21,6 +21,12 @@ unblinded results; it computes nothing itself, it only arranges. Sections:
    variance, the average-and-range method
 6. the results as reported (up to ``DETAIL_LABS`` laboratories) and methods
 
+A study with several measurands (``measurands:`` in the spec) gets, after the
+round's facts, a summary table across the measurands and what stands out in
+each, then sections 1 to 6 once per measurand under its own heading (each
+section title starts with the measurand's id), and the methods at the end. A
+study in the single-measurand form reads as it always has: no measurand headings.
+
 This report names the laboratories; what goes to a participant is its letter.
 """
 
@@ -32,6 +38,7 @@ from typing import TYPE_CHECKING, Any
 
 from planner import codes
 from planner.render import _layout
+from planner.results import SHORTHAND_ID, is_shorthand, measurand_ids, measurand_view
 
 if TYPE_CHECKING:
     from planner.results import Unblinded
@@ -70,17 +77,24 @@ def score_of(sc: Mapping[str, Any], lab: str) -> tuple[float | None, str]:
 
 def spread(rows: Sequence[Unblinded]) -> dict[tuple[str, str], tuple[float, float]]:
     """Return, per (material, lab), the lowest and highest result (or mean ± U for one result)."""
-    acc: dict[tuple[str, str], list[Unblinded]] = {}
+    acc: dict[tuple[str, str], list[float]] = {}
+    first_u: dict[tuple[str, str], float | None] = {}
     for r in rows:
         if r.value is not None:
-            acc.setdefault((r.material, r.lab), []).append(r)
+            key = (r.material, r.lab)
+            vals = acc.get(key)
+            if vals is None:
+                acc[key] = [r.value]
+                first_u[key] = r.uncertainty
+            else:
+                vals.append(r.value)
     out = {}
-    for k, rs in acc.items():
-        vals = [r.value for r in rs if r.value is not None]
-        if len(vals) == 1 and rs[0].uncertainty is not None:
-            out[k] = (vals[0] - rs[0].uncertainty, vals[0] + rs[0].uncertainty)
+    for key, vals in acc.items():
+        u = first_u[key]
+        if len(vals) == 1 and u is not None:
+            out[key] = (vals[0] - u, vals[0] + u)
         else:
-            out[k] = (min(vals), max(vals))
+            out[key] = (min(vals), max(vals))
     return out
 
 
@@ -237,7 +251,9 @@ class _Doc:
             ("ALIGN", (right_from, 0), (-1, -1), "RIGHT"),
             ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
             *extra])
-        return _layout.table(rows, [w * scale for w in widths], style, repeatRows=repeat)
+        from planner.render import _tables
+
+        return _tables.table(rows, [w * scale for w in widths], style, repeatRows=repeat)
 
 
 def _band_cells(cells: Sequence[tuple[int, int, str | None]]) -> list[tuple[Any, ...]]:
@@ -253,20 +269,13 @@ def _band_cells(cells: Sequence[tuple[int, int, str | None]]) -> list[tuple[Any,
     return out
 
 
-def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+def _front(d: _Doc, s: Mapping[str, Any], lead: str) -> list[Any]:
+    """The title, the lead paragraph, how the key was opened, its fingerprint, the ledger."""
     from reportlab.platypus import Spacer
 
-    esc = _layout.escape
-    host = s["host"]
-    # Every laboratory of the round, those without results too (they are named below).
-    n_labs, n_mat = len(s["results"]["per_lab"]) or len(s["labs"]), len(s["materials"])
-    res = s["results"]
-    story: list[Any] = [
+    return [
         d.p("Round report", "title"),
-        d.p(f"<b>{esc(s['title'])}</b>. Round {esc(s['round'])}, {n_labs} laboratories, "
-            f"{n_mat} materials, {s['trials']} trials each; {res['count']} results evaluated. "
-            f"Measurand: {esc(s['measurand'])}, in {esc(s['unit'])}. Host: <b>{esc(host)}</b>; "
-            "its results are marked <i>in-house</i> because it prepared the material.", "lead"),
+        d.p(lead, "lead"),
         d.p(_opening_text(s)),
         Spacer(1, 1.5 * _MM),
         d.p(f"Decoding key SHA-256 (equal to the fingerprint printed before shipping): "
@@ -276,8 +285,26 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
                f"{_layout.grouped_fingerprint(s['ledger']['head'])}</font>", "small")]
           if s.get("ledger") else []),
-        d.p("Summary", "h2"),
     ]
+
+
+def _lead(s: Mapping[str, Any]) -> str:
+    """The lead paragraph of a study of one measurand (mark-up)."""
+    esc = _layout.escape
+    # Every laboratory of the round, those without results too (they are named below).
+    n_labs, n_mat = len(s["results"]["per_lab"]) or len(s["labs"]), len(s["materials"])
+    return (f"<b>{esc(s['title'])}</b>. Round {esc(s['round'])}, {n_labs} laboratories, "
+            f"{n_mat} materials, {s['trials']} trials each; {s['results']['count']} results "
+            f"evaluated. Measurand: {esc(s['measurand'])}, in {esc(s['unit'])}. Host: "
+            f"<b>{esc(s['host'])}</b>; its results are marked <i>in-house</i> because it "
+            "prepared the material.")
+
+
+def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    from reportlab.platypus import Spacer
+
+    esc = _layout.escape
+    story: list[Any] = [d.p(_title(s, "Summary"), "h2")]
     story += [d.p(esc(line), "bullet") for line in summary_lines(s)]
     for text in (_flag_line(s),):
         if text:
@@ -299,8 +326,129 @@ def _summary(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                      fmt(pr.get("s_r"), 3), fmt(pr.get("s_R"), 3), *counts])
     story.append(d.table(rows, [62, 26, 46, 44, 46, 36, 42, 42, 36, 36, 44]))
     story.append(d.p(_assigned_text(s), "small"))
+    story += _tolerance_table(d, s)
     story += _without_host_table(d, s)
     return story
+
+
+def _title(s: Mapping[str, Any], text: str) -> str:
+    """Return a section title, led by the measurand's id in a study of several (mark-up)."""
+    prefix = s.get("section_prefix") or ""
+    return _layout.escape(f"{prefix}{text}")
+
+
+def _measurand_lead(statistics: Mapping[str, Any]) -> str:
+    """The lead paragraph of a study of several measurands (mark-up)."""
+    esc = _layout.escape
+    s = statistics
+    n_labs = len(s["results"]["per_lab"]) or len(s["labs"])
+    mats = {m for b in s["measurands"].values() for m in b.get("measured_on", ())}
+    listed = "; ".join(f"<b>{esc(mid)}</b> {esc(b['name'])} [{esc(b['unit'])}]"
+                       for mid, b in s["measurands"].items())
+    return (f"<b>{esc(s['title'])}</b>. Round {esc(s['round'])}, {n_labs} laboratories, "
+            f"{len(mats)} materials, {s['trials']} trials each; {s['results']['count']} "
+            f"results evaluated of {len(s['measurands'])} measurands: {listed}. Host: "
+            f"<b>{esc(s['host'])}</b>; its results are marked <i>in-house</i> because it "
+            "prepared the material.")
+
+
+def across_lines(statistics: Mapping[str, Any]) -> list[str]:
+    """Return the sentences of the summary across measurands: laboratories without results,
+    laboratories outside the satisfactory band on any measurand, measurands not computed."""
+    out: list[str] = []
+    s = statistics
+    host = s["host"]
+    silent = [lab for lab, n in s["results"].get("per_lab", {}).items() if not n]
+    if silent:
+        out.append(f"no results recorded from {', '.join(silent)}: "
+                   f"{'it has' if len(silent) == 1 else 'they have'} no scores in this round")
+    outside: dict[str, list[str]] = {}
+    for mid in measurand_ids(s):
+        view = measurand_view(s, mid)
+        for lab in view["labs"]:
+            n_out = n_all = 0
+            for m in view["materials"]:
+                e = view["scores"].get(m, {}).get("labs", {}).get(lab)
+                if not e or e.get("reference") or not view["scores"][m].get("banded"):
+                    continue
+                n_all += 1
+                n_out += (e.get("band") in ("questionable", "unsatisfactory")
+                          or e.get("en_band") == "unsatisfactory")
+            if n_out:
+                outside.setdefault(lab, []).append(f"{mid} ({n_out} of {n_all} materials)")
+    for lab, items in outside.items():
+        mark = " (host, in-house)" if lab == host else ""
+        out.append(f"{lab}{mark}: outside the satisfactory band on " + ", ".join(items))
+    for mid, block in s["measurands"].items():
+        if "skipped" in block:
+            out.append(f"{mid}: not evaluated: {block['skipped']}")
+    missing = s["results"]["missing"]
+    if missing:
+        labs = sorted({d["lab"] for d in missing})
+        out.append(f"{len(missing)} test result(s) missing, from {', '.join(labs)} "
+                   "(each measurand's summary says which)")
+    return out
+
+
+def _across(d: _Doc, statistics: Mapping[str, Any]) -> list[Any]:
+    """The summary across measurands: one row per measurand, then what stands out."""
+    from reportlab.platypus import Spacer
+
+    esc = _layout.escape
+    s = statistics
+    story: list[Any] = [d.p("Summary across measurands", "h2")]
+    head = ["measurand", "unit", "mat.", "results", "x_pt from", "banded", "satisf.",
+            "quest.", "unsatisf.", "%GRR", "ndc"]
+    rows: list[list[Any]] = [head]
+    shade: list[tuple[int, int, str | None]] = []
+    for mid in measurand_ids(s):
+        view = measurand_view(s, mid)
+        block = s["measurands"][mid]
+        st = view.get("settings") or {}
+        sources = {m: (st.get("assigned_by_material") or {}).get(m, st.get("assigned_value"))
+                   for m in block.get("measured_on", ())}
+        kinds = list(dict.fromkeys(sources.values()))
+        where = (", ".join(f"{k} ({sum(v == k for v in sources.values())})" for k in kinds)
+                 if len(kinds) > 1 else kinds[0] if kinds else "-")
+        banded = [m for m in view["materials"] if view["scores"].get(m, {}).get("banded")]
+        bands = [e.get("band") for m in banded
+                 for e in view["scores"][m].get("labs", {}).values() if not e.get("reference")]
+        counts = [bands.count(b) for b in ("satisfactory", "questionable", "unsatisfactory")]
+        ga = view.get("grr_anova") or {}
+        ok = bool(ga) and "skipped" not in ga
+        rows.append([_cell(d, f"<b>{esc(mid)}</b> {esc(block['name'])}"),
+                     _cell(d, esc(block["unit"])), len(block.get("measured_on", ())),
+                     view["results"]["count"], _cell(d, esc(where)),
+                     f"{len(banded)} of {len(view['materials'])}",
+                     *(counts if banded else ["-", "-", "-"]),
+                     fmt(ga["pct_tv"]["grr"], 3) if ok else "-",
+                     fmt(ga.get("ndc")) if ok else "-"])
+        if banded:
+            r = len(rows) - 1
+            shade += [(7, r, "questionable" if counts[1] else None),
+                      (8, r, "unsatisfactory" if counts[2] else None)]
+    story.append(d.table(rows, [96, 44, 28, 36, 70, 38, 36, 34, 42, 32, 24], right_from=5,
+                         extra=[("VALIGN", (0, 0), (-1, -1), "TOP"),
+                                ("ALIGN", (2, 0), (3, -1), "RIGHT"),
+                                *_band_cells([c for c in shade if c[2]])]))
+    story.append(d.p(esc("mat.: materials the measurand is measured on. "
+                         "x_pt from: where the assigned values come from (consensus of the "
+                         "participants, a reference laboratory, or a known value from outside "
+                         "the round). banded: materials whose z scores carry bands; the counts "
+                         "are laboratory-material scores in each band. %GRR: 100 GRR / TV of the "
+                         "gauge study (ANOVA) of the measurand."), "small"))
+    story += [d.p(esc(line), "bullet") for line in across_lines(s)]
+    story.append(Spacer(1, 2 * _MM))
+    return story
+
+
+def _cell(d: _Doc, markup: str) -> Any:
+    """A table cell that wraps its text, in the tables' 8 point."""
+    from reportlab.lib.styles import ParagraphStyle
+    from reportlab.platypus import Paragraph
+
+    return Paragraph(markup, ParagraphStyle("cell8", parent=d.st["cell"], fontSize=8,
+                                            leading=9.6))
 
 
 def _opening_text(s: Mapping[str, Any]) -> str:
@@ -327,13 +475,25 @@ def _flag_line(s: Mapping[str, Any]) -> str:
 
 def _assigned_text(s: Mapping[str, Any]) -> str:
     st = s["settings"]
-    if st["assigned_value"] == "reference":
+    known = st.get("known_values") or {}
+    if st["assigned_value"] == "known":
+        text = ""
+    elif st["assigned_value"] == "reference":
         text = (f"x_pt is the mean result of the reference laboratory {st['reference_lab']}, "
                 "which is not scored against itself; u(x_pt) from its stated uncertainty or the "
                 "scatter of its results.")
     else:
         text = ("x_pt is the robust mean of the laboratory means (Algorithm A, ISO 13528 "
                 "Annex C); u(x_pt) = 1.25 s*/sqrt(p).")
+    if known:
+        which = ("For every material" if st["assigned_value"] == "known"
+                 else "For " + ", ".join(known))
+        text += (f" {which} x_pt is a value known from outside the round (ISO 13528 §7.3-7.5), "
+                 "with its standard uncertainty u(x_pt); En uses U(x_pt) = 2 u(x_pt): "
+                 + "; ".join(f"{m} {fmt(k['value'])} (u = {fmt(k['u'], 3)}"
+                             + (f", {k['source']}" if k.get("source") else "") + ")"
+                             for m, k in known.items()) + ".")
+    text = text.strip()
     text += " " + sigma_pt_text(st.get("sigma_pt") or {})
     text += (" z' replaces z where u(x_pt) > 0.3 sigma_pt. Bands: |score| <= 2 satisfactory, "
              "2 < |score| < 3 questionable, |score| >= 3 unsatisfactory; |En| <= 1 "
@@ -351,6 +511,22 @@ def sigma_pt_text(policies: Mapping[str, str]) -> str:
     return "sigma_pt: " + "; ".join(f"{m}: {v}" for m, v in policies.items()) + "."
 
 
+def _tolerance_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    """Materials with a tolerance of their own: k GRR (pooled) and k s_R against it."""
+    own = s.get("tolerance_by_material") or {}
+    if not own:
+        return []
+    k = next(iter(own.values()))["multiplier"]
+    rows: list[list[Any]] = [["material", "tolerance", f"{k:g} GRR in % of it",
+                              f"{k:g} s_R in % of it"]]
+    for m, e in own.items():
+        rows.append([m, fmt(e["tolerance"]), fmt(e["pct_grr"], 3), fmt(e["pct_s_R"], 3)])
+    return [d.p(_title(s, "Tolerances of single materials"), "h2"),
+            d.table(rows, [80, 60, 90, 90]),
+            d.p(_layout.escape("GRR is the gauge study's, pooled over the materials; s_R is the "
+                               "material's own (ISO 5725-2)."), "small")]
+
+
 def _without_host_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     rows: list[list[Any]] = [["material", "x_pt (all)", "x_pt (without host)", "difference",
                               "in sigma_pt", f"z of {s['host']} against it"]]
@@ -366,7 +542,7 @@ def _without_host_table(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
         rows.append([m, fmt(sc.get("assigned_value")), fmt(wh["assigned_value"]),
                      fmt(wh["difference"], 3), fmt(wh["difference_in_sigma_pt"], 2),
                      fmt(wh["host_z"], 3)])
-    out: list[Any] = [d.p("Consensus without the host", "h2")]
+    out: list[Any] = [d.p(_title(s, "Consensus without the host"), "h2")]
     if len(rows) > 1:
         out.append(d.table(rows, [70, 70, 90, 64, 60, 110]))
     if notes:
@@ -439,7 +615,8 @@ def _drift(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                 width=half, height=92, centre_label="start", band_label="0.3 sigma_pt",
                 title=f"{m} ({e.get('code') or ''}): host means ± 2u [{s['unit']}]"))
     out: list[Any] = [
-        CondPageBreak((len(rows) * 5.2 + 30) * _MM), d.p("Drift of the circulating artefacts", "h2"),
+        CondPageBreak((len(rows) * 5.2 + 30) * _MM),
+        d.p(_title(s, "Drift of the circulating artefacts"), "h2"),
         d.p(esc(f"The host {drift['host']} measured the set at its stops "
                 f"{', '.join(drift['visits'])}; each later mean is compared with the first. "
                 "diff.: the stop's mean minus the start mean; limit: 0.3 sigma_pt; widened: "
@@ -466,7 +643,8 @@ def _matrix(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     from reportlab.platypus import CondPageBreak
 
     rows_high = min(len(s["labs"]), 12) * 5.2 * _MM
-    out: list[Any] = [CondPageBreak(30 * _MM + rows_high), d.p("Scores by laboratory", "h2"),
+    out: list[Any] = [CondPageBreak(30 * _MM + rows_high),
+                      d.p(_title(s, "Scores by laboratory"), "h2"),
                       d.p("The score that decides the band of each material (z, or z' where "
                           "marked in the heading); shaded sand: questionable, brick: unsatisfactory."
                           + (" A material marked D% has no band (see the summary): its "
@@ -512,7 +690,7 @@ def _material_section(d: _Doc, s: Mapping[str, Any], m: str,
     sc = s["scores"].get(m, {})
     pr = s["precision"].get(m, {})
     host = s["host"]
-    out: list[Any] = [CondPageBreak(90 * _MM), d.p(f"Material {_layout.escape(m)}", "h2")]
+    out: list[Any] = [CondPageBreak(90 * _MM), d.p(_title(s, f"Material {m}"), "h2")]
     if "skipped" in sc:
         out.append(d.p(f"Scores not computed: {_layout.escape(sc['skipped'])}", "small"))
         return out
@@ -598,7 +776,7 @@ def _precision(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
 
     from planner.render import _charts
 
-    out: list[Any] = [CondPageBreak(80 * _MM), d.p("Precision (ISO 5725-2)", "h2")]
+    out: list[Any] = [CondPageBreak(80 * _MM), d.p(_title(s, "Precision (ISO 5725-2)"), "h2")]
     rows: list[list[Any]] = [["material", "p", "mean", "s_r", "s_L", "s_R", "r", "R",
                               "Cochran C", "Grubbs high", "Grubbs low"]]
     skipped = []
@@ -654,7 +832,8 @@ def _precision(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     if grid:
         from reportlab.platypus import Table
 
-        out.append(d.p("Mandel's h and k with the 5 % and 1 % indicator lines", "h2"))
+        out.append(d.p(_title(s, "Mandel's h and k with the 5 % and 1 % indicator lines"),
+                       "h2"))
         t = Table(grid, colWidths=[half + 3, half + 3], hAlign="LEFT")
         # FONT: an empty cell still sets a font, reportlab's Helvetica unless told
         t.setStyle([("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
@@ -683,8 +862,8 @@ def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
     from reportlab.platypus import CondPageBreak
 
     out: list[Any] = [CondPageBreak(100 * _MM),
-                      d.p("Repeatability and reproducibility across laboratories "
-                          "(gauge R&amp;R)", "h2")]
+                      d.p(_title(s, "Repeatability and reproducibility across laboratories "
+                                    "(gauge R&R)"), "h2")]
     ga = s.get("grr_anova") or {"skipped": "not computed"}
     if "skipped" in ga:
         out.append(d.p(_layout.escape(f"ANOVA method not computed: {ga['skipped']}"), "body"))
@@ -703,7 +882,7 @@ def _gauge(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                                   ("all results", "tv", "TV")):
             pct = 100.0 if key == "tv" else gr.get(f"pct_{key}")
             rows.append([name, symbol, fmt(gr[key]), fmt(pct, 3)])
-        out += [d.p("Average-and-range method (AIAG MSA)", "h2"),
+        out += [d.p(_title(s, "Average-and-range method (AIAG MSA)"), "h2"),
                 d.table(rows, [200, 52, 70, 70], right_from=2),
                 d.p(f"Number of distinct categories ndc = {fmt(gr.get('ndc'))}.", "small")]
     return out
@@ -798,7 +977,7 @@ def _results(d: _Doc, s: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[A
     from reportlab.platypus import CondPageBreak
 
     trials = int(s["trials"])
-    out: list[Any] = [CondPageBreak(60 * _MM), d.p("Results as reported", "h2"),
+    out: list[Any] = [CondPageBreak(60 * _MM), d.p(_title(s, "Results as reported"), "h2"),
                       d.p("Values per trial with the unit's code; flags: late, after-unseal, "
                           "in-house (the host), spare-used.", "small")]
     by: dict[tuple[str, str], dict[int, Unblinded]] = {}
@@ -830,11 +1009,11 @@ def _methods(d: _Doc, statistics: Mapping[str, Any]) -> list[Any]:
     return out
 
 
-def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded], *,
-           paper: str) -> Path:
-    """Write the round report to ``path`` on ``paper`` ("A4" or "letter"); return ``path``."""
-    d = _Doc(paper)
-    s = statistics
+def _measurand(d: _Doc, s: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[Any]:
+    """Sections 1 (from its summary on) to 6 of one measurand, from its view of the round."""
+    if "skipped" in s and not s["materials"]:
+        return [d.p(_title(s, "Summary"), "h2"),
+                d.p(_layout.escape(f"Not evaluated: {s['skipped']}."), "body")]
     spreads = spread(rows)
     story = _summary(d, s)
     story += _drift(d, s)
@@ -845,6 +1024,51 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
     story += _gauge(d, s)
     if len(s["labs"]) <= DETAIL_LABS:
         story += _results(d, s, rows)
+    return story
+
+
+def _heading(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    """A measurand's heading: a new page, its id, name, unit, method and resolution."""
+    from reportlab.lib.styles import ParagraphStyle
+    from reportlab.platypus import PageBreak, Paragraph
+
+    esc = _layout.escape
+    big = ParagraphStyle("measurand", parent=d.st["h2"], fontSize=15, leading=19,
+                         spaceBefore=0, spaceAfter=4)
+    facts = [f"in {s['unit']}"]
+    if s.get("method"):
+        facts.append(f"method: {s['method']}")
+    if s.get("resolution") is not None:
+        facts.append(f"declared resolution {fmt(s['resolution'])}")
+    on = s.get("measured_on") or []
+    facts.append(f"measured on {len(on)} material{'s' if len(on) != 1 else ''}: "
+                 + ", ".join(on))
+    return [PageBreak(),
+            Paragraph(f"Measurand {esc(s['measurand_id'])}: {esc(s['measurand'])}", big),
+            d.p(esc("; ".join(facts) + "."), "small")]
+
+
+def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded], *,
+           paper: str) -> Path:
+    """Write the round report to ``path`` on ``paper`` ("A4" or "letter"); return ``path``.
+
+    ``statistics`` is statistics.json (format ``ringplan-statistics/3``); ``rows`` the
+    unblinded results of every measurand.
+    """
+    d = _Doc(paper)
+    s = statistics
+    if is_shorthand(s):
+        view = measurand_view(s, SHORTHAND_ID)
+        story = _front(d, view, _lead(view)) + _measurand(d, view, rows)
+    else:
+        story = _front(d, s, _measurand_lead(s)) + _across(d, s)
+        by: dict[str, list[Unblinded]] = {mid: [] for mid in measurand_ids(s)}
+        for r in rows:
+            by.setdefault(r.measurand, []).append(r)
+        for mid in measurand_ids(s):
+            view = measurand_view(s, mid)
+            view["section_prefix"] = f"{mid}: "
+            story += _heading(d, view) + _measurand(d, view, by[mid])
     story += _methods(d, s)
     running = _layout.Running(s["study"], s["title"], s["round"], "round report",
                               "for the coordinator: names every laboratory")

@@ -8,6 +8,10 @@ needed, so any CSV in that shape can be evaluated::
     result = evaluate_table(rows, sigma_pt=0.5)
     text = summary_text(result)
 
+``evaluate_table`` works on the results of one measurand. A CSV with a ``measurand``
+column holds several: ``by_measurand`` splits its rows, and ``summary_text`` of
+``{"measurands": {id: result}}`` gives a section per measurand.
+
 ``evaluate_table`` runs every method that the data allow - one-way ANOVA, the gauge
 R&R ANOVA and average-and-range methods (materials crossed with laboratories, trials
 as replicates), ISO 5725-2 precision and ISO 13528 scores - and
@@ -51,16 +55,22 @@ from typing import TYPE_CHECKING, Any
 from planner.errors import DataError, Where
 
 if TYPE_CHECKING:
-    from planner.stats.iso13528 import SigmaPt
+    from planner.stats.iso13528 import Known, SigmaPt
 
-__all__ = ["Row", "read_long_csv", "evaluate_table", "check_reference", "summary_text"]
+__all__ = ["Row", "read_long_csv", "evaluate_table", "check_reference", "summary_text",
+           "by_measurand", "SHORTHAND_ID"]
+
+SHORTHAND_ID = "value"
+"""The measurand id of results that name none (``spec.SHORTHAND_ID``): a section of this
+id alone is summed up without a heading."""
 
 _REQUIRED = ("material", "lab", "trial", "value")
 
 
 @dataclass(frozen=True, slots=True)
 class Row:
-    """One test result: material, laboratory, trial, value, optional U (k = 2), source line."""
+    """One test result: material, laboratory, trial, value, optional U (k = 2), source line
+    and measurand (None when the table has no measurand column)."""
 
     material: str
     lab: str
@@ -68,14 +78,18 @@ class Row:
     value: float
     uncertainty: float | None = None
     line: int | None = None
+    measurand: str | None = None
 
 
 def read_long_csv(path: str | Path) -> list[Row]:
-    """Return the rows of a long-format CSV (material, lab, trial, value[, uncertainty]).
+    """Return the rows of a long-format CSV (material, lab, trial, value[, uncertainty]
+    [, measurand]).
 
     Extra columns are ignored; lines starting with ``#`` and blank lines are skipped.
-    Raises DataError (with file and line) for an unreadable or empty file, a missing
-    column, a short row, an empty or non-numeric value, or a repeated material/lab/trial.
+    With a ``measurand`` column every row names its measurand, and material/lab/trial
+    may repeat once per measurand. Raises DataError (with file and line) for an
+    unreadable or empty file, a missing column, a short row, an empty or non-numeric
+    value, an empty measurand, or a repeated (measurand,) material/lab/trial.
     """
     name = str(path)
     try:
@@ -101,11 +115,12 @@ def read_long_csv(path: str | Path) -> list[Row]:
                             Where(name, header_line))
     pos = {col: header.index(col) for col in _REQUIRED}
     u_pos = header.index("uncertainty") if "uncertainty" in header else None
+    m_pos = header.index("measurand") if "measurand" in header else None
     width = max(pos.values()) + 1
     if len(kept) == 1:
         raise DataError("the file has a header but no results", Where(name, header_line))
     rows: list[Row] = []
-    seen: dict[tuple[str, str, str], int] = {}
+    seen: dict[tuple[str, str, str, str], int] = {}
     for (line, _), fields_ in zip(kept[1:], parsed[1:]):
         if len(fields_) < width:
             raise DataError(f"expected at least {width} fields, found {len(fields_)}",
@@ -120,6 +135,12 @@ def read_long_csv(path: str | Path) -> list[Row]:
             if not val:
                 raise DataError(f"{col} is empty; every result needs a {col}",
                                 Where(name, line, col))
+        measurand = None
+        if m_pos is not None:
+            measurand = fields_[m_pos].strip() if m_pos < len(fields_) else ""
+            if not measurand:
+                raise DataError("measurand is empty; with a measurand column every result "
+                                "names its measurand", Where(name, line, "measurand"))
         value = _number(fields_[pos["value"]], Where(name, line, "value"))
         unc = None
         if u_pos is not None and u_pos < len(fields_) and fields_[u_pos].strip():
@@ -127,13 +148,26 @@ def read_long_csv(path: str | Path) -> list[Row]:
             if unc < 0:
                 raise DataError(f"{fields_[u_pos].strip()!r} is negative; an expanded "
                                 "uncertainty is 0 or more", Where(name, line, "uncertainty"))
-        key = (material, lab, trial)
+        key = (measurand or "", material, lab, trial)
         if key in seen:
-            raise DataError(f"material {material!r}, lab {lab!r}, trial {trial!r} appears "
-                            f"twice (first on line {seen[key]})", Where(name, line))
+            which = f"measurand {measurand!r}, " if measurand is not None else ""
+            raise DataError(f"{which}material {material!r}, lab {lab!r}, trial {trial!r} "
+                            f"appears twice (first on line {seen[key]})", Where(name, line))
         seen[key] = line
-        rows.append(Row(material, lab, trial, value, unc, line))
+        rows.append(Row(material, lab, trial, value, unc, line, measurand))
     return rows
+
+
+def by_measurand(rows: Iterable[Row]) -> dict[str, list[Row]]:
+    """Return the rows of each measurand, measurands in order of first appearance.
+
+    Rows that name no measurand are given ``SHORTHAND_ID``, the id of a single measurand.
+    """
+    out: dict[str, list[Row]] = {}
+    for row in rows:
+        out.setdefault(row.measurand if row.measurand is not None else SHORTHAND_ID,
+                       []).append(row)
+    return out
 
 
 def _number(text: str, where: Where) -> float:
@@ -173,19 +207,31 @@ def _get(row: Any, name: str) -> Any:
 def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                    tolerance: float | None = None,
                    sigma_pt: float | SigmaPt | Mapping[str, float | SigmaPt] | None = None,
-                   assigned: str = "consensus", reference_lab: str | None = None,
-                   pool_alpha: float = 0.25,
-                   exclude_labs_for_consensus: Sequence[str] = ()) -> dict[str, Any]:
+                   assigned: str | Mapping[str, str] = "consensus",
+                   reference_lab: str | None = None, pool_alpha: float = 0.25,
+                   exclude_labs_for_consensus: Sequence[str] = (),
+                   known: Mapping[str, Known] | None = None,
+                   resolution: float | None = None,
+                   also_without: Sequence[str] = ()) -> dict[str, Any]:
     """Return every statistic the table allows as a JSON-ready dict (floats, None for NaN).
 
     Keys: materials, labs, anova, grr_anova, grr_range, precision, scores (see the module
     docstring). ``sigma_pt`` is a policy (``iso13528.SigmaPt``) or a fixed value for all
     materials, or a mapping of either by material; a material without one uses the
-    participants' robust SD. Raises DataError for an empty table, a row without a field
-    or with a non-finite value, a repeated material/lab/trial, an unknown ``assigned``
-    method or ``assigned="reference"`` without a ``reference_lab``. A reference
-    laboratory without results on a material leaves that material's scores skipped
-    with the reason; ``check_reference`` refuses a name that is not in the table at all.
+    participants' robust SD. ``assigned`` ("consensus", "reference" or "known") holds for
+    every material, or is a mapping by material (a material not in it: "consensus");
+    a "known" material takes its value and standard uncertainty from ``known``.
+    ``resolution`` is the declared step the results are reported in (None: read from
+    the data). ``also_without`` names laboratories to leave out of a second consensus:
+    ``scores_without[material]`` then holds that consensus (as ``scores`` does) and, under
+    ``labs``, the scores of the laboratories left out against it, for every material whose
+    assigned value is the consensus. Raises DataError for an empty table, a row without a
+    field or with a non-finite value, a repeated material/lab/trial, an unknown ``assigned``
+    method,
+    ``"reference"`` without a ``reference_lab`` or ``"known"`` without a known value. A
+    reference laboratory without results on a material leaves that material's scores
+    skipped with the reason; ``check_reference`` refuses a name that is not in the table
+    at all.
     """
     import numpy as np
 
@@ -193,12 +239,20 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
     from planner.stats._common import Skipped
 
     materials, labs, mat_codes, lab_codes, values, uncs = _columns(rows)
-    if assigned not in ("consensus", "reference"):
-        raise DataError(f"assigned value method {assigned!r} is unknown; "
-                        "use 'consensus' or 'reference'")
-    if assigned == "reference" and reference_lab is None:
-        raise DataError("assigned value 'reference' needs a reference laboratory; name one, "
-                        "or use the consensus of participants")
+    methods = {m: (assigned.get(m, "consensus") if isinstance(assigned, Mapping) else assigned)
+               for m in materials}
+    for m, method in methods.items():
+        if method not in iso13528.ASSIGNED:
+            raise DataError(f"assigned value method {method!r} is unknown; "
+                            "use 'consensus', 'reference' or 'known'")
+        if method == "reference" and reference_lab is None:
+            raise DataError("assigned value 'reference' needs a reference laboratory; name "
+                            "one, or use the consensus of participants")
+        if method == "known" and (known is None or m not in known):
+            raise DataError(f"material {m!r} has no known value; give its value and standard "
+                            "uncertainty, or use the consensus of participants")
+    if resolution is not None and not (math.isfinite(resolution) and resolution > 0):
+        raise DataError(f"the resolution {resolution!r} must be a number above 0")
     mat_arr = np.asarray(mat_codes, dtype=np.intp)
     lab_arr = np.asarray(lab_codes, dtype=np.intp)
     x = np.asarray(values, dtype=np.float64)
@@ -209,6 +263,8 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
     out: dict[str, Any] = {"materials": materials, "labs": labs, "anova": {},
                            "grr_anova": None, "grr_range": None, "precision": {},
                            "scores": {}}
+    if also_without:
+        out["scores_without"] = {}
     order = np.argsort(mat_arr, kind="stable")
     bounds = np.searchsorted(mat_arr[order], np.arange(len(materials) + 1))
     for m, material in enumerate(materials):
@@ -226,10 +282,20 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
             out["anova"][material] = _plain(anova.evaluate(xv, lv))
         out["precision"][material] = _plain(iso5725_2.evaluate(xv, lab_of))
         sig = sigma_pt.get(material) if isinstance(sigma_pt, Mapping) else sigma_pt
+        method = methods[material]
         sc = iso13528.evaluate(xv, lab_of, uncertainties=u[idx] if has_u else None,
-                               sigma_pt=sig, assigned=assigned, reference_lab=reference_lab,
-                               exclude_labs=exclude_labs_for_consensus)
+                               sigma_pt=sig, assigned=method, reference_lab=reference_lab,
+                               exclude_labs=exclude_labs_for_consensus,
+                               known=known.get(material) if known and method == "known"
+                               else None, resolution=resolution)
         out["scores"][material] = _plain_scores(sc)
+        if also_without and method == "consensus":
+            other = iso13528.evaluate(xv, lab_of, uncertainties=u[idx] if has_u else None,
+                                      sigma_pt=sig, assigned=method,
+                                      exclude_labs=[*exclude_labs_for_consensus, *also_without],
+                                      resolution=resolution)
+            # The second consensus and the left-out laboratories' scores against it.
+            out["scores_without"][material] = _plain_scores(other, labs=also_without)
 
     cube = gauge_rr.arrange_cells(x, [materials[i] for i in mat_codes],
                                   [labs[i] for i in lab_codes])
@@ -243,6 +309,8 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
         out["grr_range"] = _plain(study.range)
     out["sources"] = {"anova": anova.SOURCE, "gauge_rr": gauge_rr.SOURCE,
                       "iso5725_2": iso5725_2.SOURCE, "iso13528": iso13528.SOURCE}
+    if "known" in methods.values():
+        out["sources"]["iso13528"] += "; " + iso13528.KNOWN_SOURCE
     return out
 
 
@@ -359,12 +427,15 @@ def _plain(obj: Any) -> Any:
 _SCALARS = frozenset({str, int, bool, type(None)})
 
 
-def _plain_scores(sc: Any) -> Any:
+def _plain_scores(sc: Any, labs: Sequence[str] | None = None) -> Any:
+    """Return ISO 13528 scores as JSON-ready data; ``labs``: only these laboratories'."""
     from planner.stats._common import Skipped
 
     if isinstance(sc, Skipped):
         return {"skipped": sc.reason}
-    d = {f.name: _plain(getattr(sc, f.name)) for f in fields(sc) if f.name != "robust"}
+    shown = sc.labs if labs is None else {lab: sc.labs[lab] for lab in labs if lab in sc.labs}
+    d = {f.name: _plain(shown if f.name == "labs" else getattr(sc, f.name))
+         for f in fields(sc) if f.name != "robust"}
     if sc.robust is not None:
         # The iteration history is for checking the algorithm, not for the report.
         d["robust"] = {"x": _plain(sc.robust.x), "s": _plain(sc.robust.s),
@@ -376,7 +447,25 @@ def _plain_scores(sc: Any) -> Any:
 
 
 def summary_text(result: Mapping[str, Any]) -> str:
-    """Return a compact plain-text summary of an ``evaluate_table`` result, columns aligned."""
+    """Return a compact plain-text summary of an ``evaluate_table`` result, columns aligned.
+
+    A result with ``measurands`` (``{id: result}``, each optionally with ``name`` and
+    ``unit``) gives a section per measurand under its own heading; the one measurand
+    ``SHORTHAND_ID`` alone gives its summary without a heading.
+    """
+    if "measurands" in result and "scores" not in result:
+        blocks = result["measurands"]
+        if list(blocks) == [SHORTHAND_ID]:
+            return summary_text(blocks[SHORTHAND_ID])
+        parts = []
+        for mid, block in blocks.items():
+            name, unit = block.get("name"), block.get("unit")
+            title = (f"measurand {mid}" + (f": {name}" if name and name != mid else "")
+                     + (f", in {unit}" if unit else ""))
+            body = (summary_text(block) if "scores" in block
+                    else f"not computed: {block.get('skipped', 'no results')}\n")
+            parts.append(f"{title}\n{'=' * len(title)}\n{body}")
+        return "\n".join(parts)
     out: list[str] = []
     mats, labs = result["materials"], result["labs"]
     out.append(f"{len(mats)} material(s), {len(labs)} laboratory(ies)")

@@ -69,6 +69,16 @@ class Units:
             return v
         return v * 10.0 ** self.decimals if self.decimals > 0 else v / 10.0 ** -self.decimals
 
+    def location(self, v: float) -> float:
+        """Return a result value ``v`` as a location in steps (the inverse of ``value``).
+
+        For a value from outside the data (a known assigned value), which need not lie on
+        the results' grid: the steps it gives need not be whole.
+        """
+        if not self.exact:
+            return v - self.origin
+        return self.steps(v) - self.origin_steps
+
     @property
     def band_floor(self) -> float:
         """Return the smallest sigma_pt, in steps, a band can rest on: half a step (0 if unknown).
@@ -89,17 +99,42 @@ def to_units(values: ArrayLike) -> Units:
     (``repr``): 12.3 and 12.35 give 0.01, 120 and 130 give 10. A trailing zero a
     laboratory typed (12.30) does not survive the float, so its step reads as 0.1.
     """
-    from decimal import Decimal
-
     import numpy as np
 
     x = np.asarray(values, dtype=np.float64).ravel()
     if x.size == 0:
         return Units(u=x.copy(), origin=0.0, exact=False)
+    # The methods of one material (and a second consensus) read the same values: the
+    # steps are worked out once. The arrays handed out are read-only, so a cached one
+    # cannot be changed behind the next reader's back.
+    memo = x.tobytes()
+    got = _RECENT.get(memo)
+    if got is None:
+        got = _to_units(x)
+        got.u.flags.writeable = False
+        if len(_RECENT) >= _KEEP:
+            del _RECENT[next(iter(_RECENT))]
+        _RECENT[memo] = got
+    return got
+
+
+_RECENT: dict[bytes, Units] = {}
+_KEEP = 16
+
+
+def _to_units(x: NDArray[np.float64]) -> Units:
+    from decimal import Decimal
+
+    import numpy as np
+
     origin = float(np.sort(x)[(x.size - 1) // 2])
-    nonzero = [float(v) for v in np.unique(x) if v != 0.0]
-    exponent = min((int(Decimal(repr(v)).normalize().as_tuple().exponent) for v in nonzero),
-                   default=0)
+    found = _decimals(x)
+    if found is not None:
+        exponent = -found
+    else:
+        nonzero = [float(v) for v in np.unique(x) if v != 0.0]
+        exponent = min((int(Decimal(repr(v)).normalize().as_tuple().exponent)
+                        for v in nonzero), default=0)
     if -300 < exponent < 300:
         d = -exponent
         if d > 0:
@@ -114,6 +149,46 @@ def to_units(values: ArrayLike) -> Units:
             k0 = float(np.rint(origin * scale) if d > 0 else np.rint(origin / scale))
             return Units(u=k - k0, origin=origin, exact=True, decimals=d, origin_steps=k0)
     return Units(u=x - origin, origin=origin, exact=False)
+
+
+_SAFE = 2.0 ** 50  # steps below this: x * 10^d lands within 0.25 of its whole number
+
+
+def _decimals(x: NDArray[np.float64]) -> int | None:
+    """Return the decimals d of the step ``to_units`` reads from ``repr``, found with whole
+    arrays instead of one ``Decimal`` per value; None when this shortcut cannot tell.
+
+    d passes when every value is k / 10^d for a whole k below ``_SAFE`` (k * 10^-d for
+    d < 0): the decimal with d places then rounds to the value, so its shortest form
+    (``repr``) has at most d places, and the smallest passing d is the one ``repr``
+    gives. Below ``_SAFE``, x * 10^d is within 0.25 of k, so ``rint`` finds it, and 10^d
+    is exact for |d| <= 22. Outside these bounds the caller reads ``repr`` value by value.
+    """
+    import numpy as np
+
+    if not np.any(x):
+        return 0
+
+    def passes(d: int) -> bool:
+        if d >= 0:
+            scale = 10.0 ** d
+            k = np.rint(x * scale)
+            back = k / scale
+        else:
+            scale = 10.0 ** -d
+            k = np.rint(x / scale)
+            back = k * scale
+        return bool(np.abs(k).max() < _SAFE) and bool(np.array_equal(back, x))
+
+    if passes(0):
+        d = 0
+        while d > -22 and passes(d - 1):
+            d -= 1
+        return d if d > -22 else None
+    for d in range(1, 23):
+        if passes(d):
+            return d
+    return None
 
 
 def factorize(labels: Iterable[Hashable]) -> tuple[NDArray[np.intp], list[Hashable]]:

@@ -35,7 +35,13 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-__all__ = ["f1_f2", "homogeneity", "stability", "ALLOW_FACTOR", "MIN_UNITS"]
+__all__ = ["evaluate", "SOURCE", "f1_f2", "homogeneity", "stability", "ALLOW_FACTOR",
+           "MIN_UNITS"]
+
+SOURCE = ("ISO 13528:2015 (2nd ed.) and ISO 13528:2022 (3rd ed.), Statistical methods for use "
+          "in proficiency testing by interlaboratory comparison, Annex B: B.2-B.3 homogeneity "
+          "(s_x, s_w, s_s, s_s <= 0.3 sigma_pt, extended criterion with F1 and F2), B.5 "
+          "stability (|y1 - y2| <= 0.3 sigma_pt, widened by the uncertainties of the means)")
 
 ALLOW_FACTOR = 0.3
 """sigma_allow = 0.3 sigma_pt (ISO 13528 B.2.2)."""
@@ -105,6 +111,11 @@ def homogeneity(replicates: Sequence[Sequence[float]], sigma_pt: float | None) -
                       f"{0.5 * sigma_pt:.3g}: the method's own scatter hides between-unit "
                       "differences, so a pass says little")
     return out
+
+
+def evaluate(replicates: Sequence[Sequence[float]], sigma_pt: float | None) -> dict[str, Any]:
+    """Return the homogeneity check (the module's method, as ``homogeneity``)."""
+    return homogeneity(replicates, sigma_pt)
 
 
 def stability(before: Sequence[float], after: Sequence[float],

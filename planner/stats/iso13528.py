@@ -2,9 +2,12 @@
 
 Algorithm A (ISO 13528:2015/2022 Annex C.3.1, the same algorithm as ISO 5725-5) gives
 the robust mean x* and SD s* of the participants' results. The assigned value x_pt is
-that consensus (u(x_pt) = 1.25 s*/sqrt(p), §7.7.3 [from memory]) or the mean of a
-reference laboratory. Scores: z = (x - x_pt)/sigma_pt; z' = (x - x_pt)/sqrt(sigma_pt^2 +
-u^2(x_pt)), used in place of z when u(x_pt) > 0.3 sigma_pt (§9.2.1 [from memory]);
+that consensus (u(x_pt) = 1.25 s*/sqrt(p), §7.7.3 [from memory]), the mean of a
+reference laboratory, or a value known from outside the round with its standard
+uncertainty u(x_pt) (§7.3-7.5: a formulation, a certified reference value, a reference
+value; ``Known``), which every participant is scored against. Scores: z = (x -
+x_pt)/sigma_pt; z' = (x - x_pt)/sqrt(sigma_pt^2 + u^2(x_pt)), used in place of z when
+u(x_pt) > 0.3 sigma_pt (§9.2.1 [from memory]);
 E_n = (x - x_pt)/sqrt(U^2(x) + U^2(x_pt)) with expanded uncertainties (k = 2); the
 difference D = x - x_pt and D% = 100 D / x_pt (§9.3 [from memory]), which need no
 sigma_pt. Bands (ISO/IEC 17043 wording [from memory]): |z| <= 2 satisfactory,
@@ -39,15 +42,18 @@ Our choices, documented:
   results equal, the rest winsorized ever closer), the estimate is marked
   ``collapsed``: a robust SD of 0 is no scale to score against.
 - A sigma_pt below half the reporting step gives no band: a difference of one reported
-  digit would then be more than 2 sigma_pt. The step is the finest digit any result of
-  the material shows; a laboratory that reports coarser than the others carries its own
-  rounding in its score (a declared resolution per measurand would settle this). Band
-  edges allow a relative 1e-9 for floating-point noise, so a score that is exactly 2 in
-  decimal stays satisfactory.
+  digit would then be more than 2 sigma_pt. The step is the measurand's declared
+  ``resolution`` where the study gives one; otherwise the finest digit any result of
+  the material shows, so that a laboratory that reports coarser than the others carries
+  its own rounding in its score. Band edges allow a relative 1e-9 for floating-point
+  noise, so a score that is exactly 2 in decimal stays satisfactory.
 - A laboratory with several results on a material is scored on its mean; its U is the
   mean of the U values it reported. A reference laboratory's u(x_pt) is U/2 from its
   reported U, else the SD of its mean (s/sqrt(n)). The reference laboratory is not
   scored against itself; its entry says ``reference``.
+- A known value is used as given: E_n takes U(x_pt) = 2 u(x_pt), and z' replaces z when
+  u(x_pt) > 0.3 sigma_pt, as for a consensus. Algorithm A still runs over the
+  laboratories' means, for a sigma_pt from the participants and for comparison.
 """
 
 from __future__ import annotations
@@ -64,13 +70,23 @@ if TYPE_CHECKING:
     import numpy as np
     from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["SOURCE", "MIN_PARTICIPANTS", "MIN_CONSENSUS", "SigmaPt", "RobustEstimate", "Scores", "algorithm_a",
-           "evaluate", "band_z", "band_en"]
+__all__ = ["SOURCE", "KNOWN_SOURCE", "MIN_PARTICIPANTS", "MIN_CONSENSUS", "SigmaPt", "Known",
+           "RobustEstimate", "Scores", "algorithm_a", "evaluate", "band_z", "band_en",
+           "ASSIGNED"]
 
 SOURCE = ("ISO 13528:2015 (2nd ed.) and ISO 13528:2022 (3rd ed.), Statistical methods for use "
           "in proficiency testing by interlaboratory comparison: Annex C.3.1 (Algorithm A), "
           "§5.4 (small numbers of participants), §7.7.3 (u(x_pt) of a consensus), §8 "
           "(sigma_pt), §9 (D, D%, z, z', E_n); bands per ISO/IEC 17043:2010 B.4.1.1")
+
+KNOWN_SOURCE = ("ISO 13528:2015/2022 §7.3-7.5: an assigned value known from outside the round "
+                "(formulation, certified reference material, reference value) with its standard "
+                "uncertainty u(x_pt); E_n takes U(x_pt) = 2 u(x_pt)")
+"""Named among the sources only where a known value was used."""
+
+ASSIGNED = ("consensus", "reference", "known")
+"""Where an assigned value can come from: the participants' consensus, a reference
+laboratory's mean, or a value known from outside the round (``Known``)."""
 
 MIN_PARTICIPANTS = 8
 """Fewest participants whose robust SD may serve as sigma_pt with bands.
@@ -144,6 +160,29 @@ class SigmaPt:
             return (f"from a precision study: sigma_R = {self.sigma_R:g}, sigma_r = "
                     f"{self.sigma_r:g}, sqrt(sigma_R^2 - (1 - 1/n) sigma_r^2)")
         return "robust SD of the participants (Algorithm A)"
+
+
+@dataclass(frozen=True, slots=True)
+class Known:
+    """An assigned value known from outside the round: ``value``, its standard uncertainty
+    ``u`` and where it comes from (ISO 13528 §7.3-7.5: a formulation, a certified reference
+    material, a reference value)."""
+
+    value: float
+    u: float
+    source: str = ""
+
+    def __post_init__(self) -> None:
+        if not math.isfinite(self.value):
+            raise DataError(f"the known value {self.value!r} is not a finite number")
+        if not (math.isfinite(self.u) and self.u >= 0):
+            raise DataError(f"the standard uncertainty {self.u!r} of the known value "
+                            f"{self.value!r} must be a finite number, 0 or more")
+
+    def describe(self) -> str:
+        """Return one line naming the value, its u and its source."""
+        return (f"known value {self.value!r} with u = {self.u!r}"
+                + (f" ({self.source})" if self.source else ""))
 
 
 @dataclass(frozen=True, slots=True)
@@ -280,15 +319,18 @@ def _policy(sigma_pt: float | SigmaPt | None) -> SigmaPt:
 def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
              uncertainties: ArrayLike | None = None, sigma_pt: float | SigmaPt | None = None,
              assigned: str = "consensus", reference_lab: Hashable | None = None,
-             exclude_labs: Sequence[Hashable] = ()) -> Scores | Skipped:
+             exclude_labs: Sequence[Hashable] = (), known: Known | None = None,
+             resolution: float | None = None) -> Scores | Skipped:
     """Return the assigned value, sigma_pt and scores of every laboratory for one material.
 
     ``uncertainties`` are expanded (k = 2) per result, NaN where not given. ``sigma_pt``
     is a ``SigmaPt`` policy, a number (fixed) or None (the participants' robust SD).
-    ``assigned`` is "consensus" (Algorithm A over the labs not in ``exclude_labs``) or
-    "reference" (the mean of ``reference_lab``). Returns ``Skipped`` when the data cannot
-    give an assigned value; raises DataError for an unknown ``assigned``, a missing
-    ``reference_lab`` name or a bad policy.
+    ``assigned`` is "consensus" (Algorithm A over the labs not in ``exclude_labs``),
+    "reference" (the mean of ``reference_lab``) or "known" (``known``: a value from
+    outside the round and its standard uncertainty). ``resolution`` is the declared step
+    results are reported in; without it the step is read from the data. Returns
+    ``Skipped`` when the data cannot give an assigned value; raises DataError for an
+    unknown ``assigned``, a missing ``reference_lab`` name or known value, or a bad policy.
     """
     import numpy as np
 
@@ -344,21 +386,28 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
             notes.append(f"u(x_pt) unknown: {ref!r} has one result and reported no uncertainty")
         method = f"reference laboratory {ref!r}"
         if len(means) >= 2:
-            robust = _iterate(means - np.median(means), max_iterations=1000)
-            robust = RobustEstimate(x=robust.x + float(np.median(means)), s=robust.s,
-                                    iterations=robust.iterations, converged=robust.converged,
-                                    start=robust.start, history=robust.history,
-                                    collapsed=robust.collapsed)
+            robust = _recentred(means)
+    elif assigned == "known":
+        if known is None:
+            raise DataError("assigned value 'known' needs the known value and its standard "
+                            "uncertainty")
+        p = p_all
+        x_pt = units.location(float(known.value))
+        u_pt = units.steps(float(known.u))
+        method = "known value" + (f" ({known.source})" if known.source else "")
+        if len(means) >= 2:
+            robust = _recentred(means)
     else:
         raise DataError(f"assigned value method {assigned!r} is unknown; "
-                        "use 'consensus' or 'reference'")
+                        "use 'consensus', 'reference' or 'known'")
     if robust is not None and robust.start == "sd":
         notes.append("Algorithm A: MAD was 0 (most results equal); started from the sample SD")
     if robust is not None and not robust.converged:
         notes.append(f"Algorithm A did not settle in {robust.iterations} iterations; "
                      "x* and s* are its last values")
 
-    x_pt_value = units.value(x_pt)
+    # A known value is reported as given, not as it comes back from steps.
+    x_pt_value = float(known.value) if assigned == "known" and known else units.value(x_pt)
     sig, no_band = _sigma(policy, units, robust, p=p, x_pt=x_pt_value,
                           n=majority(n.astype(int).tolist()))
     weak_consensus = assigned == "consensus" and p < MIN_CONSENSUS
@@ -369,8 +418,19 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
                    "satisfactory; name a reference laboratory for the assigned value to have "
                    "bands")
     sig_source = policy.describe()
-    if sig is not None and sig < units.band_floor * (1 - _SLACK):
-        no_band = (f"sigma_pt = {units.scale(sig):.3g} is less than half the step the results "
+    if resolution is not None:
+        # The declared step decides, not the finest digit some laboratory happened to write.
+        floor = 0.5 * units.steps(float(resolution))
+        if units.exact and units.step < float(resolution) * (1 - _SLACK):
+            notes.append(f"results are reported to {_step(units)}, finer than the declared "
+                         f"resolution {_decimal(float(resolution))}")
+    else:
+        floor = units.band_floor
+    if sig is not None and sig < floor * (1 - _SLACK):
+        no_band = (f"sigma_pt = {units.scale(sig):.3g} is less than half the declared "
+                   f"resolution ({_decimal(float(resolution))}), so a difference of one "
+                   "reported digit would decide the band" if resolution is not None else
+                   f"sigma_pt = {units.scale(sig):.3g} is less than half the step the results "
                    f"are reported to ({_step(units)}), so a difference of one reported digit "
                    "would decide the band")
     banded = no_band is None
@@ -403,17 +463,38 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
         scores[name] = entry
     return Scores(
         assigned_value=x_pt_value,
-        u_assigned_value=units.scale(u_pt) if u_pt is not None else None,
+        u_assigned_value=(float(known.u) if assigned == "known" and known
+                          else units.scale(u_pt) if u_pt is not None else None),
         robust_mean=units.value(robust.x) if robust else None,
         robust_sd=units.scale(robust.s) if robust else None,
         sigma_pt=units.scale(sig) if sig is not None else None, sigma_pt_source=sig_source,
         sigma_pt_policy=policy.kind, method=method, use_z_prime=use_zp, banded=banded,
-        no_band=no_band, p=p, resolution=units.step if units.exact else None,
+        no_band=no_band, p=p,
+        resolution=(float(resolution) if resolution is not None
+                    else units.step if units.exact else None),
         robust=_in_values(robust, units) if robust else None, labs=scores, notes=tuple(notes))
 
 
 def _step(units: Units) -> str:
     return f"{units.step:.{max(units.decimals, 0)}f}" if units.exact else repr(units.step)
+
+
+def _decimal(v: float) -> str:
+    """Return a step as plain decimals (0.00001, not 1e-05)."""
+    from decimal import Decimal
+
+    return format(Decimal(repr(v)).normalize(), "f")
+
+
+def _recentred(means: NDArray[np.float64]) -> RobustEstimate:
+    """Algorithm A on laboratory means in steps, centred on their median first."""
+    import numpy as np
+
+    centre = float(np.median(means))
+    robust = _iterate(means - centre, max_iterations=1000)
+    return RobustEstimate(x=robust.x + centre, s=robust.s, iterations=robust.iterations,
+                          converged=robust.converged, start=robust.start,
+                          history=robust.history, collapsed=robust.collapsed)
 
 
 def _sigma(policy: SigmaPt, units: Units, robust: RobustEstimate | None, *, p: int,
