@@ -727,3 +727,27 @@ def test_a_ledger_of_the_schema_before_result_values_opens_and_its_chain_checks(
     assert again.exit_code == 0, again.stderr
     with Ledger.open(example_dir) as ledger:
         assert ledger.heads()[:len(heads)] == heads and len(ledger.heads()) == len(heads) + 1
+
+
+def test_a_measurand_value_changed_behind_dropped_guards_is_detected(multi, runner, tmp_path):
+    """A coordinator with the sqlite3 shell drops the guards, raises one density value in
+    result_values and puts the guards back: every command refuses the ledger in one line."""
+    import sqlite3
+
+    folder, _ = multi
+    assert run_cli(runner, "print", folder, "--round", ROUND, "--only", "forms").exit_code == 0
+    lines, _ = fill(folder, "kal")
+    assert receive(runner, folder, write(tmp_path, "kal.csv", lines)).exit_code == 0
+    db = sqlite3.connect(folder / "ledger.sqlite", isolation_level=None)
+    guards = db.execute("SELECT name, sql FROM sqlite_master WHERE type = 'trigger'").fetchall()
+    for name, _ in guards:
+        db.execute(f"DROP TRIGGER {name}")
+    db.execute("UPDATE result_values SET value = value + 0.01 WHERE measurand = 'density' "
+               "AND rowid = (SELECT MIN(rowid) FROM result_values WHERE measurand = 'density')")
+    for _, sql in guards:
+        db.execute(sql)
+    db.close()
+    result = run_cli(runner, "status", folder, "--round", ROUND)
+    assert result.exit_code == 2 and "Traceback" not in result.output
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "result_values" in lines[0], lines

@@ -28,7 +28,10 @@ def test_fingerprint_is_sha256_hex():
 def test_round_trip_and_wrong_passphrase():
     data = seal.canonical(KEY)
     sealed = seal.seal_key(data, "a long enough phrase")
-    assert b"K7QM4X9PA" not in sealed and b"M1" not in sealed
+    # The plaintext writes the material id quoted ('"M1"'); base64 never holds a quote, so
+    # this cannot match by chance the way a bare b"M1" did in about 1 run in 30.
+    assert data not in sealed and b"K7QM4X9PA" not in sealed and b'"M1"' in data
+    assert b'"M1"' not in sealed
     assert seal.unseal_key(sealed, "a long enough phrase") == data
     with pytest.raises(SealError, match="wrong passphrase"):
         seal.unseal_key(sealed, "another long phrase")

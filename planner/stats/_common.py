@@ -137,18 +137,24 @@ def _to_units(x: NDArray[np.float64]) -> Units:
                         for v in nonzero), default=0)
     if -300 < exponent < 300:
         d = -exponent
-        if d > 0:
-            scale = 10.0 ** d
-            k = np.rint(x * scale)
-            back = k / scale
-        else:
-            scale = 10.0 ** -d
-            k = np.rint(x / scale)
-            back = k * scale
+        k, back, scale = _steps(x, d)
         if np.abs(k).max() < _MAX_EXACT and np.array_equal(back, x):
             k0 = float(np.rint(origin * scale) if d > 0 else np.rint(origin / scale))
             return Units(u=k - k0, origin=origin, exact=True, decimals=d, origin_steps=k0)
     return Units(u=x - origin, origin=origin, exact=False)
+
+
+def _steps(x: NDArray[np.float64], d: int) -> tuple[NDArray[np.float64], NDArray[np.float64], float]:
+    """Return (k, k as values, scale): ``x`` rounded to whole steps of 10^-d."""
+    import numpy as np
+
+    if d >= 0:
+        scale = 10.0 ** d
+        k = np.rint(x * scale)
+        return k, k / scale, scale
+    scale = 10.0 ** -d
+    k = np.rint(x / scale)
+    return k, k * scale, scale
 
 
 _SAFE = 2.0 ** 50  # steps below this: x * 10^d lands within 0.25 of its whole number
@@ -170,14 +176,7 @@ def _decimals(x: NDArray[np.float64]) -> int | None:
         return 0
 
     def passes(d: int) -> bool:
-        if d >= 0:
-            scale = 10.0 ** d
-            k = np.rint(x * scale)
-            back = k / scale
-        else:
-            scale = 10.0 ** -d
-            k = np.rint(x / scale)
-            back = k * scale
+        k, back, _ = _steps(x, d)
         return bool(np.abs(k).max() < _SAFE) and bool(np.array_equal(back, x))
 
     if passes(0):
