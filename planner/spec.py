@@ -39,7 +39,8 @@ _WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, str_strip_whitespace=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, str_strip_whitespace=True,
+                              allow_inf_nan=False)
 
 
 class Fonts(_Model):
@@ -84,7 +85,7 @@ class Lab(_Model):
     decimal: Literal["point", "comma"] = "point"
     # The language of everything the laboratory receives (planner.language); None: the study's.
     language: str | None = None
-    host_weight: float = Field(default=1.0, gt=0)
+    host_weight: float = Field(default=1.0, gt=0, le=1000)
     transit_days: int | None = Field(default=None, ge=0, le=30)
     joined: date | None = None
     blackouts: tuple[Blackout, ...] = ()

@@ -9,20 +9,23 @@ lines each starting "error: "; a refused form leaves nothing recorded.
 
 from __future__ import annotations
 
+import os
 import shutil
 from pathlib import Path
 
 import pytest
 import yaml
 from conftest import EXAMPLE, FIRST_ROW, NOW, PASSPHRASE, ROUND, filled, plan_example_round
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
 from planner import plan
 
-SPEC_EXAMPLES = 300
-FORM_EXAMPLES = 100
+# A deeper search: RINGPLAN_FUZZ_SEARCH=1 RINGPLAN_FUZZ_EXAMPLES=5000 python -m pytest tests/test_fuzz.py
+_SCALE = int(os.environ.get("RINGPLAN_FUZZ_EXAMPLES", "0")) or None
+SPEC_EXAMPLES = _SCALE or 300
+FORM_EXAMPLES = _SCALE or 100
 
 _text = st.text(st.characters(blacklist_categories=("Cs",)), max_size=30)
 _scalar = st.one_of(
@@ -68,6 +71,7 @@ def _assert_clean(result) -> None:
 
 @settings(max_examples=SPEC_EXAMPLES, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(changes=st.lists(st.tuples(st.sampled_from(PATHS), _value), min_size=1, max_size=2))
+@example(changes=[(("laboratories", 2, "host_weight"), "1E310")])  # found by a CI run
 def test_any_value_in_any_spec_field_is_one_line_or_a_valid_study(tmp_path_factory, changes):
     import copy
 
