@@ -336,8 +336,37 @@ def verify_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger, *
     if unknown:
         differences.append(f"key.json: it says the draw passed over {len(unknown)} code(s) of "
                            "earlier rounds that the ledger never issued")
+    differences += _host_check_differences(study, folder, ledger, round_id, key)
     return Verdict(tuple(findings) + verdict.fingerprint_findings, verdict.units_checked,
                    tuple(differences))
+
+
+def _host_check_differences(study: Study, folder: Path, ledger: Ledger, round_id: str,
+                            key: Mapping[str, Any]) -> list[str]:
+    """Return how the host's check units and forms differ from what the key rebuilds: the
+    units with their materials recorded at planning, and each form's run order."""
+    from planner import homogeneity
+
+    recorded = homogeneity.checks_of(ledger, round_id)
+    if recorded is None:
+        return []
+    rebuilt = homogeneity.host_checks(plan.units_from_key(dict(key)))
+    out: list[str] = []
+    for kind in ("homogeneity", "stability"):
+        if recorded.get(kind, {}) != rebuilt.get(kind, {}):
+            out.append(f"the {kind} units recorded at planning are not the ones the key "
+                       "rebuilds (codes or materials differ)")
+            continue
+        path = folder / "host" / f"{homogeneity.FORM_NAMES[kind]}.csv"
+        if not rebuilt.get(kind) or not path.is_file():
+            continue
+        secret = bytes.fromhex(str(key["secret"]))
+        want = homogeneity.run_order(secret, list(rebuilt[kind]), purpose=f"{kind}/order")
+        found = homogeneity.form_order(path)
+        if found != want:
+            out.append(f"host/{path.name}: its run order is not the one the round secret "
+                       "draws; the form was edited or is not this round's")
+    return out
 
 
 def verify_key(key_json: bytes, manifest: Mapping[str, Any], *, fingerprint: str | None,

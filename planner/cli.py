@@ -133,7 +133,10 @@ def _console() -> Any:
     from rich.console import Console
 
     # Piped output has no terminal width; 100 columns keep the tables whole.
-    return Console(highlight=False, width=None if sys.stdout.isatty() else 100)
+    # No markup: a name, unit or reason from a study or a form is printed as written
+    # ('[/]' in a unit is text, not a closing tag).
+    return Console(highlight=False, markup=False,
+                   width=None if sys.stdout.isatty() else 100)
 
 
 def _table(title: str, columns: list[str], rows: list[list[Any]]) -> Any:
@@ -206,7 +209,7 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
         _print_json(info)
         return
     con = _console()
-    con.print(f"[bold]{info['title']}[/bold]  ({info['study']})")
+    con.print(f"{info['title']}  ({info['study']})", style="bold")
     design = (f"{info['design']['trials']} trials, {info['design']['run_order']} run order, "
               f"{info['design']['mode']} samples")
     if "measurands" in info:
@@ -230,7 +233,7 @@ def check(study_dir: StudyDir, as_json: JsonOpt = False) -> None:
          for m in info["materials"]]))
     con.print(f"units in total: {info['units_total']} ({info['units_per_material']} per material)")
     nxt = info["next_host"]
-    con.print(f"proposed next host: [bold]{nxt['host']}[/bold] — {nxt['reason']}")
+    con.print(f"proposed next host: {nxt['host']} — {nxt['reason']}")
     _print_schedule(con, info["schedule"])
     if info.get("route"):
         _print_route(con, info["route"])
@@ -656,6 +659,7 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
     """Show per laboratory whether results are in, and whether the key may be opened."""
     from dataclasses import asdict
 
+    from planner import homogeneity
     from planner import plan as planning
     from planner import status as standing
     from planner.ledger import Ledger
@@ -664,10 +668,12 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
         study = _round_study(study_dir, round_id, ledger)
         info = standing.round_status_table(study, study_dir, round_id, ledger,
                                            today=date.today())
+        checks = homogeneity.checks_of(ledger, round_id)
+        items = homogeneity.state_lines(study, ledger, round_id, checks) if checks else []
     left = standing.leftovers(planning.round_dir(study_dir, round_id),
                               *_tidy(study_dir, round_id))
     if as_json:
-        _print_json({**asdict(info), "leftovers": left})
+        _print_json({**asdict(info), "leftovers": left, "host_checks": items})
         return
     con = _console()
     con.print(_table(
@@ -692,6 +698,8 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
                           + " codes", markup=False)
     else:
         con.print("empty: rows without a value (remark given); missing: codes with no row yet")
+    for line in items:
+        con.print(line, soft_wrap=True)
     for line in standing.describe_key(info.key):
         con.print(line, markup=False)
     if info.unsealed:
@@ -954,6 +962,11 @@ def demo(out: Annotated[Path | None, typer.Argument(
                f"{made['host']}, {len(made['letters'])} laboratories, results simulated with "
                f"{made['biased_lab']} reading about {demonstration.BIAS:.0%} high; one spare "
                "used, one form returned as a spreadsheet")
+    if made.get("held"):
+        typer.echo(f"the host's homogeneity check failed for {demonstration.INHOMOGENEOUS[0]} "
+                   "and held the packing lists; the coordinator waived it with a reason (see "
+                   "the report's homogeneity section, or 'ringplan homogeneity "
+                   f"{target} --round {made['round']}')")
     typer.echo(f"key passphrase (for this demo only): {made['passphrase']}")
     typer.echo("open first:")
     for label, path in (("the round report", made["report"]),
@@ -961,6 +974,129 @@ def demo(out: Annotated[Path | None, typer.Argument(
                         ("a laboratory's run sheet", made["run_sheet"]),
                         ("every statistic", made["statistics"])):
         typer.echo(f"  {label:26} {path}")
+
+
+@app.command("homogeneity")
+@_command
+def homogeneity_command(
+    study_dir: StudyDir,
+    round_id: RoundOpt,
+    form: Annotated[Path | None, typer.Argument(
+        metavar="FILE", help="The host's filled homogeneity form (CSV or XLSX).")] = None,
+    stability: Annotated[Path | None, typer.Option(
+        "--stability", help="The host's filled stability form (its retained units, tested "
+        "after the round).")] = None,
+    waive: Annotated[str | None, typer.Option(
+        "--waive", help="Let the packing lists be printed without a passing homogeneity "
+        "check; the reason, a sentence, is printed in the report.")] = None,
+    as_json: JsonOpt = False,
+) -> None:
+    """Record the host's homogeneity or stability check and show the verdicts."""
+    from planner import files, homogeneity
+    from planner import plan as planning
+    from planner.ledger import Ledger
+
+    folder = planning.round_dir(study_dir, round_id)
+    with Ledger.open(study_dir, create=False) as ledger:
+        study = _round_study(study_dir, round_id, ledger)
+        checks = homogeneity.checks_of(ledger, round_id)
+        if checks is None:
+            raise PlannerError(f"round {round_id!r} has no homogeneity or retained units "
+                               "(design.homogeneity_units and retained_by_host were 0 when it "
+                               "was planned); there is nothing to check")
+        read = []
+        for kind, path in (("homogeneity", form), ("stability", stability)):
+            if path is None:
+                continue
+            if not checks.get(kind):
+                raise PlannerError(f"round {round_id!r} has no {kind} units; there is no "
+                                   f"{kind} form to record", _where(path))
+            read.append((kind, path, homogeneity.read_values(study, round_id, kind,
+                                                             checks[kind], path)))
+        if waive is not None:
+            homogeneity.waive(ledger, round_id, waive)
+        for kind, path, data in read:
+            stored = folder / "host" / "checks" / f"{kind}-{data['sha256'][:12]}{path.suffix}"
+            files.write_bytes(stored, _read_bytes(path), root=study_dir, private=True)
+            homogeneity.record(ledger, round_id, kind, {**data, "stored": str(
+                stored.relative_to(folder))})
+        found = homogeneity.assess(study, checks, ledger, round_id,
+                                   previous=homogeneity.previous_sigma(study_dir, ledger,
+                                                                       round_id))
+        gate = homogeneity.shipping_gate(study, ledger, round_id, checks)
+    found["packing_lists"] = "held: " + gate if gate else "may be printed"
+    if as_json:
+        typer.echo(homogeneity.to_json(found), nl=False)
+        return
+    for kind, path, _ in read:
+        typer.echo(f"recorded the {kind} form {path.name}")
+    if waive is not None:
+        typer.echo("recorded the waiver of the homogeneity check; every report states it")
+    _print_checks(found)
+
+
+_SHORT_VERDICT = {"sufficiently homogeneous": "passes",
+                  "sufficiently homogeneous by the extended criterion": "passes (extended)",
+                  "not sufficiently homogeneous": "FAILS", "waits": "waits",
+                  "cannot be computed": "cannot be computed"}
+
+
+def _print_checks(found: dict[str, Any]) -> None:
+    """Print a homogeneity assessment: a table per measurand, one row per material, and
+    notes below it (where sigma_pt came from, F1 and F2, stability)."""
+    con = _console()
+    if not found["recorded"]:
+        con.print("homogeneity check: not recorded yet")
+    for mid, per in found["measurands"].items():
+        rows, notes = [], []
+        factors: dict[int, tuple[float, float]] = {}
+        sources: dict[str, list[str]] = {}
+        for material, e in per.items():
+            if "g" not in e:
+                rows.append([material, "", "", "", "", "", "", "", "", e["verdict"]])
+                notes.append(f"{material}: {e['why']}")
+                continue
+            if e["F1"] is not None:
+                factors[e["g"]] = (e["F1"], e["F2"])
+            rows.append([
+                material, e["g"], f"{e['mean']:.5g}", f"{e['s_x']:.3g}", f"{e['s_w']:.3g}",
+                f"{e['s_s']:.3g}" + ("*" if e["s_s_forced_zero"] else ""),
+                "" if e["sigma_pt"] is None else f"{e['sigma_pt']:.3g}",
+                "" if e["criterion"] is None else f"{e['criterion']:.3g}",
+                "" if e["c"] is None else f"{e['c'] ** 0.5:.3g}",
+                _SHORT_VERDICT.get(e["verdict"], e["verdict"])])
+            sources.setdefault(e["sigma_pt_source"], []).append(material)
+            if e.get("why"):
+                notes.append(f"{material}: {e['why']}")
+            if e["left_out"]:
+                notes.append(f"{material}: {e['left_out']} unit(s) without both values left out")
+            st = e.get("stability")
+            if st:
+                notes.append(
+                    f"{material}: stability: mean after {st['mean_after']:.5g} against "
+                    f"{st['mean_before']:.5g} (difference {st['difference']:+.3g}"
+                    + (f"; limit {st['criterion']:.3g}" if st["criterion"] is not None else "")
+                    + (f", widened {st['criterion_widened']:.3g}"
+                       if st["criterion_widened"] is not None else "")
+                    + f"): {st['verdict']}")
+        con.print(_table(f"homogeneity of {mid}", [
+            "material", "g", "mean", "s_x", "s_w", "s_s", "sigma_pt", "limit", "ext. limit",
+            "verdict"], rows))
+        con.print("  limit: s_s <= 0.3 sigma_pt; ext. limit: s_s <= sqrt(F1 (0.3 sigma_pt)² "
+                  "+ F2 s_w²), ISO 13528 B.2; "
+                  + "; ".join(f"g = {g}: F1 = {f1:.3f}, F2 = {f2:.3f}"
+                              for g, (f1, f2) in sorted(factors.items())), soft_wrap=True)
+        if any(e.get("s_s_forced_zero") for e in per.values()):
+            con.print("  * s_x² < s_w²/2, so s_s is set to 0: common by chance in a small "
+                      "check, and no proof of a perfect batch", soft_wrap=True)
+        for source, materials in sources.items():
+            con.print(f"  sigma_pt from {source}: {', '.join(materials)}", soft_wrap=True)
+        for note in notes:
+            con.print(f"  {note}", soft_wrap=True)
+    if found["waiver"]:
+        con.print(f"waived by the coordinator on {found['waiver']['at']}: "
+                  f"{found['waiver']['reason']}", soft_wrap=True)
+    con.print(f"packing lists: {found['packing_lists']}", soft_wrap=True)
 
 
 @app.command("print")
@@ -1018,6 +1154,11 @@ def print_documents(
     manifest = planning.read_manifest(folder)
     wanted, geometry = render.check_options(study, study_dir, manifest, only=only, lab=lab,
                                             codes=chosen, sheet=sheet)
+    held = _shipping_gate(study, study_dir, round_id) if "packing" in wanted else None
+    if held and only == "packing":
+        raise PlannerError(f"the packing lists are held: {held}")
+    if held:
+        wanted.discard("packing")
     _tidy(study_dir, round_id)
     # a link, or a file where a folder belongs, is named before the key is asked for or its
     # use recorded (planner.files)
@@ -1054,9 +1195,23 @@ def print_documents(
         issued = intake.issued_spares(ledger, round_id)  # a retained unit sent: a spare label
     paths = render.print_round(study, study_dir, round_id, key=key, only=only, lab=lab,
                                codes=chosen, start_at=start_at, sheet=sheet, offset_mm=offset,
-                               workers=min(2, os.cpu_count() or 1), issued=set(issued))
+                               workers=min(2, os.cpu_count() or 1), issued=set(issued),
+                               hold={"packing"} if held else ())
     for path in paths:
         typer.echo(f"wrote {path}")
+    if held:
+        typer.echo(f"held back: the packing lists: {held}; print them with --only packing "
+                   "once the check passes or is waived")
+
+
+def _shipping_gate(study: Any, study_dir: Path, round_id: str) -> str | None:
+    """Return why the participants' packing lists may not be printed yet, or None."""
+    from planner import homogeneity
+    from planner.ledger import Ledger
+
+    with Ledger.open(study_dir, create=False) as ledger:
+        checks = homogeneity.checks_of(ledger, round_id)
+        return homogeneity.shipping_gate(study, ledger, round_id, checks) if checks else None
 
 
 def _is(exc: BaseException, name: str) -> bool:

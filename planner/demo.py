@@ -7,7 +7,12 @@ there, as the people of the study would: the coordinator plans it, the host
 prints the documents, one laboratory reports a damaged unit and the host
 sends it a spare, every laboratory fills in its result form (in its own decimal
 convention; one returns the spreadsheet instead of the CSV), the coordinator
-receives the forms, opens the key and evaluates.
+receives the forms, opens the key and evaluates. Before shipping, the host
+measures its homogeneity units: one material (``INHOMOGENEOUS``, a recycled blend)
+is made slightly inhomogeneous in melt flow rate, so the shipping gate holds the
+packing lists until the coordinator waives the check with a reason; after the
+round the host measures its retained units for the stability check, and the
+evaluation widens u(x_pt) of that material by the between-unit SD.
 
 The results are simulated, and invented: per measurand a true value per material,
 a small bias per laboratory, a small laboratory-by-material effect and
@@ -34,7 +39,7 @@ from planner import files
 from planner.errors import PlannerError, Where
 
 __all__ = ["build_demo", "check_target", "example_spec", "TRUE_VALUES", "BIASED", "BIAS", "PASSPHRASE",
-           "ROUND"]
+           "ROUND", "INHOMOGENEOUS", "WAIVER"]
 
 PASSPHRASE = "demo-only-passphrase"
 """The passphrase that seals the demo's key: for the demo only, never for a real round."""
@@ -67,6 +72,13 @@ _BIASED_MEASURAND = "mfr"
 # study requires one, every laboratory gives one (``_REQUIRED_U``).
 _WITH_U = {"tor": 0.05, "crx": 0.04}
 _REQUIRED_U = 0.004
+INHOMOGENEOUS = ("RE-MIX", "mfr", 0.035)
+"""Material, measurand and relative between-unit SD of the batch the demo makes slightly
+inhomogeneous (the others: ``_UNIT_SD`` times the measurand's repeatability)."""
+_UNIT_SD = 0.1
+WAIVER = ("RE-MIX is a recycled blend whose pellets differ a little by nature; it ships as "
+          "it is, and the evaluation adds its between-unit SD to u(x_pt)")
+"""The coordinator's reason for waiving the homogeneity check in the demo."""
 _XLSX_LAB = "crx"     # returns the spreadsheet form instead of the CSV
 _DAMAGED_LAB = "hel"  # reports a damaged unit and tests a spare in its place
 
@@ -139,6 +151,65 @@ def _simulate(study: Any, units: Any, *, seed: int, biased: str,
             out.setdefault(u.code, {})[measurand.id] = (
                 value, float(f"{value * rel_u:.2g}") if rel_u else None)
     return out
+
+
+def _fill_check(study: Any, text: str, material_of: Mapping[str, str], *, seed: int,
+                drift: float = 0.0) -> str:
+    """Return the host's check form (CSV) filled in: per unit a between-unit effect (relative
+    SD ``_UNIT_SD`` times the repeatability, ``INHOMOGENEOUS`` its own), per value the
+    measurand's repeatability (the host's, half the model's),
+    times (1 + ``drift``) for units measured after the round."""
+    import numpy as np
+
+    from planner import codes
+
+    rng = np.random.Generator(np.random.PCG64(seed + 1000))
+    lines = text.splitlines()
+    comma = "# decimal: comma" in lines
+    sep = ";" if comma else ","
+    body = [ln for ln in lines if not ln.startswith("#")]
+    rows = list(csv.reader(io.StringIO("\n".join(body)), delimiter=sep))
+    header = rows[0]
+    effect: dict[tuple[str, str], float] = {}
+    out_rows = [header]
+    for row in rows[1:]:
+        code = row[1]
+        material = material_of[codes.compact(code)]
+        for i, name in enumerate(header):
+            if i < 3 or name == "remarks" or row[i] == "n/a":
+                continue
+            measurand = _SHORTHAND_AS if name == "value" else name
+            model = _MODEL.get(measurand, _MODEL[_SHORTHAND_AS])
+            sd = (INHOMOGENEOUS[2] if (material, measurand) == INHOMOGENEOUS[:2]
+                  else _UNIT_SD * model["repeat"])
+            if (code, name) not in effect:
+                effect[code, name] = float(rng.normal(0.0, sd))
+            true = TRUE_VALUES.get(measurand, {}).get(material, 5.0)
+            x = true * (1 + effect[code, name] + float(rng.normal(0.0, model["repeat"] / 2))
+                        ) * (1 + drift)
+            row[i] = _number(float(f"{x:.{model['digits'] + 1}g}"), "comma" if comma else "point")
+        out_rows.append(row)
+    buf = io.StringIO()
+    csv.writer(buf, delimiter=sep, lineterminator="\n").writerows(out_rows)
+    return "\n".join(ln for ln in lines if ln.startswith("#")) + "\n" + buf.getvalue()
+
+
+def _record_check(study: Any, out: Path, ledger: Any, kind: str, *, seed: int) -> Path:
+    """Fill the host's check form of ``kind`` as the host would, save it under returned/ and
+    record it as ``ringplan homogeneity`` does; return the filled form."""
+    from planner import homogeneity
+    from planner import plan as planning
+
+    folder = planning.round_dir(out, ROUND)
+    blank = (folder / "host" / f"{homogeneity.FORM_NAMES[kind]}.csv").read_text(encoding="utf-8")
+    target = out / "returned" / f"{homogeneity.FORM_NAMES[kind]}.csv"
+    checks = homogeneity.checks_of(ledger, ROUND) or {}
+    files.write_text(target, _fill_check(study, blank, checks[kind],
+                                         seed=seed + (kind == "stability")),
+                     root=out, private=False)
+    data = homogeneity.read_values(study, ROUND, kind, checks[kind], target)
+    homogeneity.record(ledger, ROUND, kind, data)
+    return target
 
 
 def _columns(measurand_id: str) -> tuple[str, str]:
@@ -237,7 +308,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
     host, fingerprint, the laboratory simulated off, and the paths to open first
     (report, a letter, a run sheet). Raises PlannerError if ``out`` holds files.
     """
-    from planner import audit, evaluate, overview, returns, rotation, spares, spec
+    from planner import audit, evaluate, homogeneity, overview, returns, rotation, spares, spec
     from planner import plan as planning
     from planner import render
     from planner.ledger import Ledger
@@ -267,10 +338,27 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
         folder = planning.write_round(study, out, result, ledger, passphrase=passphrase)
         key = planning.key_of(result)
         clock.set(prepare - timedelta(days=1))
-        printed = render.print_round(study, out, ROUND, key=key, workers=workers)
+        # The host's documents first; the packing lists wait for the homogeneity check.
+        printed = render.print_round(study, out, ROUND, key=key, workers=workers,
+                                     hold={"packing"})
         with ledger.transaction():
             ledger.record_event(ROUND, "printed", {
                 "documents": [p.relative_to(folder).as_posix() for p in printed]})
+        files.make_folders(out / "returned", root=out)
+        clock.set(prepare, hour=15)
+        checks = homogeneity.checks_of(ledger, ROUND) or {}
+        held = None
+        if checks.get("homogeneity"):
+            _record_check(study, out, ledger, "homogeneity", seed=seed)
+            held = homogeneity.shipping_gate(study, ledger, ROUND, checks)
+            if held:
+                clock.set(prepare, hour=16)
+                homogeneity.waive(ledger, ROUND, WAIVER)
+        lists = render.print_round(study, out, ROUND, key=key, only="packing", workers=workers)
+        with ledger.transaction():
+            ledger.record_event(ROUND, "printed", {
+                "documents": [p.relative_to(folder).as_posix() for p in lists], "only": "packing"})
+        printed += lists
 
         biased = next(lab for lab in BIASED if lab != host)
         manifest = planning.read_manifest(folder)
@@ -280,7 +368,7 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
                                   key=key, pick=random.Random(seed).choice)
         values = _simulate(study, result.units, seed=seed, biased=biased,
                            sent={swap.spare: swap.lab})
-        returned = files.make_folders(out / "returned", root=out)
+        returned = out / "returned"
         forms = []
         for lab in study.laboratories:
             lab_dir = folder / "labs" / lab.id
@@ -300,6 +388,8 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
             forms.append(target)
         clock.set(min(test_end + timedelta(days=1), due))
         receipts = returns.receive(study, out, ROUND, forms, ledger)
+        if checks.get("stability"):
+            _record_check(study, out, ledger, "stability", seed=seed)
         clock.set(due, hour=15)
         audit.unseal_round(study, out, ROUND, ledger, passphrase=passphrase)
         report_dir = evaluate.evaluate_round(study, out, ROUND, ledger, workers=workers)
@@ -319,4 +409,5 @@ def build_demo(out: Path, *, passphrase: str = PASSPHRASE, seed: int = 7,
         "letters": sorted(report_dir.glob("letter-*.pdf")),
         "run_sheet": folder / "labs" / first_other / "run-sheet.pdf",
         "printed": printed,
+        "held": held,
     }

@@ -41,7 +41,7 @@ import hashlib
 import io
 import json
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -52,7 +52,7 @@ from planner.results import Unblinded
 if TYPE_CHECKING:
     from planner.ledger import Ledger
     from planner.spec import Measurand, SigmaPtPolicy, Study
-    from planner.stats.iso13528 import SigmaPt
+    from planner.stats.iso13528 import SigmaPt, Widen
 
 __all__ = [
     "Unblinded", "unblind", "participant_codes", "results_csv", "round_statistics",
@@ -310,7 +310,8 @@ def _check_measurands(study: Study, rows: Sequence[Unblinded]) -> dict[str, list
 
 def _measurand_block(item: Measurand, study: Study, rows: Sequence[Unblinded], host: str, *,
                      visits: Mapping[str, Sequence[Unblinded]] | None,
-                     artefacts: Mapping[str, str]) -> dict[str, Any]:
+                     artefacts: Mapping[str, str],
+                     widen: Mapping[str, Widen] | None = None) -> dict[str, Any]:
     """Return what statistics.json holds of one measurand: name, unit, settings, every method."""
     from planner import stats
     from planner.stats.iso13528 import Known
@@ -351,7 +352,7 @@ def _measurand_block(item: Measurand, study: Study, rows: Sequence[Unblinded], h
     options: dict[str, Any] = {
         "tolerance": ev.tolerance, "sigma_pt": policies, "assigned": assigned,
         "reference_lab": ev.reference_lab, "pool_alpha": ev.pool_alpha, "known": known,
-        "resolution": item.resolution}
+        "resolution": item.resolution, "widen": widen}
     full = stats.evaluate_table(table, **options, also_without=(host,))
     without = _without_host(full, full.pop("scores_without"), host, assigned,
                             ev.reference_lab, known)
@@ -397,7 +398,9 @@ def _tolerance_by_material(result: Mapping[str, Any], tolerance: Mapping[str, fl
 def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblinded], *,
                      missing: Sequence[Mapping[str, Any]] = (),
                      visits: Mapping[str, Sequence[Unblinded]] | None = None,
-                     opening: Mapping[str, Any] | None = None) -> dict[str, Any]:
+                     opening: Mapping[str, Any] | None = None,
+                     items: Callable[[Mapping[str, Mapping[str, float]]], dict[str, Any]]
+                     | None = None) -> dict[str, Any]:
     """Return the statistics.json content of a round: the round's identity at the top and,
     under ``measurands.<id>``, every method's statistics of each measurand.
 
@@ -410,7 +413,12 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
     ``drift_check``. ``opening`` is the ledger's record of the key
     (``status.read_key_history``); ``opening`` in the result holds of it ``at``,
     ``forced``, ``reason``, ``missing``, ``early_decryptions``, ``first_result_at`` and
-    ``received_after``, and is None without it. Raises DataError when no result has a
+    ``received_after``, and is None without it. ``items`` returns the host's homogeneity
+    and stability assessment (``homogeneity.assess``) given the round's sigma_pt per
+    measurand and material; with it ``homogeneity`` in the result holds that assessment
+    and, under ``widened``, what was added to sigma_pt or u(x_pt) of the materials whose
+    check failed (``widen_of``); those materials' statistics are computed with it.
+    Without it ``homogeneity`` is None. Raises DataError when no result has a
     value, or a result is of a measurand the study (or its material) does not have.
     """
     host = str(key["host"])
@@ -425,6 +433,17 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         item, study, grouped[item.id], host, artefacts=artefacts,
         visits=({v: g[item.id] for v, g in later.items()} if later is not None else None))
         for item in study.all_measurands}
+    checked = None
+    if items is not None:
+        checked = items({mid: {m: sc["sigma_pt"] for m, sc in block.get("scores", {}).items()
+                               if isinstance(sc, dict) and sc.get("sigma_pt") is not None}
+                         for mid, block in blocks.items()})
+        widened = widen_of(study, checked)
+        for mid, per in widened.items():
+            blocks[mid] = _measurand_block(study.measurand(mid), study, grouped[mid], host,
+                                           artefacts=artefacts, visits=None, widen=per)
+        checked["widened"] = {mid: {m: {"into": w.into, "sd": w.sd, "why": w.why}
+                                    for m, w in per.items()} for mid, per in widened.items()}
     flagged: dict[str, dict[str, None]] = {}
     counts: dict[str, int] = {}
     for r in rows:
@@ -457,7 +476,38 @@ def round_statistics(study: Study, key: Mapping[str, Any], rows: Sequence[Unblin
         "labs": list(labs),
         "sources": sources,
         "measurands": blocks,
+        "homogeneity": checked,
     }
+
+
+def widen_of(study: Study, checked: Mapping[str, Any]) -> dict[str, dict[str, Widen]]:
+    """Return measurand -> material -> what to add to sigma_pt or u(x_pt), for the materials
+    whose items were found not sufficiently homogeneous or not stable.
+
+    Between units: s_s of the homogeneity check. Instability: u_stab = |y2 - y1| / sqrt(3),
+    the difference of the means taken as the half-width of a rectangular distribution
+    (ISO Guide 35 treats instability so; recalled from memory, not checked against the
+    text). Both present: their root sum of squares. Where they go is the measurand's
+    ``evaluation.between_units`` (u(x_pt) unless it says sigma_pt).
+    """
+    from planner.stats.iso13528 import Widen
+
+    out: dict[str, dict[str, Widen]] = {}
+    for mid, per in (checked.get("measurands") or {}).items():
+        into = study.measurand(mid).evaluation.widen
+        for material, e in per.items():
+            parts: list[tuple[float, str]] = []
+            if e.get("verdict") == "not sufficiently homogeneous":
+                parts.append((float(e["s_s"]), f"the between-unit SD s_s = {e['s_s']:.3g}"))
+            st = e.get("stability") or {}
+            if st.get("verdict") == "not stable":
+                u = abs(float(st["difference"])) / math.sqrt(3.0)
+                parts.append((u, f"the instability u_stab = |y2 - y1|/sqrt(3) = {u:.3g}"))
+            if parts:
+                sd = math.sqrt(math.fsum(v * v for v, _ in parts))
+                out.setdefault(mid, {})[material] = Widen(into, sd, " and ".join(
+                    why for _, why in parts))
+    return out
 
 
 def _opening(record: Mapping[str, Any] | None) -> dict[str, Any] | None:
@@ -724,9 +774,18 @@ def evaluate_round(study: Study, study_dir: Path, round_id: str, ledger: Ledger,
                                       missing=_missing_circulating(study, manifest, key,
                                                                    accepted))
     else:
+        from planner import homogeneity
+
         rows = _ordered(unblind(key, accepted, issued=issued), study)
+        checks = homogeneity.checks_of(ledger, round_id)
+        previous = homogeneity.previous_sigma(study_dir, ledger, round_id) if checks else {}
+
+        def items(sigma: Mapping[str, Mapping[str, float]]) -> dict[str, Any]:
+            return homogeneity.assess(study, checks or {}, ledger, round_id,
+                                      previous=previous, round_sigma=sigma)
+
         statistics = round_statistics(study, key, rows, missing=_missing(study, key, rows),
-                                      opening=opening)
+                                      opening=opening, items=items if checks else None)
     # The record this evaluation rests on: the chain head goes onto every letter, so a
     # laboratory can later show the ledger was not rewritten behind the letter.
     head = ledger.head()

@@ -252,9 +252,10 @@ def _read_xlsx(name: str, data: bytes) -> Form:
             continue
         if not columns:
             lowered = tuple(str(c).strip().lower() if c is not None else "" for c in cells)
-            # 'trial' too: a form with several measurands has no 'value' column. A heading
-            # row in the laboratory's words stands above and has neither word.
-            if "code" in lowered and {"value", "trial"} & set(lowered):
+            # 'trial' too: a form with several measurands has no 'value' column, and
+            # 'replicate' for the host's check forms. A heading row in the laboratory's
+            # words stands above and has none of these words.
+            if "code" in lowered and {"value", "trial", "replicate"} & set(lowered):
                 columns, header_line = lowered, number
                 continue
             found = _identity_line(str(filled[0]))

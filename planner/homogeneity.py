@@ -6,9 +6,11 @@ order drawn from the round secret (purpose ``"homogeneity/order"``), so that ``v
 can rebuild it. After the round it measures its retained units the same way, for the
 stability check. The coordinator records each filled form with ``ringplan homogeneity``.
 
-Which unit holds which material is no secret here: homogeneity and retained units
-never reach a participant, so the round's manifest lists them with their materials
-(``host_checks``), and recording a form needs no decryption of the key.
+Homogeneity and retained units never reach a participant, so which of them holds
+which material is recorded in the ledger's planning event (``host_checks``) and
+recording a form needs no decryption of the key. The forms themselves name no
+material (the round folder names none until the key prints the host's documents):
+the host reads each unit's material from its label or the preparation sheet.
 
 sigma_pt for the verdict comes, in this order, from the measurand's fitness-for-purpose
 policy (a fixed value; a percentage, of the homogeneity mean; a precision study), else
@@ -34,18 +36,21 @@ from typing import Any
 
 from planner.errors import IntakeError, PlannerError, Where
 
-__all__ = ["FORM_CSV", "FORM_XLSX", "STABILITY_CSV", "REPLICATES", "run_order",
-           "host_checks", "form_text", "read_values", "record", "waive", "assess",
-           "shipping_gate", "recorded", "waiver", "to_json"]
+__all__ = ["FORM_CSV", "FORM_XLSX", "STABILITY_CSV", "FORM_NAMES", "REPLICATES", "run_order",
+           "host_checks", "form_text", "form_xlsx", "read_values", "record", "waive", "assess",
+           "shipping_gate", "recorded", "waiver", "to_json", "checks_of", "write_forms",
+           "previous_sigma", "form_order", "state_lines"]
 
 FORM_CSV = "homogeneity-form.csv"
 FORM_XLSX = "homogeneity-form.xlsx"
 STABILITY_CSV = "stability-form.csv"
+FORM_NAMES = {"homogeneity": "homogeneity-form", "stability": "stability-form"}
+"""File stems of the host's check forms in the round's ``host/`` folder (.csv and .xlsx)."""
 REPLICATES = 2
 """Each unit is measured twice (duplicates), as ISO 13528 B.2 describes."""
 _EVENT = {"homogeneity": "homogeneity-form", "stability": "stability-form"}
 _WAIVED = "homogeneity-waived"
-_COLUMNS = ("run", "code", "material", "replicate")
+_COLUMNS = ("run", "code", "replicate")
 
 
 def run_order(secret: bytes, codes: Sequence[str], replicates: int = REPLICATES,
@@ -56,8 +61,14 @@ def run_order(secret: bytes, codes: Sequence[str], replicates: int = REPLICATES,
     only."""
     from planner.draw import Stream
 
-    slots = [(code, rep) for code in sorted(codes) for rep in range(1, replicates + 1)]
-    return Stream(secret, purpose).shuffle(slots)
+    slots = [code for code in sorted(codes) for _ in range(replicates)]
+    seen: dict[str, int] = {}
+    out: list[tuple[str, int]] = []
+    # A unit's replicates are alike: numbered in the order they are measured.
+    for code in Stream(secret, purpose).shuffle(slots):
+        seen[code] = seen.get(code, 0) + 1
+        out.append((code, seen[code]))
+    return out
 
 
 def host_checks(units: Sequence[Any]) -> dict[str, dict[str, str]]:
@@ -97,6 +108,8 @@ def form_text(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
                        ("decimal", decimal)):
         buf.write(f"# {key}: {value}\n")
     buf.write(f"# {what}; a blank value needs a remark\n")
+    buf.write("# each unit's material is on its label and on the preparation sheet; n/a: "
+              "this property is not measured on the unit's material\n")
     writer = csv.writer(buf, delimiter=sep, lineterminator="\n")
     columns = [name for _, name in _value_columns(study)]
     writer.writerow([*_COLUMNS, *columns, "remarks"])
@@ -104,8 +117,133 @@ def form_text(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
         material = checks[code]
         cells = ["" if study.measurand(mid).applies_to(material) else "n/a"
                  for mid, _ in _value_columns(study)]
-        writer.writerow([run, codebook.format(code), material, rep, *cells, ""])
+        writer.writerow([run, codebook.format(code), rep, *cells, ""])
     return buf.getvalue()
+
+
+def form_xlsx(csv_text: str) -> bytes:
+    """Return the XLSX twin of a check form's CSV: the identity lines as ``# key: value`` in
+    column A, the header and the rows; only the value and remarks cells are open (sheet
+    protection without a password: it stops slips, not intent) and the value cells take
+    numbers only. A spreadsheet stores numbers without a decimal mark, so the form's
+    decimal convention matters for the CSV only."""
+    from openpyxl import Workbook
+    from openpyxl.styles import Font, PatternFill, Protection
+    from openpyxl.worksheet.datavalidation import DataValidation
+
+    lines = csv_text.splitlines()
+    notes = [line for line in lines if line.startswith("#")]
+    body = [line for line in lines if line and not line.startswith("#")]
+    sep = ";" if body[0].count(";") > body[0].count(",") else ","
+    rows = list(csv.reader(io.StringIO("\n".join(body)), delimiter=sep))
+    header, data = rows[0], rows[1:]
+    book = Workbook()
+    sheet = book.active
+    sheet.title = "check form"
+    for note in notes:
+        sheet.append([note])
+        sheet.cell(sheet.max_row, 1).font = Font(italic=True, color="6B6B6B")
+    sheet.append([])
+    sheet.append(header)
+    top = sheet.max_row
+    for cell in sheet[top]:
+        cell.font = Font(bold=True)
+        cell.fill = PatternFill("solid", fgColor="EEF3F3")
+    for row in data:
+        sheet.append([int(c) if i in (0, 2) and c.isdigit() else (c or None)
+                      for i, c in enumerate(row)])
+    value_columns = range(len(_COLUMNS) + 1, len(header))  # 1-based, before 'remarks'
+    check = DataValidation(type="decimal", operator="between", formula1="-1E+300",
+                           formula2="1E+300", allow_blank=True, showErrorMessage=True,
+                           errorTitle="not a number", error="Type the measured value as a number.")
+    sheet.add_data_validation(check)
+    grey = PatternFill("solid", fgColor="D9DCDD")
+    for r in range(top + 1, sheet.max_row + 1):
+        for c in [*value_columns, len(header)]:
+            cell = sheet.cell(r, c)
+            if cell.value == "n/a":
+                cell.fill = grey
+                continue
+            cell.protection = Protection(locked=False)
+            if c != len(header):
+                check.add(cell.coordinate)
+    for i, width in enumerate([6, 14, 10] + [12] * len(value_columns) + [40], start=1):
+        sheet.column_dimensions[sheet.cell(1, i).column_letter].width = width
+    sheet.freeze_panes = sheet.cell(top + 1, 1)
+    sheet.protection.sheet = True
+    out = io.BytesIO()
+    book.save(out)
+    return out.getvalue()
+
+
+def write_forms(study: Any, staging: Path, round_id: str, host: str,
+                checks: Mapping[str, Mapping[str, str]], secret: bytes, *, root: Path) -> None:
+    """Write the host's check forms (CSV and XLSX) into ``staging/host`` (owner-only)."""
+    from planner import files
+
+    decimal = next(lab.decimal for lab in study.laboratories if lab.id == host)
+    for kind, stem in FORM_NAMES.items():
+        if not checks.get(kind):
+            continue
+        text = form_text(study, round_id, kind, checks[kind], secret, decimal=decimal)
+        files.write_text(staging / "host" / f"{stem}.csv", text, root=root, private=True)
+        files.write_bytes(staging / "host" / f"{stem}.xlsx", form_xlsx(text), root=root,
+                          private=True)
+
+
+def checks_of(ledger: Any, round_id: str) -> dict[str, dict[str, str]] | None:
+    """Return the host's check units of a round ({kind: {code: material}}) as the planning
+    event recorded them, or None for a round planned without them."""
+    planned = ledger.events(round_id, "planned")
+    found = planned[-1].detail.get("host_checks") if planned else None
+    return {k: dict(v) for k, v in found.items()} if isinstance(found, dict) else None
+
+
+def previous_sigma(study_dir: Path, ledger: Any, round_id: str
+                   ) -> dict[str, dict[str, float]]:
+    """Return measurand -> material -> sigma_pt of the newest evaluated round of the study
+    before ``round_id`` (its statistics.json), or {} when there is none."""
+    from planner import plan
+
+    ids = [r.round for r in ledger.rounds()]
+    earlier = ids[:ids.index(round_id)] if round_id in ids else ids
+    for other in reversed(earlier):
+        path = plan.round_dir(study_dir, other) / "report" / "statistics.json"
+        try:
+            data = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        out: dict[str, dict[str, float]] = {}
+        for mid, block in (data.get("measurands") or {}).items():
+            for material, scores in (block.get("scores") or {}).items():
+                sigma = scores.get("sigma_pt") if isinstance(scores, dict) else None
+                if isinstance(sigma, (int, float)) and sigma > 0:
+                    out.setdefault(mid, {})[material] = float(sigma)
+        if out:
+            return out
+    return {}
+
+
+def form_order(path: Path) -> list[tuple[str, int]]:
+    """Return the (code, replicate) rows of a check form in the order of its run column
+    (CSV or XLSX), for ``verify``; rows it cannot read are left out, so an edited form
+    differs from the order the secret draws."""
+    from planner import codes as codebook
+    from planner import forms
+
+    try:
+        form = forms.read_form(path)
+    except PlannerError:
+        return []
+    rows: list[tuple[int, str, int]] = []
+    for row in form.rows:
+        try:
+            rows.append((int(str(row.get("run")).strip()),
+                         codebook.compact(str(row.get("code") or "")),
+                         int(str(row.get("replicate")).strip())))
+        except (ValueError, TypeError, PlannerError):
+            continue
+    return [(code, rep) for _, code, rep in sorted(rows)]
 
 
 def _number(raw: Any, decimal: str) -> float:
@@ -237,9 +375,10 @@ def waive(ledger: Any, round_id: str, reason: str) -> None:
 
 
 def recorded(ledger: Any, round_id: str, kind: str) -> dict[str, Any] | None:
-    """Return the newest recorded form of a check, or None."""
+    """Return the newest recorded form of a check (with ``at``, when it was recorded), or
+    None."""
     events = ledger.events(round_id, _EVENT[kind])
-    return dict(events[-1].detail) if events else None
+    return {**events[-1].detail, "at": events[-1].at} if events else None
 
 
 def waiver(ledger: Any, round_id: str) -> dict[str, Any] | None:
@@ -288,6 +427,13 @@ def assess(study: Any, checks: Mapping[str, Mapping[str, str]], ledger: Any, rou
     out["recorded"] = True
     out["file"] = form.get("file")
     out["sha256"] = form.get("sha256")
+    out["at"] = form.get("at")
+    out["stability_at"] = late.get("at") if late else None
+    # Recorded after the first packing list was printed: the check did not gate this round.
+    printed = [e.at for e in ledger.events(round_id, "printed")
+               if any(str(d).endswith(("packing-list.pdf", "handover.pdf"))
+                      for d in e.detail.get("documents", ()))]
+    out["after_shipping"] = bool(printed) and min(printed) < str(form.get("at"))
     out["remarks"] = form.get("remarks", {})
     for measurand in study.all_measurands:
         per: dict[str, Any] = {}
@@ -332,15 +478,48 @@ def shipping_gate(study: Any, ledger: Any, round_id: str,
         return None
     found = assess(study, checks, ledger, round_id)
     if not found["recorded"]:
-        return ("the host's homogeneity check is not recorded yet: record it with 'ringplan "
-                "homogeneity DIR --round R FILE', or waive it with --waive \"reason\"")
+        return (f"the host's homogeneity check is not recorded yet: record the filled "
+                f"host/{FORM_CSV} with 'ringplan homogeneity STUDY_DIR --round {round_id} FILE', "
+                f"or waive the check with 'ringplan homogeneity STUDY_DIR --round {round_id} "
+                "--waive REASON'")
     failed = [f"{mid}/{mat}: {entry['verdict']}" for mid, per in found["measurands"].items()
               for mat, entry in per.items()
               if entry["verdict"] in ("not sufficiently homogeneous", "cannot be computed")]
     if failed:
         return ("the homogeneity check did not pass (" + "; ".join(failed) + "); prepare the "
-                "batch again, or waive the check with --waive \"reason\"")
+                "batch again and plan a new round, or waive the check with 'ringplan "
+                f"homogeneity STUDY_DIR --round {round_id} --waive REASON'")
     return None
+
+
+def state_lines(study: Any, ledger: Any, round_id: str,
+                checks: Mapping[str, Mapping[str, str]]) -> list[str]:
+    """Return what ``status`` says of the host's checks: recorded or not, the verdicts in
+    short, a waiver, and whether the packing lists may be printed."""
+    found = assess(study, checks, ledger, round_id)
+    out: list[str] = []
+    if checks.get("homogeneity"):
+        if not found["recorded"]:
+            out.append("homogeneity check: not recorded yet")
+        else:
+            verdicts: dict[str, list[str]] = {}
+            for mid, per in found["measurands"].items():
+                for mat, entry in per.items():
+                    verdicts.setdefault(entry["verdict"], []).append(f"{mid}/{mat}")
+            out.append(f"homogeneity check: {found.get('file')} recorded; " + "; ".join(
+                f"{verdict}: {', '.join(items) if len(items) < 6 else f'{len(items)} items'}"
+                for verdict, items in verdicts.items()))
+    if found["waiver"]:
+        out.append(f"homogeneity check waived on {found['waiver']['at']}: "
+                   f"{found['waiver']['reason']}")
+    if checks.get("stability"):
+        late = recorded(ledger, round_id, "stability")
+        out.append(f"stability check: {late.get('file')} recorded" if late else
+                   "stability check: not recorded yet (the host measures its retained units "
+                   "after the round)")
+    gate = shipping_gate(study, ledger, round_id, checks)
+    out.append(f"packing lists: held: {gate}" if gate else "packing lists: may be printed")
+    return out
 
 
 def to_json(data: Mapping[str, Any]) -> str:

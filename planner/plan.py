@@ -22,7 +22,7 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from planner import circulate, codes, design, draw, files, language, seal, tokens
+from planner import circulate, codes, design, draw, files, homogeneity, language, seal, tokens
 from planner.errors import LedgerError, PlannerError, SealError, Where
 
 if TYPE_CHECKING:
@@ -740,6 +740,10 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                 _write(staging / "labs" / plan.host / name,
                        result_form_csv(study, manifest, plan.host, visit,
                                        token=token[plan.host]), root=study_dir)
+            checks = homogeneity.host_checks(plan.units) if plan.route is None else None
+            if checks and any(checks.values()):
+                homogeneity.write_forms(study, staging, plan.round_id, plan.host, checks,
+                                        plan.secret, root=study_dir)
             ledger.add_round(
                 study=study.id, round_id=plan.round_id, host=plan.host,
                 fingerprint=plan.fingerprint, dates=manifest["dates"],
@@ -755,6 +759,10 @@ def write_round(study: Study, study_dir: Path, plan: RoundPlan, ledger: Ledger, 
                       "sealing": sealing_of(study),
                       # only digests: a token in the ledger could be copied
                       "tokens": {lab: tokens.digest(t) for lab, t in token.items()}}
+            if checks and any(checks.values()):
+                # which host unit holds which material: the host's check forms are read
+                # against it before the key is opened (these units reach no participant)
+                detail["host_checks"] = checks
             if not study.shorthand:
                 # which cells of the forms are n/a: intake reads them from the manifest
                 detail["measured"] = _measured_digest(manifest)

@@ -235,6 +235,11 @@ class Evaluation(_Model):
     reference_lab: str | None = None
     pool_alpha: float = Field(default=0.25, gt=0, lt=1)
     by_material: dict[str, MaterialEvaluation] = {}
+    # Where a between-unit SD or an instability that is not negligible goes (ISO 13528
+    # B.2.4, B.3): "uncertainty" widens u(x_pt), "sigma_pt" widens sigma_pt. None reads
+    # as "uncertainty" and stays out of the round definition, so rounds planned before
+    # the setting existed keep their fingerprints.
+    between_units: Literal["uncertainty", "sigma_pt"] | None = None
 
     _shorthand = field_validator("sigma_pt", mode="before")(
         lambda cls, raw: _policy_shorthand(raw))
@@ -253,6 +258,11 @@ class Evaluation(_Model):
         """Return the known value of a material, or None when it has none."""
         own = self.by_material.get(material)
         return own.known_value if own is not None else None
+
+    @property
+    def widen(self) -> str:
+        """Return where a between-unit SD or instability that is not negligible goes."""
+        return self.between_units or "uncertainty"
 
     def assigned_for(self, material: str) -> str:
         """Return where a material's assigned value comes from: known, reference or consensus."""

@@ -78,8 +78,9 @@ def clock(monkeypatch):
     return state
 
 
-def plan_example_round(study_dir, round_id=ROUND, host="kal", receive_by=None):
-    """Plan a round of the study in ``study_dir`` with the fixed secret; return the RoundPlan."""
+def plan_example_round(study_dir, round_id=ROUND, host="kal", receive_by=None, *, ship=True):
+    """Plan a round of the study in ``study_dir`` with the fixed secret; return the RoundPlan.
+    ``ship``: record a passing homogeneity check too, so that packing lists may be printed."""
     from planner import calendar, plan, spec
     from planner.ledger import Ledger
 
@@ -89,7 +90,68 @@ def plan_example_round(study_dir, round_id=ROUND, host="kal", receive_by=None):
         result = plan.plan_round(study, round_id=round_id, host=host, dates=dates,
                                  secret=SECRET, taken=ledger.codes())
         plan.write_round(study, study_dir, result, ledger, passphrase=PASSPHRASE)
+    if ship:
+        clear_shipping(study_dir, round_id)
     return result
+
+
+def homogeneity_filled(study_dir, round_id=ROUND, *, spread=0.001, off=None, kind="homogeneity"):
+    """Return the host's check form of a planned round filled in: every value 10 plus a small
+    deterministic scatter (``spread`` times 0..4), plus ``off[material]`` on every unit of
+    that material's first half of units (a between-unit difference), in the form's decimal
+    convention."""
+    from planner import codes, homogeneity, plan
+    from planner.ledger import Ledger
+
+    with Ledger.open(study_dir) as ledger:
+        material_of = (homogeneity.checks_of(ledger, round_id) or {}).get(kind, {})
+    path = plan.round_dir(study_dir, round_id) / "host" / f"{kind}-form.csv"
+    lines = path.read_text(encoding="utf-8").splitlines()
+    comma = "# decimal: comma" in lines
+    sep = ";" if comma else ","
+    header = None
+    seen: dict[str, list[str]] = {}
+    out = []
+    for line in lines:
+        if line.startswith("#"):
+            out.append(line)
+            continue
+        cells = line.split(sep)
+        if header is None:
+            header = cells
+            out.append(line)
+            continue
+        run, code = int(cells[0]), cells[1]
+        material = material_of[codes.compact(code)]
+        units = seen.setdefault(material, [])
+        if code not in units:
+            units.append(code)
+        shift = (off or {}).get(material, 0.0) if units.index(code) % 2 == 0 else 0.0
+        for i, name in enumerate(header):
+            if i >= 3 and name != "remarks" and cells[i] != "n/a":
+                text = f"{10 + spread * ((run * 7) % 5) + shift:.4f}"
+                cells[i] = text.replace(".", ",") if comma else text
+        out.append(sep.join(cells))
+    return out
+
+
+def clear_shipping(study_dir, round_id=ROUND):
+    """Record a passing homogeneity check for a planned round (when it has homogeneity units),
+    so that its packing lists may be printed; tests of the shipping gate itself do not call it."""
+    from planner import homogeneity, plan
+    from planner.ledger import Ledger
+
+    if not (plan.round_dir(study_dir, round_id) / "host" / homogeneity.FORM_CSV).is_file():
+        return
+    form = Path(study_dir) / f".homogeneity-{round_id}.csv"
+    form.write_text("\n".join(homogeneity_filled(study_dir, round_id)) + "\n", encoding="utf-8")
+    with Ledger.open(study_dir) as ledger:
+        study = plan.round_study(study_dir, round_id, ledger)
+        checks = homogeneity.checks_of(ledger, round_id)
+        data = homogeneity.read_values(study, round_id, "homogeneity", checks["homogeneity"],
+                                       form)
+        homogeneity.record(ledger, round_id, "homogeneity", data)
+    form.unlink()
 
 
 @pytest.fixture

@@ -82,3 +82,27 @@ def test_cli_demo_says_what_to_open_first(tmp_path, runner):
     assert res.exit_code == 0, res.stderr
     assert "for this demo only" in res.stdout
     assert "report.pdf" in res.stdout and "letter-" in res.stdout and "run-sheet.pdf" in res.stdout
+
+
+def test_the_inhomogeneous_grade_holds_the_parcels_until_the_waiver(built):
+    material, measurand, _ = demo.INHOMOGENEOUS
+    raw = json.loads(built["statistics"].read_text(encoding="utf-8"))
+    checked = raw["homogeneity"]
+    verdicts = {(mid, m): e["verdict"] for mid, per in checked["measurands"].items()
+                for m, e in per.items()}
+    assert verdicts.pop((measurand, material)) == "not sufficiently homogeneous"
+    assert all(v.startswith("sufficiently homogeneous") for v in verdicts.values()), verdicts
+    assert built["held"] and "did not pass" in built["held"]
+    assert checked["waiver"]["reason"] == demo.WAIVER
+    assert list(checked["widened"]) == [measurand]
+    assert list(checked["widened"][measurand]) == [material]
+    # the packing lists were printed after the waiver, the host's documents before the check
+    from planner.ledger import Ledger
+
+    with Ledger.open(built["study_dir"]) as ledger:
+        events = [(e.kind, e.at) for e in ledger.events(demo.ROUND)
+                  if e.kind in ("printed", "homogeneity-form", "homogeneity-waived")]
+    kinds = [k for k, _ in events]
+    assert kinds == ["printed", "homogeneity-form", "homogeneity-waived", "printed"]
+    assert all(m["stability"]["verdict"].startswith("stable")
+               for per in checked["measurands"].values() for m in per.values())

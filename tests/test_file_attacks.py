@@ -17,7 +17,8 @@ import subprocess
 import sys
 
 import pytest
-from conftest import LABS, ROUND, filled, nothing_recorded, receive, run_cli, write
+from conftest import (LABS, ROUND, filled, homogeneity_filled, nothing_recorded, receive, run_cli,
+                      write)
 
 from planner import files, plan
 from planner.ledger import Ledger
@@ -58,6 +59,10 @@ def _one_line(result):
     return lines[0]
 
 
+_CHECK_FORMS = ["homogeneity-form.csv", "homogeneity-form.xlsx", "stability-form.csv",
+                "stability-form.xlsx"]  # the host's check forms, written by plan
+
+
 def _dead_pid():
     child = subprocess.Popen([sys.executable, "-c", "pass"])
     child.wait()
@@ -83,6 +88,8 @@ def test_after_a_whole_round_the_private_files_are_the_owners_alone(example_dir,
         assert result.exit_code == 0, (args, result.stdout, result.stderr)
 
     ok("plan", example_dir, "--round", ROUND, "--host", "kal")
+    ok("homogeneity", example_dir, "--round", ROUND,
+       write(tmp_path, "homogeneity.csv", homogeneity_filled(example_dir)))
     ok("print", example_dir, "--round", ROUND)
     forms = [write(tmp_path, f"{lab}.csv", filled(example_dir, lab)) for lab in LABS]
     assert receive(runner, example_dir, *forms).exit_code == 0
@@ -93,12 +100,13 @@ def test_after_a_whole_round_the_private_files_are_the_owners_alone(example_dir,
     for name in ("host", "labs", "results", ".intake", "report"):
         assert _mode(folder / name) == 0o700, name
     host = sorted(p.name for p in (folder / "host").iterdir())
-    assert host == ["labels.pdf", "prep-sheet.pdf"]
+    # checks/: the filled check forms as recorded
+    assert host == sorted([*_CHECK_FORMS, "checks", "labels.pdf", "prep-sheet.pdf"])
     report = sorted(p.name for p in (folder / "report").iterdir())
     assert {f"letter-{lab}.pdf" for lab in LABS} <= set(report) and "report.pdf" in report
-    for path in [*(folder / "host").iterdir(), *(folder / "report").iterdir(),
+    for path in [*(folder / "host").rglob("*"), *(folder / "report").iterdir(),
                  folder / "key.sealed", folder / "key.json"]:
-        assert _mode(path) == 0o600, path
+        assert _mode(path) == (0o700 if path.is_dir() else 0o600), path
     stored = sorted((folder / "results").iterdir())
     assert len([p for p in stored if p.suffix == ".csv"]) == len(LABS)
     for path in stored:  # the forms as received are read-only as well
@@ -118,13 +126,14 @@ def test_after_a_whole_round_the_private_files_are_the_owners_alone(example_dir,
 
 def test_print_refuses_a_host_folder_that_is_a_link(planned, runner, passphrase, tmp_path):
     outside = tmp_path / "outside"
-    outside.mkdir()
     host = plan.round_dir(planned, ROUND) / "host"
+    host.rename(outside)  # plan's check forms move with it: only a link is left
     host.symlink_to(outside, target_is_directory=True)
+    inside = sorted(p.name for p in outside.iterdir())
     before = _tree(planned)
     line = _one_line(run_cli(runner, "print", planned, "--round", ROUND))
     assert line == f"error: {host}: {LINK}"
-    assert list(outside.iterdir()) == []
+    assert sorted(p.name for p in outside.iterdir()) == inside
     assert _tree(planned) == before
     assert _events(planned, "printed") == []  # refused before the key was used
 
@@ -291,7 +300,7 @@ def test_print_on_a_full_disk_leaves_no_half_document(planned, runner, passphras
     line = _one_line(result)
     assert line == (f"error: {folder / 'host' / 'labels.pdf'}: no space left on the disk; free "
                     "some space and run the command again")
-    assert list((folder / "host").iterdir()) == []
+    assert sorted(p.name for p in (folder / "host").iterdir()) == _CHECK_FORMS  # plan's
 
 
 def test_receive_on_a_full_disk_records_nothing(planned, runner, tmp_path, monkeypatch):
@@ -328,7 +337,6 @@ def test_only_the_os_errors_a_user_causes_are_one_line(example_dir, runner, monk
 
 def test_status_removes_and_names_the_temporary_files_of_a_killed_print(planned, runner):
     folder = plan.round_dir(planned, ROUND)
-    (folder / "host").mkdir()
     dead = _dead_pid()
     killed = folder / "host" / f".labels.pdf.{dead}.a1b2c3{files.TEMP_SUFFIX}"
     legacy = folder / "labs" / "tor" / f".run-sheet.pdf.{dead}.tmp"

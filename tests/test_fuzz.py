@@ -72,6 +72,7 @@ def _assert_clean(result) -> None:
 @settings(max_examples=SPEC_EXAMPLES, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(changes=st.lists(st.tuples(st.sampled_from(PATHS), _value), min_size=1, max_size=2))
 @example(changes=[(("laboratories", 2, "host_weight"), "1E310")])  # found by a CI run
+@example(changes=[(("study", "unit"), "/")])  # '[/]' read as markup, found by a search run
 def test_any_value_in_any_spec_field_is_one_line_or_a_valid_study(tmp_path_factory, changes):
     import copy
 

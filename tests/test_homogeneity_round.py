@@ -16,13 +16,14 @@ INHOMOGENEOUS = "RE-MIX"
 
 @pytest.fixture
 def round_(example_dir, clock):
-    result = plan_example_round(example_dir)
+    result = plan_example_round(example_dir, ship=False)
     checks = homogeneity.host_checks(result.units)
     return spec.load(example_dir), example_dir, checks
 
 
-def _fill(text: str, values, *, remark_for=None) -> str:
-    """Fill the CSV check form: values(code, material, replicate) -> number or None."""
+def _fill(text: str, values, checks, *, remark_for=None) -> str:
+    """Fill the CSV check form: values(code, material, replicate) -> number or None; the
+    form names no material, ``checks`` (code -> material) does."""
     lines = text.splitlines()
     sep = ";" if "# decimal: comma" in text else ","
     out = []
@@ -37,7 +38,8 @@ def _fill(text: str, values, *, remark_for=None) -> str:
             out.append(line)
             continue
         row = dict(zip(header, cells))
-        v = values(codes.compact(row["code"]), row["material"], int(row["replicate"]))
+        code = codes.compact(row["code"])
+        v = values(code, checks[code], int(row["replicate"]))
         row["value"] = "" if v is None else f"{v:.4f}".replace(".", "," if sep == ";" else ".")
         if v is None and remark_for:
             row["remarks"] = remark_for
@@ -65,11 +67,11 @@ def test_the_form_lists_every_unit_twice_in_an_order_the_secret_rebuilds(round_)
     text = homogeneity.form_text(study, "2027-1", "homogeneity", checks["homogeneity"], SECRET)
     rows = [ln.split(",") for ln in text.splitlines() if not ln.startswith("#")][1:]
     assert len(rows) == 2 * len(checks["homogeneity"])
-    pairs = [(codes.compact(r[1]), int(r[3])) for r in rows]
+    pairs = [(codes.compact(r[1]), int(r[2])) for r in rows]
     assert sorted(pairs) == sorted((c, k) for c in checks["homogeneity"] for k in (1, 2))
     assert pairs == homogeneity.run_order(SECRET, list(checks["homogeneity"]))
     # not material by material: the order mixes materials and replicates
-    materials = [r[2] for r in rows]
+    materials = [checks["homogeneity"][codes.compact(r[1])] for r in rows]
     assert sum(a != b for a, b in zip(materials, materials[1:])) > len(rows) / 2
     assert homogeneity.run_order(bytes(32), list(checks["homogeneity"])) != pairs
 
@@ -82,7 +84,8 @@ def test_record_assess_and_the_gate(round_, tmp_path):
         # one material with a between-unit SD of 3 % against sigma_pt = 5 %: s_s >> 0.3 sigma_pt
         filled = tmp_path / "h.csv"
         filled.write_text(_fill(text, _simulated(
-            lambda m: 0.03 if m == INHOMOGENEOUS else 0.0005)), encoding="utf-8")
+            lambda m: 0.03 if m == INHOMOGENEOUS else 0.0005), checks["homogeneity"]),
+            encoding="utf-8")
         data = homogeneity.read_values(study, "2027-1", "homogeneity", checks["homogeneity"],
                                        filled)
         homogeneity.record(ledger, "2027-1", "homogeneity", data)
@@ -115,13 +118,15 @@ def test_a_homogeneous_batch_opens_the_gate_and_stability_is_judged(round_, tmp_
     study, folder, checks = round_
     text = homogeneity.form_text(study, "2027-1", "homogeneity", checks["homogeneity"], SECRET)
     path = tmp_path / "h.csv"
-    path.write_text(_fill(text, _simulated(lambda m: 0.0005)), encoding="utf-8")
+    path.write_text(_fill(text, _simulated(lambda m: 0.0005), checks["homogeneity"]),
+                    encoding="utf-8")
     later = homogeneity.form_text(study, "2027-1", "stability", checks["stability"], SECRET)
     drift = tmp_path / "s.csv"
     drift.write_text(_fill(later, lambda c, m, k: {"HD-BM5": 0.32, "LL-F1": 1.05,
                                                    "PP-H12": 12.0, "PP-C8": 7.8,
                                                    "RE-MIX": 2.6 * 1.04,  # 4 % lower MFR
-                                                   "PP-FR": 24.0}[m]), encoding="utf-8")
+                                                   "PP-FR": 24.0}[m], checks["stability"]),
+                     encoding="utf-8")
     with Ledger.open(folder) as ledger:
         homogeneity.record(ledger, "2027-1", "homogeneity", homogeneity.read_values(
             study, "2027-1", "homogeneity", checks["homogeneity"], path))
@@ -136,11 +141,11 @@ def test_a_homogeneous_batch_opens_the_gate_and_stability_is_judged(round_, tmp_
 def test_form_mistakes_are_located(round_, tmp_path):
     study, _, checks = round_
     text = homogeneity.form_text(study, "2027-1", "homogeneity", checks["homogeneity"], SECRET)
-    good = _fill(text, _simulated(lambda m: 0.0005))
+    good = _fill(text, _simulated(lambda m: 0.0005), checks["homogeneity"])
     lines = good.splitlines()
     first = next(i for i, ln in enumerate(lines) if not ln.startswith("#")) + 1
     cells = lines[first].split(",")
-    cells[4] = ""
+    cells[3] = ""  # run, code, replicate, value
     lines[first] = ",".join(cells)
     path = tmp_path / "blank.csv"
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")

@@ -8,7 +8,7 @@ import json
 
 import pytest
 
-from conftest import LABS, ROUND, filled, receive, run_cli, write
+from conftest import LABS, ROUND, clear_shipping, filled, receive, run_cli, write
 from planner import plan
 
 TRUSTEES = ("t1", "t2", "t3")
@@ -123,6 +123,7 @@ def test_the_participants_documents_need_no_key(trustee_round, runner):
     # and the forms plan wrote; only labels and the preparation sheet need the key.
     study, _, _ = trustee_round
     folder = plan.round_dir(study, ROUND)
+    clear_shipping(study, ROUND)
     for only in ("packing", "runsheets", "forms"):
         made = run_cli(runner, "print", study, "--round", ROUND, "--only", only)
         assert made.exit_code == 0, (only, made.stderr)

@@ -101,7 +101,8 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
                 only: str | None = None, lab: str | None = None,
                 codes: Sequence[str] | None = None, start_at: int = 1,
                 sheet: str | None = None, offset_mm: tuple[float, float] = (0.0, 0.0),
-                workers: int = 1, issued: Collection[str] = ()) -> list[Path]:
+                workers: int = 1, issued: Collection[str] = (),
+                hold: Collection[str] = ()) -> list[Path]:
     """Write the documents of a round into its folder and return their paths.
 
     ``only`` picks one kind of ``KINDS``; ``lab`` limits every document to one
@@ -110,7 +111,8 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
     of those codes only, to ``labels-reprint.pdf``; ``issued`` are the codes the host sent
     as replacements, labelled as spares (``labels.host_labels``). Raises LedgerError if the
     round was not planned, SealError if the key is not the round's,
-    PlannerError for an unknown kind, laboratory or sheet.
+    PlannerError for an unknown kind, laboratory or sheet. ``hold`` names kinds to leave
+    out (the packing lists while the shipping gate is closed).
     """
     from planner import plan
     from planner.render import _qr, labels, prep_sheet
@@ -121,6 +123,7 @@ def print_round(study: Study, study_dir: Path, round_id: str, *, key: dict[str, 
         _check_key(manifest, key)
     wanted, geometry = check_options(study, study_dir, manifest, only=only, lab=lab,
                                      codes=codes, sheet=sheet)
+    wanted -= set(hold)
     use_fonts(study, study_dir)
     if key is None and needs_key(wanted, labels=geometry is not None, lab=lab):
         from planner.errors import SealError

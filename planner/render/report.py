@@ -277,6 +277,7 @@ def _front(d: _Doc, s: Mapping[str, Any], lead: str) -> list[Any]:
         d.p("Round report", "title"),
         d.p(lead, "lead"),
         d.p(_opening_text(s)),
+        d.p(_layout.escape(" ".join(items_lines(s))), "small"),
         Spacer(1, 1.5 * _MM),
         d.p(f"Decoding key SHA-256 (equal to the fingerprint printed before shipping): "
             f"<font face='{_layout.MONO_REGULAR}' size='7.5'>"
@@ -1000,6 +1001,160 @@ def _results(d: _Doc, s: Mapping[str, Any], rows: Sequence[Unblinded]) -> list[A
     return out
 
 
+_VERDICT_SHORT = {"sufficiently homogeneous": "passes",
+                  "sufficiently homogeneous by the extended criterion": "passes (extended)",
+                  "not sufficiently homogeneous": "fails", "waits": "no sigma_pt",
+                  "stable": "stable", "stable within the uncertainty of the means":
+                  "stable (widened)", "not stable": "not stable"}
+
+
+def items_lines(statistics: Mapping[str, Any]) -> list[str]:
+    """Return the sentences (plain text) on the items' homogeneity and stability: what was
+    recorded, waived and done about it; the front page and the section use them."""
+    h = statistics.get("homogeneity")
+    if h is None:
+        return ["No homogeneity check: the round set no units aside for one when it was "
+                "planned."]
+    out: list[str] = []
+    if not h.get("recorded"):
+        out.append("The host's homogeneity check was not recorded: nothing is known of the "
+                   "differences between units beyond the participants' own results.")
+    else:
+        if h.get("after_shipping"):
+            out.append("The homogeneity check was recorded after the first packing lists were "
+                       "printed, so it did not decide whether the parcels left.")
+        failed = [f"{mid}/{m}" for mid, per in h["measurands"].items()
+                  for m, e in per.items() if e.get("verdict") == "not sufficiently homogeneous"]
+        unstable = [f"{mid}/{m}" for mid, per in h["measurands"].items()
+                    for m, e in per.items()
+                    if (e.get("stability") or {}).get("verdict") == "not stable"]
+        out.append("Homogeneity: " + ("every material passes." if not failed else
+                                      f"not sufficiently homogeneous: {', '.join(failed)}."))
+        if any(e.get("stability") for per in h["measurands"].values() for e in per.values()):
+            out.append("Stability: " + ("every material checked is stable." if not unstable
+                                        else f"not stable: {', '.join(unstable)}."))
+        else:
+            out.append("Stability: no stability check was recorded.")
+    waiver = h.get("waiver")
+    if waiver:
+        out.append(f"The coordinator waived the homogeneity check before shipping "
+                   f"({str(waiver.get('at', ''))[:16].replace('T', ' ')} UTC): "
+                   f"{str(waiver.get('reason', '')).rstrip('.')}.")
+    for mid, per in (h.get("widened") or {}).items():
+        for m, w in per.items():
+            where = "sigma_pt" if w["into"] == "sigma_pt" else "u(x_pt)"
+            out.append(f"{mid}/{m}: {where} of the scores includes {w['why']} "
+                       f"(ISO 13528 B.2-B.3; combined {w['sd']:.3g}).")
+    return out
+
+
+def _items(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
+    """The homogeneity and stability of the items: the host's figures, the criteria, what
+    was waived or done, per measurand and material."""
+    from reportlab.platypus import CondPageBreak
+
+    from planner.render import _charts
+
+    esc = _layout.escape
+    h = s.get("homogeneity")
+    out: list[Any] = [CondPageBreak(60 * _MM),
+                      d.p("Homogeneity and stability of the items", "h2")]
+    if h is not None and h.get("recorded"):
+        out.append(d.p(esc(
+            "The host measured each homogeneity unit twice under repeatability conditions, "
+            "in an order drawn from the round secret (form "
+            f"{h.get('file') or '?'}, SHA-256 {str(h.get('sha256') or '')[:16]}..., recorded "
+            f"{str(h.get('at') or '')[:16].replace('T', ' ')} UTC"
+            + (", after the first packing lists were printed" if h.get("after_shipping")
+               else ", before the packing lists were printed") + "). "
+            "s_x: SD of the unit means; s_w: within-unit SD; s_s: between-unit SD, "
+            "sqrt(s_x² - s_w²/2), 0 when negative. limit: s_s <= 0.3 sigma_pt; ext. limit: "
+            "sqrt(F1 (0.3 sigma_pt)² + F2 s_w²), F1 and F2 for the actual g (ISO 13528 "
+            "B.2)."), "small"))
+        head = ["measurand / material", "g", "mean", "s_x", "s_w", "s_s", "sigma_pt",
+                "limit", "ext. limit", "verdict"]
+        rows: list[list[Any]] = [head]
+        shade: list[tuple[Any, ...]] = []
+        notes: list[str] = []
+        stab: list[list[Any]] = [["measurand / material", "n1", "n2", "mean 1", "mean 2",
+                                  "difference", "limit", "widened", "verdict"]]
+        for mid, per in h["measurands"].items():
+            for m, e in per.items():
+                name = f"{mid} / {m}"
+                if "g" not in e:
+                    rows.append([name, "", "", "", "", "", "", "", "", e["verdict"]])
+                    notes.append(f"{mid}/{m}: {e.get('why')}")
+                    continue
+                rows.append([name, e["g"], _plain(e["mean"], 5), _plain(e["s_x"]),
+                             _plain(e["s_w"]),
+                             _plain(e["s_s"]) + ("*" if e["s_s_forced_zero"] else ""),
+                             _plain(e["sigma_pt"]), _plain(e["criterion"]),
+                             _plain(e["c"] ** 0.5) if e["c"] is not None else "",
+                             _VERDICT_SHORT.get(e["verdict"], e["verdict"])])
+                if e["verdict"] == "not sufficiently homogeneous":
+                    shade.append(("BACKGROUND", (9, len(rows) - 1), (9, len(rows) - 1),
+                                  d.hex(_charts.band_colour("unsatisfactory") or "#ffffff")))
+                notes.append(f"{mid}/{m}: sigma_pt from {e['sigma_pt_source']}.")
+                if e.get("why"):
+                    notes.append(f"{mid}/{m}: {e['why']}.")
+                if e.get("left_out"):
+                    notes.append(f"{mid}/{m}: {e['left_out']} unit(s) without both values "
+                                 "were left out.")
+                st = e.get("stability")
+                if st:
+                    stab.append([name, st["n_before"], st["n_after"],
+                                 _plain(st["mean_before"], 5), _plain(st["mean_after"], 5),
+                                 _plain(st["difference"]), _plain(st["criterion"]),
+                                 _plain(st["criterion_widened"]),
+                                 _VERDICT_SHORT.get(st["verdict"], st["verdict"])])
+        out.append(d.table(rows, [94, 16, 46, 44, 44, 44, 44, 42, 46, 62], size=7.2,
+                           right_from=1, extra=[("ALIGN", (9, 0), (9, -1), "LEFT"),
+                                                *shade]))
+        if any(e.get("s_s_forced_zero") for per in h["measurands"].values()
+               for e in per.values()):
+            out.append(d.p(esc("* s_x² < s_w²/2, so s_s is set to 0: common by chance in a "
+                               "small check, and no proof of a perfect batch."), "small"))
+        # Notes that say the same for every material of a measurand are said once.
+        seen: dict[str, None] = {}
+        for note in notes:
+            seen.setdefault(note)
+        out += [d.p(esc(n), "small") for n in _merge_sources(list(seen))]
+        if len(stab) > 1:
+            out.append(d.p(esc(
+                "Stability: the host's retained units, measured after the round (2: n2 "
+                "values, mean 2), against the homogeneity check (1: n1 values, mean 1). "
+                "difference: mean 2 - mean 1; limit: |difference| <= 0.3 sigma_pt; widened: "
+                "0.3 sigma_pt + 2 sqrt(u1² + u2²), u = s/sqrt(n) of each mean (ISO 13528 "
+                "B.5)."), "small"))
+            out.append(d.table(stab, [94, 22, 22, 50, 50, 54, 46, 50, 88], size=7.2,
+                               right_from=1, extra=[("ALIGN", (8, 0), (8, -1), "LEFT")]))
+    out += [d.p(esc(line), "bullet") for line in items_lines(s)]
+    return out
+
+
+def _plain(v: float | None, digits: int = 3) -> str:
+    """Return ``v`` to ``digits`` significant figures without an exponent ('-' for None)."""
+    import numpy as np
+
+    if v is None:
+        return "-"
+    return str(np.format_float_positional(float(v), precision=digits, unique=False,
+                                          fractional=False, trim="-"))
+
+
+def _merge_sources(notes: list[str]) -> list[str]:
+    """Return the notes with 'x/m: sigma_pt from S.' lines of one source joined per source."""
+    by: dict[str, list[str]] = {}
+    rest: list[str] = []
+    for note in notes:
+        head, sep, tail = note.partition(": sigma_pt from ")
+        if sep:
+            by.setdefault(tail, []).append(head)
+        else:
+            rest.append(note)
+    return [f"sigma_pt from {tail[:-1]}: {', '.join(heads)}." for tail, heads in by.items()] + rest
+
+
 def _methods(d: _Doc, statistics: Mapping[str, Any]) -> list[Any]:
     out: list[Any] = [d.p("Methods", "h2")]
     for name in ("gauge_rr", "iso5725_2", "iso13528"):
@@ -1069,6 +1224,7 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
             view = measurand_view(s, mid)
             view["section_prefix"] = f"{mid}: "
             story += _heading(d, view) + _measurand(d, view, by[mid])
+    story += _items(d, s)
     story += _methods(d, s)
     running = _layout.Running(s["study"], s["title"], s["round"], "round report",
                               "for the coordinator: names every laboratory")

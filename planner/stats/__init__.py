@@ -55,7 +55,7 @@ from typing import TYPE_CHECKING, Any
 from planner.errors import DataError, Where
 
 if TYPE_CHECKING:
-    from planner.stats.iso13528 import Known, SigmaPt
+    from planner.stats.iso13528 import Known, SigmaPt, Widen
 
 __all__ = ["Row", "read_long_csv", "evaluate_table", "check_reference", "summary_text",
            "by_measurand", "SHORTHAND_ID"]
@@ -212,6 +212,7 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                    exclude_labs_for_consensus: Sequence[str] = (),
                    known: Mapping[str, Known] | None = None,
                    resolution: float | None = None,
+                   widen: Mapping[str, Widen] | None = None,
                    also_without: Sequence[str] = ()) -> dict[str, Any]:
     """Return every statistic the table allows as a JSON-ready dict (floats, None for NaN).
 
@@ -222,7 +223,8 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
     every material, or is a mapping by material (a material not in it: "consensus");
     a "known" material takes its value and standard uncertainty from ``known``.
     ``resolution`` is the declared step the results are reported in (None: read from
-    the data). ``also_without`` names laboratories to leave out of a second consensus:
+    the data). ``widen`` maps a material to the between-unit SD or instability added to
+    its sigma_pt or u(x_pt) (``iso13528.Widen``). ``also_without`` names laboratories to leave out of a second consensus:
     ``scores_without[material]`` then holds that consensus (as ``scores`` does) and, under
     ``labs``, the scores of the laboratories left out against it, for every material whose
     assigned value is the consensus. Raises DataError for an empty table, a row without a
@@ -287,13 +289,15 @@ def evaluate_table(rows: Iterable[Row | Mapping[str, Any]], *,
                                sigma_pt=sig, assigned=method, reference_lab=reference_lab,
                                exclude_labs=exclude_labs_for_consensus,
                                known=known.get(material) if known and method == "known"
-                               else None, resolution=resolution)
+                               else None, resolution=resolution,
+                               widen=(widen or {}).get(material))
         out["scores"][material] = _plain_scores(sc)
         if also_without and method == "consensus":
             other = iso13528.evaluate(xv, lab_of, uncertainties=u[idx] if has_u else None,
                                       sigma_pt=sig, assigned=method,
                                       exclude_labs=[*exclude_labs_for_consensus, *also_without],
-                                      resolution=resolution)
+                                      resolution=resolution,
+                                      widen=(widen or {}).get(material))
             # The second consensus and the left-out laboratories' scores against it.
             out["scores_without"][material] = _plain_scores(other, labs=also_without)
 

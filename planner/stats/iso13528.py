@@ -186,6 +186,25 @@ class Known:
 
 
 @dataclass(frozen=True, slots=True)
+class Widen:
+    """A between-unit SD or an instability of the items that is not negligible, and where
+    it goes (ISO 13528:2022 §6.1 and B.2-B.3, as METHODS §4 records them): ``into``
+    "sigma_pt" gives sigma'_pt = sqrt(sigma_pt² + sd²), "uncertainty" gives
+    u'(x_pt) = sqrt(u(x_pt)² + sd²). ``why`` says what ``sd`` holds (s_s, u_stab)."""
+
+    into: Literal["sigma_pt", "uncertainty"]
+    sd: float
+    why: str
+
+    def __post_init__(self) -> None:
+        if self.into not in ("sigma_pt", "uncertainty"):
+            raise DataError(f"the items' variation goes into 'sigma_pt' or 'uncertainty', "
+                            f"not {self.into!r}")
+        if not (math.isfinite(self.sd) and self.sd >= 0):
+            raise DataError(f"the items' SD {self.sd!r} must be a finite number, 0 or more")
+
+
+@dataclass(frozen=True, slots=True)
 class RobustEstimate:
     """Algorithm A result: robust mean ``x`` and SD ``s``.
 
@@ -320,7 +339,7 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
              uncertainties: ArrayLike | None = None, sigma_pt: float | SigmaPt | None = None,
              assigned: str = "consensus", reference_lab: Hashable | None = None,
              exclude_labs: Sequence[Hashable] = (), known: Known | None = None,
-             resolution: float | None = None) -> Scores | Skipped:
+             resolution: float | None = None, widen: Widen | None = None) -> Scores | Skipped:
     """Return the assigned value, sigma_pt and scores of every laboratory for one material.
 
     ``uncertainties`` are expanded (k = 2) per result, NaN where not given. ``sigma_pt``
@@ -328,7 +347,9 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
     ``assigned`` is "consensus" (Algorithm A over the labs not in ``exclude_labs``),
     "reference" (the mean of ``reference_lab``) or "known" (``known``: a value from
     outside the round and its standard uncertainty). ``resolution`` is the declared step
-    results are reported in; without it the step is read from the data. Returns
+    results are reported in; without it the step is read from the data. ``widen``: a
+    between-unit SD or instability of the items that is not negligible, added to sigma_pt
+    or to u(x_pt) (``Widen``). Returns
     ``Skipped`` when the data cannot give an assigned value; raises DataError for an
     unknown ``assigned``, a missing ``reference_lab`` name or known value, or a bad policy.
     """
@@ -410,6 +431,21 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
     x_pt_value = float(known.value) if assigned == "known" and known else units.value(x_pt)
     sig, no_band = _sigma(policy, units, robust, p=p, x_pt=x_pt_value,
                           n=majority(n.astype(int).tolist()))
+    widened_u = False
+    if widen is not None and widen.sd > 0:
+        extra = units.steps(float(widen.sd))
+        if widen.into == "sigma_pt" and policy.kind == "participants":
+            notes.append(f"{widen.why} is not added to sigma_pt: the participants' robust SD "
+                         "already holds the differences between units (ISO 13528 B.2)")
+        elif widen.into == "sigma_pt" and sig is not None:
+            sig = math.sqrt(sig * sig + extra * extra)
+            notes.append(f"sigma_pt widened by {widen.why}: sqrt(sigma_pt² + "
+                         f"{units.scale(extra):.3g}²)")
+        elif widen.into == "uncertainty":
+            u_pt = math.sqrt((u_pt or 0.0) ** 2 + extra * extra)
+            widened_u = True
+            notes.append(f"u(x_pt) widened by {widen.why}: sqrt(u(x_pt)² + "
+                         f"{units.scale(extra):.3g}²)")
     weak_consensus = assigned == "consensus" and p < MIN_CONSENSUS
     if weak_consensus:
         no_band = (f"the assigned value is the consensus of only {p} participants, and "
@@ -463,7 +499,7 @@ def evaluate(values: ArrayLike, labs: Sequence[Hashable], *,
         scores[name] = entry
     return Scores(
         assigned_value=x_pt_value,
-        u_assigned_value=(float(known.u) if assigned == "known" and known
+        u_assigned_value=(float(known.u) if assigned == "known" and known and not widened_u
                           else units.scale(u_pt) if u_pt is not None else None),
         robust_mean=units.value(robust.x) if robust else None,
         robust_sd=units.scale(robust.s) if robust else None,

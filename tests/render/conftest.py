@@ -19,6 +19,8 @@ SECRET = bytes(range(32))
 PASSPHRASE = "render-tests-passphrase"
 ROUND = "2027-1"
 
+from tests.conftest import clear_shipping  # noqa: E402 - after the constants it shares
+
 # ISO 216 A4 and US Letter in PDF points (1 pt = 25.4/72 mm).
 A4_PT = (210 / 25.4 * 72, 297 / 25.4 * 72)
 LETTER_PT = (8.5 * 72, 11 * 72)
@@ -62,6 +64,7 @@ def plan_in_place(target: Path) -> tuple[Any, Any]:
                            route=route)
     with Ledger.open(target) as ledger:
         plan.write_round(study, target, made, ledger, passphrase=PASSPHRASE)
+    clear_shipping(target, ROUND)
     return study, made
 
 
