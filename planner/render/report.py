@@ -1107,8 +1107,9 @@ def _items(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                                  _plain(st["difference"]), _plain(st["criterion"]),
                                  _plain(st["criterion_widened"]),
                                  _VERDICT_SHORT.get(st["verdict"], st["verdict"])])
-        out.append(d.table(rows, [94, 16, 46, 44, 44, 44, 44, 42, 46, 62], size=7.2,
+        out.append(d.table(rows, [104, 16, 46, 44, 44, 42, 46, 38, 48, 54], size=7.2,
                            right_from=1, extra=[("ALIGN", (9, 0), (9, -1), "LEFT"),
+                                                ("FONT", (0, 0), (-1, 0), _layout.BOLD, 7.2),
                                                 *shade]))
         if any(e.get("s_s_forced_zero") for per in h["measurands"].values()
                for e in per.values()):
@@ -1126,8 +1127,10 @@ def _items(d: _Doc, s: Mapping[str, Any]) -> list[Any]:
                 "difference: mean 2 - mean 1; limit: |difference| <= 0.3 sigma_pt; widened: "
                 "0.3 sigma_pt + 2 sqrt(u1² + u2²), u = s/sqrt(n) of each mean (ISO 13528 "
                 "B.5)."), "small"))
-            out.append(d.table(stab, [94, 22, 22, 50, 50, 54, 46, 50, 88], size=7.2,
-                               right_from=1, extra=[("ALIGN", (8, 0), (8, -1), "LEFT")]))
+            out.append(d.table(stab, [104, 22, 22, 50, 50, 54, 44, 48, 86], size=7.2,
+                               right_from=1, extra=[("ALIGN", (8, 0), (8, -1), "LEFT"),
+                                                    ("FONT", (0, 0), (-1, 0), _layout.BOLD,
+                                                     7.2)]))
     out += [d.p(esc(line), "bullet") for line in items_lines(s)]
     return out
 
