@@ -15,6 +15,7 @@ check reads it. ``read_key`` and ``open_key`` hand out only keys that passed.
 
 from __future__ import annotations
 
+import hashlib
 import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -357,15 +358,31 @@ def _host_check_differences(study: Study, folder: Path, ledger: Ledger, round_id
             out.append(f"the {kind} units recorded at planning are not the ones the key "
                        "rebuilds (codes or materials differ)")
             continue
-        path = folder / "host" / f"{homogeneity.FORM_NAMES[kind]}.csv"
-        if not rebuilt.get(kind) or not path.is_file():
+        if not rebuilt.get(kind):
             continue
         secret = bytes.fromhex(str(key["secret"]))
         want = homogeneity.run_order(secret, list(rebuilt[kind]), purpose=f"{kind}/order")
-        found = homogeneity.form_order(path)
-        if found != want:
+        path = folder / "host" / f"{homogeneity.FORM_NAMES[kind]}.csv"
+        if not path.is_file():
+            # The blank form is the only published record of the host's order.
+            out.append(f"host/{path.name}: missing, so the host's measuring order cannot be "
+                       "compared with the one the round secret draws")
+        elif homogeneity.form_order(path) != want:
             out.append(f"host/{path.name}: its run order is not the one the round secret "
                        "draws; the form was edited or is not this round's")
+        # The filled forms as recorded: the bytes the ledger hashed, in the drawn order.
+        for event in ledger.events(round_id, f"{kind}-form"):
+            stored = event.detail.get("stored")
+            if not stored:
+                continue
+            kept = folder / str(stored)
+            if not kept.is_file() or (hashlib.sha256(kept.read_bytes()).hexdigest()
+                                      != event.detail.get("sha256")):
+                out.append(f"{stored}: the {kind} form recorded on {event.at} is missing or "
+                           "is not the file the ledger recorded")
+            elif homogeneity.form_order(kept) != want:
+                out.append(f"{stored}: the {kind} form recorded on {event.at} lists its runs "
+                           "in another order than the one the round secret draws")
     return out
 
 

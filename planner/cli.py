@@ -669,7 +669,9 @@ def status(study_dir: StudyDir, round_id: RoundOpt, as_json: JsonOpt = False) ->
         info = standing.round_status_table(study, study_dir, round_id, ledger,
                                            today=date.today())
         checks = homogeneity.checks_of(ledger, round_id)
-        items = homogeneity.state_lines(study, ledger, round_id, checks) if checks else []
+        items = homogeneity.state_lines(
+            study, ledger, round_id, checks,
+            previous=homogeneity.previous_sigma(study_dir, ledger, round_id)) if checks else []
     left = standing.leftovers(planning.round_dir(study_dir, round_id),
                               *_tidy(study_dir, round_id))
     if as_json:
@@ -1020,10 +1022,9 @@ def homogeneity_command(
             files.write_bytes(stored, _read_bytes(path), root=study_dir, private=True)
             homogeneity.record(ledger, round_id, kind, {**data, "stored": str(
                 stored.relative_to(folder))})
-        found = homogeneity.assess(study, checks, ledger, round_id,
-                                   previous=homogeneity.previous_sigma(study_dir, ledger,
-                                                                       round_id))
-        gate = homogeneity.shipping_gate(study, ledger, round_id, checks)
+        previous = homogeneity.previous_sigma(study_dir, ledger, round_id)
+        found = homogeneity.assess(study, checks, ledger, round_id, previous=previous)
+        gate = homogeneity.shipping_gate(study, ledger, round_id, checks, previous=previous)
     found["packing_lists"] = "held: " + gate if gate else "may be printed"
     if as_json:
         typer.echo(homogeneity.to_json(found), nl=False)
@@ -1093,6 +1094,10 @@ def _print_checks(found: dict[str, Any]) -> None:
             con.print(f"  sigma_pt from {source}: {', '.join(materials)}", soft_wrap=True)
         for note in notes:
             con.print(f"  {note}", soft_wrap=True)
+    for old in found.get("replaced") or ():
+        con.print(f"replaced: the form {old['file']} recorded on {old['at']}"
+                  + (f" (did not pass: {'; '.join(old['not_passing'])})"
+                     if old["not_passing"] else ""), soft_wrap=True)
     if found["waiver"]:
         con.print(f"waived by the coordinator on {found['waiver']['at']}: "
                   f"{found['waiver']['reason']}", soft_wrap=True)
@@ -1211,7 +1216,11 @@ def _shipping_gate(study: Any, study_dir: Path, round_id: str) -> str | None:
 
     with Ledger.open(study_dir, create=False) as ledger:
         checks = homogeneity.checks_of(ledger, round_id)
-        return homogeneity.shipping_gate(study, ledger, round_id, checks) if checks else None
+        if not checks:
+            return None
+        return homogeneity.shipping_gate(
+            study, ledger, round_id, checks,
+            previous=homogeneity.previous_sigma(study_dir, ledger, round_id))
 
 
 def _is(exc: BaseException, name: str) -> bool:

@@ -17,10 +17,13 @@ policy (a fixed value; a percentage, of the homogeneity mean; a precision study)
 from the previous round's sigma_pt of that material (its statistics.json), else the
 verdict waits for the round's own sigma_pt at evaluation.
 
-The forms are recorded in the ledger as events (``homogeneity-form``,
-``stability-form``; a later form of the same kind replaces the earlier one, the ledger
-keeps both). The shipping gate (``shipping_gate``) holds the participants' packing
-lists until every material passes, or the coordinator waives the check with a reason
+The forms are read by the rules of the result forms (codes with their check character,
+numbers as ``planner.intake`` reads them) and recorded in the ledger as events
+(``homogeneity-form``, ``stability-form``; a later form of the same kind replaces the
+earlier one, the ledger keeps both and the assessment lists the replaced ones with what
+they found). The shipping gate (``shipping_gate``) holds the participants' packing lists
+until every material passes with a repeatability small enough for the check to mean
+something (s_w < 0.5 sigma_pt), or the coordinator waives the check with a reason
 (``homogeneity-waived``), which every report states.
 """
 
@@ -247,23 +250,13 @@ def form_order(path: Path) -> list[tuple[str, int]]:
 
 
 def _number(raw: Any, decimal: str) -> float:
-    """Return a number written in the form's decimal convention; raise ValueError."""
-    if isinstance(raw, bool):
-        raise ValueError("not a number")
-    if isinstance(raw, (int, float)):
-        value = float(raw)
-    else:
-        text = str(raw).strip().replace("\u2212", "-").replace("\u00a0", "")
-        if decimal == "comma":
-            if "." in text:
-                raise ValueError("uses a point; this form's decimal sign is a comma")
-            text = text.replace(",", ".")
-        elif "," in text:
-            raise ValueError("uses a comma; this form's decimal sign is a point")
-        value = float(text)
-    if value != value or value in (float("inf"), float("-inf")):
-        raise ValueError("not a finite number")
-    return value
+    """Return a number written in the form's decimal convention, by the rules of the result
+    forms (``planner.intake``: no thousands separators, no limits or markers, finite and
+    between 1e-100 and 1e100 in size, so that no square in the statistics overflows); raise
+    IntakeError without a place."""
+    from planner.intake import _number as read_number
+
+    return read_number(raw, decimal, "value")
 
 
 def read_values(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
@@ -299,11 +292,17 @@ def read_values(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
         where = form.where(row.line)
         raw = str(row.get("code") or "").strip()
         if not raw:
+            if any(str(row.get(name) or "").strip() not in ("", "n/a") for _, name in columns):
+                problems.append(IntakeError("the row has a value but no code; every value "
+                                            f"needs the code of its unit from the {kind} form",
+                                            where))
             continue
         try:
-            code = codebook.compact(raw)
-        except Exception:  # noqa: BLE001 - any malformed code is the same user mistake
-            code = raw
+            code = codebook.validate(raw)
+        except PlannerError as exc:
+            problems.append(IntakeError(f"{exc.message}; copy the code from the {kind} form",
+                                        where))
+            continue
         if code not in checks:
             problems.append(IntakeError(f"code {raw!r} is not a {kind} unit of this round; "
                                         f"copy the codes of the {kind} form", where))
@@ -340,10 +339,9 @@ def read_values(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
                 continue
             try:
                 values[mid][code][rep - 1] = _number(cell, decimal)
-            except ValueError as exc:
+            except PlannerError as exc:
                 problems.append(IntakeError(f"column {name!r} of {raw} replicate {rep}: "
-                                            f"{text!r} {exc}; write a number like "
-                                            f"{'12,5' if decimal == 'comma' else '12.5'}", where))
+                                            f"{exc.message}", where))
     absent = sorted(f"{codebook.format(code)} replicate {rep}" for code in checks
                     for rep in range(1, REPLICATES + 1) if (code, rep) not in seen)
     if absent:
@@ -366,8 +364,10 @@ def record(ledger: Any, round_id: str, kind: str, data: Mapping[str, Any]) -> No
 
 def waive(ledger: Any, round_id: str, reason: str) -> None:
     """Record the coordinator's waiver of the homogeneity check, with its reason."""
-    reason = reason.strip()
-    if len(reason) < 10:
+    # One line, as the report and status print it; a reason is words, not 10 dots.
+    reason = " ".join(reason.split())
+    if len(reason) < 10 or sum(ch.isalpha() for ch in reason) < 5 or any(
+            not ch.isprintable() for ch in reason):
         raise PlannerError("give the reason for waiving the homogeneity check in a sentence "
                            "(it is printed in the report)", Where("--waive"))
     with ledger.transaction():
@@ -406,7 +406,71 @@ def _sigma_pt(study: Any, measurand: Any, material: str, mean: float,
     last = (previous or {}).get(measurand.id, {}).get(material)
     if last is not None:
         return last, "the previous round's sigma_pt for this material"
-    return None, "no sigma_pt before the round: the verdict waits for the round's sigma_pt"
+    return None, "no source before the round: the verdict waits for the round's sigma_pt"
+
+
+def _judge(study: Any, checks: Mapping[str, Mapping[str, str]], form: Mapping[str, Any],
+           late: Mapping[str, Any] | None, previous: Mapping[str, Mapping[str, float]] | None,
+           round_sigma: Mapping[str, Mapping[str, float]] | None) -> dict[str, Any]:
+    """Return measurand -> material -> the homogeneity (and stability) figures and verdict
+    of one recorded form."""
+    from planner import codes as codebook
+    from planner.stats import homogeneity as hom
+
+    out: dict[str, Any] = {}
+    for measurand in study.all_measurands:
+        per: dict[str, Any] = {}
+        got = form["values"].get(measurand.id, {})
+        for material in (m.id for m in study.materials):
+            if not measurand.applies_to(material):
+                continue
+            codes = [c for c, mat in checks["homogeneity"].items() if mat == material]
+            pairs = {c: got.get(c) for c in codes}
+            complete = {c: p for c, p in pairs.items() if p is not None and None not in p}
+            if len(complete) < hom.MIN_UNITS:
+                per[material] = {"verdict": "cannot be computed",
+                                 "why": f"{len(complete)} unit(s) with both values; at least "
+                                        f"{hom.MIN_UNITS} are needed"}
+                continue
+            mean = sum(sum(p) for p in complete.values()) / (2 * len(complete))
+            sigma, source = _sigma_pt(study, measurand, material, mean, previous)
+            late_sigma = False
+            if sigma is None and round_sigma is not None:
+                own = round_sigma.get(measurand.id, {}).get(material)
+                if own is not None:
+                    sigma, source = own, "the round's sigma_pt (given at evaluation)"
+                    late_sigma = True
+            try:
+                entry = hom.homogeneity(list(complete.values()), sigma)
+            except (ValueError, OverflowError):
+                # Values the form reader refuses (beyond 1e100) that reached the ledger some
+                # other way: no figure rather than a traceback in every later command.
+                per[material] = {"verdict": "cannot be computed",
+                                 "why": "the recorded values are too large to compute with"}
+                continue
+            entry["sigma_pt_source"] = source
+            entry["judged_at_evaluation"] = late_sigma
+            entry["left_out"] = len(codes) - len(complete)
+            # The unit whose replicates differ most: where a mistyped value usually is.
+            widest = max(complete, key=lambda c: abs(complete[c][0] - complete[c][1]))
+            entry["widest_unit"] = codebook.format(widest)
+            if sigma is not None and not sigma > 0:
+                entry["verdict"] = "cannot be computed"
+                entry["why"] = (f"sigma_pt from {source} is {sigma:g}, so no criterion can be "
+                                "drawn from it")
+            if late is not None:
+                kept = late["values"].get(measurand.id, {})
+                after = [v for c, mat in checks["stability"].items() if mat == material
+                         for v in (kept.get(c) or []) if v is not None]
+                if after:
+                    try:
+                        entry["stability"] = hom.stability(
+                            [v for p in complete.values() for v in p], after, sigma)
+                    except (ValueError, OverflowError):
+                        pass
+            per[material] = entry
+        out[measurand.id] = per
+    return out
 
 
 def assess(study: Any, checks: Mapping[str, Mapping[str, str]], ledger: Any, round_id: str, *,
@@ -415,88 +479,103 @@ def assess(study: Any, checks: Mapping[str, Mapping[str, str]], ledger: Any, rou
     """Return the homogeneity (and, when recorded, stability) assessment per measurand and
     material. ``previous``: measurand -> material -> the previous round's sigma_pt;
     ``round_sigma``: the round's own sigma_pt (at evaluation), used where nothing came
-    before the round."""
-    from planner.stats import homogeneity as hom
+    before the round.
 
+    The newest form of each kind is judged; ``replaced`` lists the earlier homogeneity forms
+    (file, sha256, at, and which materials did not pass on them), so that a check measured
+    again until it passed shows. ``shipped_at`` is when the first packing list was printed
+    (None before); ``after_shipping`` says no homogeneity form was recorded before then."""
     out: dict[str, Any] = {"recorded": False, "waiver": waiver(ledger, round_id),
                            "measurands": {}}
-    form = recorded(ledger, round_id, "homogeneity")
+    forms = ledger.events(round_id, _EVENT["homogeneity"])
     late = recorded(ledger, round_id, "stability")
-    if form is None:
+    # A first form recorded after the first packing list was printed: the check did not
+    # gate this round.
+    printed = [e.at for e in ledger.events(round_id, "printed")
+               if any(str(d).endswith(("packing-list.pdf", "handover.pdf"))
+                      for d in e.detail.get("documents", ()))]
+    shipped = min(printed) if printed else None
+    out["shipped_at"] = shipped
+    if out["waiver"] is not None:
+        out["waiver"]["after_shipping"] = shipped is not None and shipped < out["waiver"]["at"]
+        out["waiver"]["before_any_form"] = not forms or out["waiver"]["at"] < forms[0].at
+    if not forms:
         return out
+    form = {**forms[-1].detail, "at": forms[-1].at}
     out["recorded"] = True
     out["file"] = form.get("file")
     out["sha256"] = form.get("sha256")
     out["at"] = form.get("at")
     out["stability_at"] = late.get("at") if late else None
-    # Recorded after the first packing list was printed: the check did not gate this round.
-    printed = [e.at for e in ledger.events(round_id, "printed")
-               if any(str(d).endswith(("packing-list.pdf", "handover.pdf"))
-                      for d in e.detail.get("documents", ()))]
-    out["after_shipping"] = bool(printed) and min(printed) < str(form.get("at"))
+    out["after_shipping"] = shipped is not None and shipped < forms[0].at
     out["remarks"] = form.get("remarks", {})
-    for measurand in study.all_measurands:
-        per: dict[str, Any] = {}
-        got = form["values"].get(measurand.id, {})
-        for material in (m.id for m in study.materials):
-            if not measurand.applies_to(material):
-                continue
-            codes = [c for c, mat in checks["homogeneity"].items() if mat == material]
-            pairs = [got.get(c) for c in codes]
-            complete = [p for p in pairs if p is not None and None not in p]
-            if len(complete) < hom.MIN_UNITS:
-                per[material] = {"verdict": "cannot be computed",
-                                 "why": f"{len(complete)} unit(s) with both values; at least "
-                                        f"{hom.MIN_UNITS} are needed"}
-                continue
-            mean = sum(sum(p) for p in complete) / (2 * len(complete))
-            sigma, source = _sigma_pt(study, measurand, material, mean, previous)
-            if sigma is None and round_sigma is not None:
-                own = round_sigma.get(measurand.id, {}).get(material)
-                if own is not None:
-                    sigma, source = own, "the round's sigma_pt (given at evaluation)"
-            entry = hom.homogeneity(complete, sigma)
-            entry["sigma_pt_source"] = source
-            entry["left_out"] = len(codes) - len(complete)
-            if late is not None:
-                after = [v for c, mat in checks["stability"].items() if mat == material
-                         for v in (late["values"].get(measurand.id, {}).get(c) or []) if v is not None]
-                if after:
-                    entry["stability"] = hom.stability([v for p in complete for v in p], after,
-                                                       sigma)
-            per[material] = entry
-        out["measurands"][measurand.id] = per
+    out["measurands"] = _judge(study, checks, form, late, previous, round_sigma)
+    out["replaced"] = []
+    for event in forms[:-1]:
+        failed, weak = _holding(_judge(study, checks, event.detail, None, previous,
+                                       round_sigma))
+        out["replaced"].append({"file": event.detail.get("file"),
+                                "sha256": event.detail.get("sha256"), "at": event.at,
+                                "not_passing": failed + weak})
     return out
 
 
+_HOLD = ("not sufficiently homogeneous", "cannot be computed")
+"""Verdicts that hold the packing lists."""
+
+
+def _holding(measurands: Mapping[str, Mapping[str, Any]]) -> tuple[list[str], list[str]]:
+    """Return (the items whose verdict holds the parcels, the items that pass with s_w not
+    below 0.5 sigma_pt), each as 'measurand/material: why'."""
+    failed = [f"{mid}/{mat}: {entry['verdict']}" for mid, per in measurands.items()
+              for mat, entry in per.items() if entry["verdict"] in _HOLD]
+    weak = [f"{mid}/{mat}: s_w = {entry['s_w']:.3g} is not below 0.5 sigma_pt = "
+            f"{0.5 * entry['sigma_pt']:.3g} (replicates differ most on unit "
+            f"{entry['widest_unit']})" for mid, per in measurands.items()
+            for mat, entry in per.items()
+            if entry["verdict"] not in _HOLD and entry.get("repeatability_ok") is False]
+    return failed, weak
+
+
 def shipping_gate(study: Any, ledger: Any, round_id: str,
-                  checks: Mapping[str, Mapping[str, str]]) -> str | None:
-    """Return None when the participants' parcels may be printed, else why not."""
+                  checks: Mapping[str, Mapping[str, str]], *,
+                  previous: Mapping[str, Mapping[str, float]] | None = None) -> str | None:
+    """Return None when the participants' parcels may be printed, else why not.
+
+    ``previous`` is the previous round's sigma_pt (``previous_sigma``), which judges the
+    check before any result of this round, as ``ringplan homogeneity`` shows it. A pass
+    whose s_w is not below 0.5 sigma_pt holds the parcels too: the method's scatter (often
+    a single mistyped value) is then what the check measured."""
     if study.design.homogeneity_units == 0 or not checks.get("homogeneity"):
         return None
     if waiver(ledger, round_id) is not None:
         return None
-    found = assess(study, checks, ledger, round_id)
+    found = assess(study, checks, ledger, round_id, previous=previous)
     if not found["recorded"]:
         return (f"the host's homogeneity check is not recorded yet: record the filled "
                 f"host/{FORM_CSV} with 'ringplan homogeneity STUDY_DIR --round {round_id} FILE', "
                 f"or waive the check with 'ringplan homogeneity STUDY_DIR --round {round_id} "
                 "--waive REASON'")
-    failed = [f"{mid}/{mat}: {entry['verdict']}" for mid, per in found["measurands"].items()
-              for mat, entry in per.items()
-              if entry["verdict"] in ("not sufficiently homogeneous", "cannot be computed")]
+    failed, weak = _holding(found["measurands"])
+    waive_hint = (f"or waive the check with 'ringplan homogeneity STUDY_DIR --round {round_id} "
+                  "--waive REASON'")
     if failed:
-        return ("the homogeneity check did not pass (" + "; ".join(failed) + "); prepare the "
-                "batch again and plan a new round, or waive the check with 'ringplan "
-                f"homogeneity STUDY_DIR --round {round_id} --waive REASON'")
+        return ("the homogeneity check did not pass (" + "; ".join(failed + weak) + "); prepare "
+                f"the batch again and plan a new round, {waive_hint}")
+    if weak:
+        return ("the homogeneity check cannot tell whether the batch is homogeneous, the "
+                "replicates scatter too much (" + "; ".join(weak) + "); look for a mistyped "
+                f"value or a value in another unit and record the corrected form, {waive_hint}")
     return None
 
 
 def state_lines(study: Any, ledger: Any, round_id: str,
-                checks: Mapping[str, Mapping[str, str]]) -> list[str]:
+                checks: Mapping[str, Mapping[str, str]], *,
+                previous: Mapping[str, Mapping[str, float]] | None = None) -> list[str]:
     """Return what ``status`` says of the host's checks: recorded or not, the verdicts in
-    short, a waiver, and whether the packing lists may be printed."""
-    found = assess(study, checks, ledger, round_id)
+    short, a waiver, and whether the packing lists may be printed (``previous`` as for
+    ``shipping_gate``)."""
+    found = assess(study, checks, ledger, round_id, previous=previous)
     out: list[str] = []
     if checks.get("homogeneity"):
         if not found["recorded"]:
@@ -517,7 +596,7 @@ def state_lines(study: Any, ledger: Any, round_id: str,
         out.append(f"stability check: {late.get('file')} recorded" if late else
                    "stability check: not recorded yet (the host measures its retained units "
                    "after the round)")
-    gate = shipping_gate(study, ledger, round_id, checks)
+    gate = shipping_gate(study, ledger, round_id, checks, previous=previous)
     out.append(f"packing lists: held: {gate}" if gate else "packing lists: may be printed")
     return out
 

@@ -1023,21 +1023,57 @@ def items_lines(statistics: Mapping[str, Any]) -> list[str]:
         if h.get("after_shipping"):
             out.append("The homogeneity check was recorded after the first packing lists were "
                        "printed, so it did not decide whether the parcels left.")
-        failed = [f"{mid}/{m}" for mid, per in h["measurands"].items()
-                  for m, e in per.items() if e.get("verdict") == "not sufficiently homogeneous"]
-        unstable = [f"{mid}/{m}" for mid, per in h["measurands"].items()
-                    for m, e in per.items()
-                    if (e.get("stability") or {}).get("verdict") == "not stable"]
-        out.append("Homogeneity: " + ("every material passes." if not failed else
-                                      f"not sufficiently homogeneous: {', '.join(failed)}."))
-        if any(e.get("stability") for per in h["measurands"].values() for e in per.values()):
-            out.append("Stability: " + ("every material checked is stable." if not unstable
-                                        else f"not stable: {', '.join(unstable)}."))
+
+        def named(items: list[str]) -> str:
+            return ", ".join(items) if len(items) < 7 else f"{len(items)} items"
+
+        # A verdict that waits or cannot be computed is no pass: each is named as it is.
+        verdicts: dict[str, list[str]] = {}
+        steady: dict[str, list[str]] = {}
+        for mid, per in h["measurands"].items():
+            for m, e in per.items():
+                verdicts.setdefault(str(e.get("verdict")), []).append(f"{mid}/{m}")
+                if e.get("stability"):
+                    steady.setdefault(str(e["stability"].get("verdict")), []).append(
+                        f"{mid}/{m}")
+        failed = verdicts.get("not sufficiently homogeneous", [])
+        waiting = verdicts.get("waits", [])
+        unknown = verdicts.get("cannot be computed", [])
+        parts = ([f"not sufficiently homogeneous: {named(failed)}"] if failed else []) + (
+            [f"no verdict, as no sigma_pt was known even at evaluation: {named(waiting)}"]
+            if waiting else []) + ([f"cannot be computed: {named(unknown)}"] if unknown else [])
+        out.append("Homogeneity: " + ("; ".join(parts) + "." if parts else
+                                      "every material passes."))
+        late = [f"{mid}/{m}" for mid, per in h["measurands"].items()
+                for m, e in per.items() if e.get("judged_at_evaluation")]
+        if late:
+            out.append(f"No sigma_pt was known before the round for {named(late)}: the "
+                       "check was recorded and the parcels could leave, and its verdict was "
+                       "given at evaluation with the round's own sigma_pt.")
+        for old in h.get("replaced") or ():
+            out.append(f"An earlier homogeneity form ({old.get('file')}, recorded "
+                       f"{str(old.get('at', ''))[:16].replace('T', ' ')} UTC) was replaced by "
+                       "a later one, whose figures are shown"
+                       + (f"; on the earlier form {', '.join(old['not_passing'])}."
+                          if old.get("not_passing") else "; nothing on the earlier form held the "
+                          "parcels back."))
+        if steady:
+            unstable = steady.get("not stable", [])
+            undecided = steady.get("waits", [])
+            parts = ([f"not stable: {named(unstable)}"] if unstable else []) + (
+                [f"no verdict, as no sigma_pt was known: {named(undecided)}"]
+                if undecided else [])
+            out.append("Stability: " + ("; ".join(parts) + "." if parts else
+                                        "every material checked is stable."))
         else:
             out.append("Stability: no stability check was recorded.")
     waiver = h.get("waiver")
     if waiver:
-        out.append(f"The coordinator waived the homogeneity check before shipping "
+        when = ("after the first packing lists were printed" if waiver.get("after_shipping")
+                else "before shipping")
+        if waiver.get("before_any_form"):
+            when += ", before any homogeneity form was recorded"
+        out.append(f"The coordinator waived the homogeneity check {when} "
                    f"({str(waiver.get('at', ''))[:16].replace('T', ' ')} UTC): "
                    f"{str(waiver.get('reason', '')).rstrip('.')}.")
     for mid, per in (h.get("widened") or {}).items():
