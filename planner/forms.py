@@ -108,16 +108,16 @@ def read_form(path: Path) -> Form:
     try:
         size = Path(path).stat().st_size
         if size > MAX_BYTES:
-            raise IntakeError(f"the file is {size:,} bytes, more than a result form can be "
-                              f"({MAX_BYTES:,}); send the form that 'ringplan plan' wrote",
+            raise IntakeError(f"the file is {size:,} bytes, more than a form of ringplan can "
+                              f"be ({MAX_BYTES:,}); send the form that 'ringplan plan' wrote",
                               Where(name))
         data = Path(path).read_bytes()
     except OSError as exc:
         raise IntakeError(f"cannot read the file ({(exc.strerror or 'error').lower()})",
                           Where(name)) from None
     if not data.strip():
-        raise IntakeError("the file is empty; send the result form that 'ringplan plan' wrote "
-                          "for the laboratory, with the values filled in", Where(name, 1))
+        raise IntakeError("the file is empty; send the form that 'ringplan plan' wrote "
+                          "for it, with the values filled in", Where(name, 1))
     if data.startswith(_OLD_XLS_MAGIC):
         raise IntakeError("this is an old-style .xls workbook; save it as .xlsx or as CSV",
                           Where(name))
@@ -151,7 +151,7 @@ def _read_csv(name: str, data: bytes) -> Form:
         raise IntakeError("the file holds NUL bytes; it is not a CSV text file", Where(name))
     lines = text.splitlines()
     if len(lines) > MAX_ROWS:
-        raise IntakeError(f"the file has {len(lines):,} lines, more than a result form can "
+        raise IntakeError(f"the file has {len(lines):,} lines, more than a form of ringplan can "
                           f"have ({MAX_ROWS:,}); send the form that 'ringplan plan' wrote",
                           Where(name))
     header_at = next((i for i, line in enumerate(lines)
@@ -289,8 +289,8 @@ def _check_parts(name: str, data: bytes) -> None:
             declared = sum(info.file_size for info in archive.infolist())
             if declared > MAX_UNPACKED:
                 raise IntakeError(f"the workbook would unpack to {declared:,} bytes, more than "
-                                  f"a result form can be ({MAX_UNPACKED:,}); send the form that "
-                                  "'ringplan plan' wrote", Where(name))
+                                  f"a form of ringplan can be ({MAX_UNPACKED:,}); send the form "
+                                  "that 'ringplan plan' wrote", Where(name))
             total = 0
             for info in archive.infolist():
                 if not info.filename.endswith((".xml", ".rels")):
@@ -324,7 +324,7 @@ def _grid(name: str, sheet: Any) -> list[tuple[tuple[Any, ...], tuple[int, ...]]
     for count, row in enumerate(sheet.iter_rows(min_row=1), start=1):
         if count > MAX_ROWS:
             raise IntakeError(f"the sheet {sheet.title!r} reaches past row {MAX_ROWS:,}, "
-                              "further than a result form can; delete what lies below the "
+                              "further than a form of ringplan can; delete what lies below the "
                               "table, or send the form that 'ringplan plan' wrote", Where(name))
         values = tuple(getattr(c, "value", None) for c in row)
         formulas = tuple(i for i, c in enumerate(row) if getattr(c, "data_type", None) == "f")

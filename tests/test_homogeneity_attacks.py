@@ -348,14 +348,14 @@ def test_a_file_larger_than_any_form_and_a_csv_of_too_many_lines(host_round, run
     huge = tmp_path / "huge.csv"
     with open(huge, "wb") as out:  # sparse: the size is on record, the disk stays empty
         out.truncate(forms.MAX_BYTES + 1)
-    assert "more than a result form can be" in _one_line(
+    assert "more than a form of ringplan can be" in _one_line(
         run_cli(runner, "homogeneity", host_round, "--round", ROUND, huge), huge)
     long = write(tmp_path, "long.csv", homogeneity_filled(host_round)
                  + ["# padding"] * forms.MAX_ROWS)
-    assert "more than a result form can have" in _one_line(
+    assert "more than a form of ringplan can have" in _one_line(
         run_cli(runner, "homogeneity", host_round, "--round", ROUND, long), long)
     # and as the stability form
-    assert "more than a result form can have" in _one_line(
+    assert "more than a form of ringplan can have" in _one_line(
         run_cli(runner, "homogeneity", host_round, "--round", ROUND, "--stability", long), long)
     assert _nothing_recorded(host_round) and _events(host_round, "stability-form") == []
 

@@ -108,7 +108,7 @@ def test_a_file_larger_than_any_form_is_refused_unread(planned, runner, tmp_path
     with open(path, "wb") as out:  # sparse: the size is on record, the disk stays empty
         out.truncate(forms.MAX_BYTES + 1)
     line = _one_line(receive(runner, planned, path), path)
-    assert "more than a result form can be" in line
+    assert "more than a form of ringplan can be" in line
     assert nothing_recorded(planned)
 
 
@@ -116,7 +116,7 @@ def test_a_csv_of_more_lines_than_any_form_is_refused(planned, runner, tmp_path)
     lines = filled(planned, "kal") + ["# padding"] * forms.MAX_ROWS
     path = write(tmp_path, "long.csv", lines)
     line = _one_line(receive(runner, planned, path), path)
-    assert "more than a result form can have" in line
+    assert "more than a form of ringplan can have" in line
     assert nothing_recorded(planned)
 
 
