@@ -1,7 +1,8 @@
 """Files a command writes into a study folder: whole or not at all, and never through a link.
 
 Every file ringplan writes inside a study folder goes through ``write_atomic`` (or
-``write_bytes`` / ``write_text``): the bytes go to a temporary file beside the target,
+``write_bytes`` / ``write_text``, or ``write_many`` for many files at once, whose flushes to
+disk overlap): the bytes go to a temporary file beside the target,
 created new (``O_EXCL``) and never through a link (``O_NOFOLLOW``), are flushed to disk,
 and the file is then renamed into place, so a reader finds the old file or the new one,
 never half of either. Before anything is made, each part of the path from the study
@@ -37,7 +38,7 @@ import errno
 import os
 import secrets
 import stat
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path, PurePath
 
@@ -50,6 +51,7 @@ __all__ = [
     "write_atomic",
     "write_bytes",
     "write_text",
+    "write_many",
     "make_folders",
     "check_paths",
     "placement",
@@ -176,6 +178,116 @@ def write_bytes(path: Path, data: bytes, *, root: Path, private: bool,
 def write_text(path: Path, text: str, *, root: Path, private: bool) -> Path:
     """Write ``text`` as UTF-8 to ``path`` as ``write_atomic`` does; return ``path``."""
     return write_bytes(path, text.encode("utf-8"), root=root, private=private)
+
+
+def write_many(items: Sequence[tuple[Path, bytes]], *, root: Path, private: bool,
+               read_only: bool = False) -> list[Path]:
+    """Write each (path, bytes) as ``write_bytes`` does, flushing them to disk together.
+
+    Every file is whole or absent, as with one ``write_bytes`` each: its bytes go to a
+    temporary file beside it, which is flushed (fsync) and renamed into place. The flushes
+    run side by side, so that the file system commits them together rather than one after
+    the other; each folder is flushed once after the renames. Returns the paths; raises
+    PlannerError as ``write_atomic`` does, after removing every temporary file, and the
+    files renamed into place by then stay (each whole).
+    """
+    if len(items) <= 1:
+        return [write_bytes(path, data, root=root, private=private, read_only=read_only)
+                for path, data in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    root = Path(root)
+    paths = [Path(path) for path, _ in items]
+    folders = list(dict.fromkeys(path.parent for path in paths))
+    _check_many(paths, root=root)
+    for folder in folders:
+        make_folders(folder, root=root)
+    temps: dict[str, int | None] = {}  # temporary file -> its descriptor while open
+    current = paths[0]
+    try:
+        for path, (_, data) in zip(paths, items, strict=True):
+            current = path
+            temp = os.path.join(path.parent, f".{path.name}.{os.getpid()}."
+                                f"{secrets.token_hex(3)}{TEMP_SUFFIX}")
+            fd = os.open(temp, _CREATE, 0o600 if private else 0o666)
+            temps[temp] = fd
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            mode = stat.S_IMODE(os.fstat(fd).st_mode)
+            if private:
+                mode &= 0o700
+            if read_only:
+                mode &= ~0o222
+            if hasattr(os, "fchmod"):  # as write_atomic: the rights of a file made anew
+                os.fchmod(fd, mode)
+        # fsync lets other threads run while it waits: the flushes overlap
+        fds = list(temps.values())
+        share = -(-len(fds) // _FLUSHERS)
+        with ThreadPoolExecutor(max_workers=_FLUSHERS) as pool:
+            flushed = [failure for part in pool.map(
+                _flush, [fds[i:i + share] for i in range(0, len(fds), share)])
+                for failure in part]
+        for path, failure in zip(paths, flushed, strict=True):
+            if failure is not None:
+                current = path
+                raise failure
+        for temp, open_fd in list(temps.items()):
+            temps[temp] = None
+            if open_fd is not None:
+                os.close(open_fd)
+        _check_many(paths, root=root)  # again, right before the renames
+        for path, temp in zip(paths, list(temps), strict=True):
+            current = path
+            os.replace(temp, path)
+            del temps[temp]
+    except BaseException as exc:
+        for temp, open_fd in temps.items():
+            if open_fd is not None:
+                os.close(open_fd)
+            _discard(Path(temp))
+        if isinstance(exc, OSError) and exc.errno in USER_ERRNOS:
+            raise explain(exc, current) from None
+        raise
+    for folder in folders:
+        _sync_folder(folder)
+    return paths
+
+
+def _check_many(paths: Sequence[Path], *, root: Path) -> None:
+    """Do what ``check_paths`` does, looking at the way to each folder once."""
+    seen: set[Path] = set()
+    for path in paths:
+        if path.parent not in seen:
+            check_paths([path], root=root)
+            seen.add(path.parent)
+            continue
+        try:
+            info = os.lstat(path)
+        except FileNotFoundError:
+            continue
+        except OSError as exc:
+            if exc.errno in USER_ERRNOS:
+                raise explain(exc, path) from None
+            raise
+        _check_part(path, info, last=True)
+
+
+_FLUSHERS = 16  # fsync calls at a time in write_many
+
+
+def _flush(fds: Sequence[int | None]) -> list[OSError | None]:
+    """Flush files to disk one after the other; return each one's error instead of raising it."""
+    out: list[OSError | None] = []
+    for fd in fds:
+        try:
+            if fd is not None:
+                os.fsync(fd)
+        except OSError as exc:
+            out.append(exc)
+            continue
+        out.append(None)
+    return out
 
 
 def make_folders(folder: Path, *, root: Path) -> Path:

@@ -53,7 +53,7 @@ from planner.ledger import ResultRow
 
 if TYPE_CHECKING:
     from planner.ledger import Ledger
-    from planner.spec import Study
+    from planner.spec import Lab, Study
 
 __all__ = [
     "Checked",
@@ -163,7 +163,8 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
                  elsewhere: Mapping[str, str],
                  token_digests: Mapping[str, str] | None = None,
                  owners: Mapping[str, tuple[str, str]] | None = None,
-                 absent: Mapping[str, frozenset[str]] | None = None) -> Checked:
+                 absent: Mapping[str, frozenset[str]] | None = None,
+                 labs: Mapping[str, Lab] | None = None) -> Checked:
     """Return what checking a form against its round found: its problems, slot and rows.
 
     The arguments are those of ``check_form``, all given; ``planner.returns``
@@ -172,9 +173,10 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     required and checked; None for a round planned before there were tokens.
     ``owners`` is ``code_owners(manifest, swaps)``, made once by a caller that checks
     many forms of one round (it holds every code of the round); ``absent`` likewise is
-    ``plan.not_applicable(manifest, swaps)``.
+    ``plan.not_applicable(manifest, swaps)``, and ``labs`` the study's laboratories by id.
     """
-    problems = _check_identity(study, manifest, form, lab=lab)
+    labs = {x.id: x for x in study.laboratories} if labs is None else labs
+    problems = _check_identity(study, manifest, form, lab=lab, labs=labs)
     if problems:
         return Checked(tuple(problems), None, (), (), ())
     form_lab = form.ident("laboratory")[0]  # type: ignore[index]
@@ -187,10 +189,13 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     expected = expected_codes(manifest, form_lab, swaps)
     owners = code_owners(manifest, swaps) if owners is None else owners
     rows = form.rows
-    given = [codes.compact(text) if codes.is_valid(text := str(r.get("code"))) else None
-             for r in rows]
+    read = [_validated(r) for r in rows]  # each code read and checked once
+    given = [got if isinstance(got, str) and _plain(r.get("code")) else
+             (codes.compact(text) if codes.is_valid(text := str(r.get("code"))) else None)
+             for r, got in zip(rows, read, strict=True)]
     mine = sum(1 for c in given if c in expected)
-    others = {owners[c][0] for c in given if c in owners and owners[c][1] == "test"}
+    others = {owners[c][0] for c in given
+              if c is not None and c in owners and owners[c][1] == "test"}
     if rows and not mine and len(others) == 1 and form_lab not in others:
         line = form.ident("laboratory")[1]  # type: ignore[index]
         return Checked((IntakeError(
@@ -203,7 +208,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     lacking = _missing_results(form, study)
     if lacking:
         return Checked(tuple(problems + lacking), None, (), (), ())
-    decimal = study.lab(form_lab).decimal
+    decimal = labs[form_lab].decimal
     absent = plan.not_applicable(manifest, swaps) if absent is None else absent
     dates = manifest["dates"]
     start, end = date.fromisoformat(dates["test_start"]), date.fromisoformat(dates["test_end"])
@@ -214,7 +219,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
     first_seen: dict[str, int] = {}
     kept: list[ResultRow] = []
     late_rows: list[str] = []
-    for row in rows:
+    for row, got in zip(rows, read, strict=True):
         where = form.where(row.line)
         found: list[PlannerError] = []
         if form.separator is not None and row.width > form.header_width:
@@ -230,7 +235,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
         code = _check_code(row, where, found, expected=expected, replaced=replaced,
                            owners=owners, lab=form_lab, host=str(manifest["host"]),
                            round_id=str(manifest["round"]),
-                           elsewhere=elsewhere, first_seen=first_seen, form=form)
+                           elsewhere=elsewhere, first_seen=first_seen, form=form, read=got)
         value, uncertainty, remarks, measured = _check_results(
             row, study, form.columns, decimal, where, found,
             skip=absent.get(code, frozenset()) if code is not None else None)
@@ -263,7 +268,7 @@ def inspect_form(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
 
 
 def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form, *,
-                    lab: str | None) -> list[PlannerError]:
+                    lab: str | None, labs: Mapping[str, Lab]) -> list[PlannerError]:
     """Return identity problems, the most telling first; later ones would only repeat it."""
     # A study with several measurands names them (with their units) in one line instead.
     required = (forms.IDENTITY_KEYS if study.shorthand else
@@ -284,8 +289,8 @@ def _check_identity(study: Study, manifest: Mapping[str, Any], form: forms.Form,
                             "record it with that round's --round, or send this round's form",
                             form.where(round_at))]
     out: list[PlannerError] = []
-    known = [x.id for x in study.laboratories]
-    if lab_id not in known or lab_id not in manifest["labs"]:
+    if lab_id not in labs or lab_id not in manifest["labs"]:
+        known = [x.id for x in study.laboratories]
         guess = difflib.get_close_matches(lab_id, known, n=1)
         out.append(IntakeError(f"laboratory {lab_id!r} is not in round {manifest['round']!r}"
                                + (f"; did you mean {guess[0]!r}?" if guess else
@@ -643,28 +648,52 @@ def _missing_results(form: forms.Form, study: Study) -> list[PlannerError]:
             and plan.uncertainty_column(m.id).lower() not in form.columns]
 
 
-def _read_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
-               label: str) -> str | None:
-    """Return the row's code, compact and checked; else note why not and return None."""
+def _validated(row: forms.FormRow) -> str | CodeError | None:
+    """Return the row's code, compact and checked, or the CodeError saying what is wrong with
+    it (without a place), or None when the cell is empty."""
     text = forms.cell_text(row.get("code"))
     if not text:
+        return None
+    try:
+        return codes.validate(text)
+    except CodeError as exc:
+        return exc
+
+
+def _plain(raw: Any) -> bool:
+    """Return whether a cell reads the same as text with and without its outer spaces."""
+    return raw is None or str(raw) == forms.cell_text(raw)
+
+
+_UNREAD = object()
+
+
+def _read_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
+               label: str, read: Any = _UNREAD) -> str | None:
+    """Return the row's code, compact and checked; else note why not and return None.
+
+    ``read`` is ``_validated(row)`` when the caller has it already.
+    """
+    got = _validated(row) if read is _UNREAD else read
+    if got is None:
         found.append(IntakeError("the row has no code; every result needs the code from the "
                                  f"{label}", where))
         return None
-    try:
-        return codes.validate(text, where=where)
-    except CodeError as exc:
-        found.append(exc)
+    if isinstance(got, CodeError):
+        found.append(CodeError(got.message, where))
         return None
+    return str(got)
 
 
 def _check_code(row: forms.FormRow, where: Where, found: list[PlannerError], *,
                 expected: Mapping[str, tuple[int, int]], replaced: Mapping[str, str],
                 owners: Mapping[str, tuple[str, str]], lab: str, host: str, round_id: str,
                 elsewhere: Mapping[str, str], first_seen: dict[str, int],
-                form: forms.Form) -> str | None:
-    """Return the row's compact code if it is this laboratory's; else note why and return None."""
-    code = _read_code(row, where, found, label="unit's label")
+                form: forms.Form, read: Any = _UNREAD) -> str | None:
+    """Return the row's compact code if it is this laboratory's; else note why and return None.
+
+    ``read`` is ``_validated(row)`` when the caller has it already."""
+    code = _read_code(row, where, found, label="unit's label", read=read)
     if code is None:
         return None
     shown = codes.format(code)

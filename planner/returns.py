@@ -5,7 +5,7 @@ records each as a new version of its laboratory's submission; a form identical
 to the last version recorded changes nothing.
 
 Recording is one decision, the ledger commit. The form's bytes are first
-written (``files.write_bytes``: temp name, fsync, rename; owner-only and
+written (``files.write_many``: temp name, fsync, rename; owner-only and
 read-only, as are the receipts) to the round's hidden staging folder
 ``.intake/`` inside the ledger transaction, the commit follows, and only then
 is the file renamed into ``results/<sha256>.<ext>``. A process killed before
@@ -13,6 +13,13 @@ the commit leaves the ledger and ``results/`` as they were (the staged copy is
 removed by the next ``receive``); one killed after the commit but before the
 rename is completed by the next ``receive``, which moves every staged file the
 ledger knows into ``results/``.
+
+A call with the forms of hundreds of laboratories costs about what their rows
+cost: the round's versions are read once, every form's rows are recorded in the
+one transaction, the copies and the receipts are each written in one
+``files.write_many`` (each file flushed to disk on its own, the flushes side by
+side), and each laboratory's state in force is worked out once, for its receipt
+and its answer alike.
 """
 
 from __future__ import annotations
@@ -89,11 +96,6 @@ def _study_of(round_folder: Path) -> Path:
     return round_folder.parent.parent  # <study>/rounds/<round>
 
 
-def _write_staged(path: Path, data: bytes, *, root: Path) -> None:
-    # owner-only, and never changed: a received form is evidence
-    files.write_bytes(path, data, root=root, private=True, read_only=True)
-
-
 def settle_results(round_folder: Path, ledger: Ledger, round_id: str) -> list[str]:
     """Finish or undo staged copies left by an interrupted receive; return the names moved in.
 
@@ -162,15 +164,24 @@ def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot:
     ``upto_version`` gives the state as it was right after that version. ``absent`` is
     ``plan.not_applicable(manifest, swaps)``, made once by a caller that looks at many slots.
     """
+    history = [(s, ledger.result_rows(s.row)) for s in ledger.submissions(round_id, slot)
+               if upto_version is None or s.version <= upto_version]
+    return _merged_state(manifest, slot, history, swaps=swaps, absent=absent)
+
+
+def _merged_state(manifest: Mapping[str, Any], slot: str,
+                  history: Sequence[tuple[Submission, Sequence[ResultRow]]], *,
+                  swaps: Mapping[str, str] | None,
+                  absent: Mapping[str, frozenset[str]] | None) -> SlotState:
+    """Return ``slot_state`` of the versions in ``history`` (oldest first, with their rows),
+    for a caller that has read them from the ledger already."""
     from planner import audit
     from planner.intake import expected_codes
 
-    history = [s for s in ledger.submissions(round_id, slot)
-               if upto_version is None or s.version <= upto_version]
     merged: dict[tuple[str, int | None], tuple[Submission, ResultRow]] = {}
     measured: dict[tuple[str, int | None], dict[str, tuple[float | None, float | None]]] = {}
-    for sub in history:
-        for row in ledger.result_rows(sub.row):
+    for sub, rows in history:
+        for row in rows:
             merged[(row.code, row.trial)] = (sub, row)
             measured.setdefault((row.code, row.trial), {}).update(
                 (m, (v, u)) for m, v, u in row.measurements)
@@ -209,8 +220,8 @@ def slot_state(manifest: Mapping[str, Any], ledger: Ledger, round_id: str, slot:
                         if m not in absent.get(c, ()) and m not in have_code.get(c, {})]
     order = sorted(merged.values(), key=lambda sr: (sr[1].trial or 0, sr[1].position or 0,
                                                     sr[1].code))
-    return SlotState(slot, tuple(s.version for s in history), tuple(order), tuple(outstanding),
-                     tuple(unfilled))
+    return SlotState(slot, tuple(s.version for s, _ in history), tuple(order),
+                     tuple(outstanding), tuple(unfilled))
 
 
 def count_values(rows: Sequence[ResultRow], *, several: bool) -> tuple[int, int]:
@@ -264,6 +275,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     elsewhere = _other_rounds(ledger, round_id)
     owners = code_owners(manifest, swaps)  # one table for every form of the call
     absent = plan.not_applicable(manifest, swaps)
+    labs = {x.id: x for x in study.laboratories}
     planned = ledger.events(round_id, "planned")
     # The chained planning event holds the tokens' digests; a round planned before
     # there were tokens has none, and its forms are taken without.
@@ -278,7 +290,7 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             continue
         checked = inspect_form(study, manifest, form, swaps=swaps, unsealed=unsealed, lab=lab,
                                today=today, elsewhere=elsewhere, token_digests=digests,
-                               owners=owners, absent=absent)
+                               owners=owners, absent=absent, labs=labs)
         problems += checked.problems
         if not checked.problems:
             accepted.append((form, checked))
@@ -296,9 +308,12 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
     several = not study.shorthand
     plans = []
     stale: list[PlannerError] = []
+    versions: dict[str, list[Submission]] = {}  # one read of the round's versions
+    for sub in ledger.submissions(round_id):
+        versions.setdefault(sub.lab, []).append(sub)
     for form, checked in accepted:
         lab_id = str(checked.lab)
-        history = ledger.submissions(round_id, lab_id)
+        history = versions.get(lab_id, [])
         last = history[-1] if history else None
         old = [s for s in history[:-1] if s.sha256 == form.sha256]
         if old and (last is None or last.sha256 != form.sha256):
@@ -325,14 +340,15 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             settle_results(folder, ledger, round_id)
             # receipts a receive stopped after its commit did not write
             write_receipts(folder, study.id, round_id, ledger, manifest)
+            copies: dict[Path, bytes] = {}
             for form, checked, last in plans:
                 if last is not None and last.sha256 == form.sha256:
                     receipts.append(_receipt(form, checked, last, None, None, False, unsealed,
                                              several=several))
                     continue
                 target = staging / _results_name(form.sha256, form.kind)
-                if not target.exists():
-                    _write_staged(target, form.data, root=study_dir)
+                if target not in copies and not target.exists():
+                    copies[target] = form.data
                     staged.append(target)
                 version = ledger.add_submission(
                     round_id=round_id, lab=str(checked.lab), sha256=form.sha256,
@@ -344,6 +360,9 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
                 stored = f"{RESULTS_DIR}/{_results_name(form.sha256, form.kind)}"
                 receipts.append(_receipt(form, checked, last, version, stored, today > due,
                                          unsealed, several=several))
+            # Every copy is on disk (each flushed on its own) before the commit records it;
+            # owner-only, and never changed: a received form is evidence.
+            files.write_many(list(copies.items()), root=study_dir, private=True, read_only=True)
             if _pause is not None:
                 _pause("before-commit")
     except BaseException:
@@ -358,11 +377,13 @@ def receive(study: Study, study_dir: Path, round_id: str, paths: Sequence[Path],
             os.replace(path, results / path.name)
         except FileNotFoundError:
             pass  # another receive settled it into results/ already
-    written = write_receipts(folder, study.id, round_id, ledger, manifest)
+    written, states = _write_receipts(folder, study.id, round_id, ledger, manifest)
     out = []
     for r in receipts:
         if r.version is not None:
-            state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps, absent=absent)
+            state = states.get((r.lab, r.version))
+            if state is None:  # its receipt was there already: read the state anew
+                state = slot_state(manifest, ledger, round_id, r.lab, swaps=swaps, absent=absent)
             name, head = written.get((r.lab, r.version), (receipt_name(r.lab, r.version), None))
             r = replace(r, in_force=len(state.rows), outstanding=state.outstanding,
                         merged=state.merged, receipt=name, chain_head=head,
@@ -385,23 +406,46 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
     receipts written by the next one, the same as they would have been. Returns
     (slot, version) -> (receipt path, "link:head").
     """
+    return _write_receipts(folder, study_id, round_id, ledger, manifest)[0]
+
+
+def _write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
+                    manifest: Mapping[str, Any]
+                    ) -> tuple[dict[tuple[str, int], tuple[str, str]],
+                               dict[tuple[str, int], SlotState]]:
+    """Return ``write_receipts``'s answer and the state in force after each version it
+    wrote a receipt of. The ledger is read once for all receipts: the versions, their rows,
+    the received events."""
+    subs = ledger.submissions(round_id)
+    missing = [sub for sub in subs if not (folder / receipt_name(sub.lab, sub.version)).exists()]
+    if not missing:
+        return {}, {}
     from planner.intake import spare_swaps
 
     swaps = spare_swaps(ledger, round_id)
     several = plan.manifest_measurands(manifest)
     absent = plan.not_applicable(manifest, swaps) if several is not None else None
-    received = ledger.events(round_id, "received")
+    # the time each version was recorded; the last event of a (slot, version) tells it
+    recorded = {(e.detail.get("lab"), e.detail.get("version")): e.at
+                for e in ledger.events(round_id, "received")}
+    newest: dict[str, int] = {}
+    for sub in missing:
+        newest[sub.lab] = max(newest.get(sub.lab, 0), sub.version)
+    # every version of a slot up to its newest without a receipt, oldest first, with rows
+    history: dict[str, list[tuple[Submission, list[ResultRow]]]] = {}
+    for sub in subs:
+        if sub.version <= newest.get(sub.lab, 0):
+            history.setdefault(sub.lab, []).append((sub, ledger.result_rows(sub.row)))
     out: dict[tuple[str, int], tuple[str, str]] = {}
-    for sub in ledger.submissions(round_id):
+    states: dict[tuple[str, int], SlotState] = {}
+    texts: list[tuple[Path, bytes]] = []
+    for sub in missing:
         name = receipt_name(sub.lab, sub.version)
-        if (folder / name).exists():
-            continue
-        rows = ledger.result_rows(sub.row)
-        state = slot_state(manifest, ledger, round_id, sub.lab, swaps=swaps,
-                           upto_version=sub.version, absent=absent)
+        upto = [(s, rows) for s, rows in history[sub.lab] if s.version <= sub.version]
+        rows = upto[-1][1]
+        state = _merged_state(manifest, sub.lab, upto, swaps=swaps, absent=absent)
         link = ledger.link_of("submissions", sub.row)
-        at = next((e.at for e in reversed(received) if e.detail.get("lab") == sub.lab
-                   and e.detail.get("version") == sub.version), sub.received_at)
+        at = recorded.get((sub.lab, sub.version), sub.received_at)
         lines = [
             "ringplan receipt: a result form recorded in the study's ledger",
             f"study {study_id}, round {round_id}, laboratory {sub.lab}",
@@ -422,10 +466,11 @@ def write_receipts(folder: Path, study_id: str, round_id: str, ledger: Ledger,
             "long as the study lasts; 'ringplan chain DIR --link N' shows the head of link N.",
             "A ledger that does not has been rewritten since your form was recorded.",
         ]
-        files.write_text(folder / name, "\n".join(lines) + "\n", root=_study_of(folder),
-                         private=True)
+        texts.append((folder / name, ("\n".join(lines) + "\n").encode("utf-8")))
         out[(sub.lab, sub.version)] = (name, str(link))
-    return out
+        states[(sub.lab, sub.version)] = state
+    files.write_many(texts, root=_study_of(folder), private=True)
+    return out, states
 
 
 def _receipt(form: forms.Form, checked: Checked, last: Any, version: int | None,

@@ -24,6 +24,15 @@ A study with several measurands gets one letter per laboratory all the same: aft
 the key, a table of its scores by measurand, then the parts from its scores on once
 per measurand under the measurand's heading. A study in the single-measurand form
 reads as it always has, without measurand headings.
+
+A round of hundreds of laboratories has hundreds of letters of one build, so
+``render_all`` makes them cheap without changing a word or a pixel of them: tables
+drawn straight from the style's commands (``Grid``), paragraphs that recur broken
+into lines and turned into PDF operators once (``Laid``), and fonts given their
+characters in a fixed order first (``_Seed``) so that the letters of a language embed
+the same font subsets, each made once (``_shared_font_files``).
+tests/render/test_letter_batch.py holds them to what reportlab's Table and Paragraph
+draw.
 """
 
 from __future__ import annotations
@@ -108,11 +117,11 @@ def anonymous_view(statistics: Mapping[str, Any]) -> dict[str, Any]:
 
 def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Addressee,
            views: Mapping[str, Mapping[str, Any]], paper: str, t: Texts) -> list[Any]:
-    from reportlab.platypus import Paragraph, Spacer
+    from reportlab.platypus import Spacer
 
     shorthand = is_shorthand(statistics)
     s = measurand_view(statistics, SHORTHAND_ID) if shorthand else statistics
-    st = _layout.styles()
+    st = _styles()
     esc = _layout.escape
     n_labs = len(s["participants"])
 
@@ -120,11 +129,11 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
 
     address = "<br/>".join(esc(line) for line in (to.name, *to.address))
     story: list[Any] = [
-        Paragraph(esc(t("letter.title")), st["title"]),
-        Paragraph(address + ("<br/>" + t.markup("letter.attn", contact=to.contact)
-                             if to.contact else ""), st["body"]),
+        _para(esc(t("letter.title")), st["title"]),
+        _para(address + ("<br/>" + t.markup("letter.attn", contact=to.contact)
+                         if to.contact else ""), st["body"], shared=False),
         Spacer(1, 4 * _MM),
-        Paragraph(t.markup("letter.lead", title=s["title"], round=s["round"], labs=n_labs,
+        _para(t.markup("letter.lead", title=s["title"], round=s["round"], labs=n_labs,
                            materials=len(s["materials"]), trials=s["trials"],
                            measurand=s["measurand"], unit=s["unit"], lab=to.lab,
                            you=t("letter.you")) if shorthand else
@@ -135,45 +144,80 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
                            measurands=t("common.semicolon").join(
                                t("letter.measurand_item", measurand=mid, name=b["name"],
                                  unit=b["unit"]) for mid, b in s["measurands"].items()),
-                           lab=to.lab, you=t("letter.you")), st["lead"]),
+                           lab=to.lab, you=t("letter.you")), st["lead"], shared=False),
     ]
     if to.lab == s["host"]:
-        story.append(Paragraph(t.markup("letter.in_house"), st["body"]))
+        story.append(_para(t.markup("letter.in_house"), st["body"]))
     story += _key_section(s, to, t)
     if shorthand:
         story += section(s, rows, views[SHORTHAND_ID])
     else:
         story += overview(statistics)
-        heading = _measurand_style()
+        heading = st["measurand"]
         for mid in measurand_ids(statistics):
             sv = measurand_view(statistics, mid)
-            story.append(Paragraph(esc(t("letter.measurand_heading", measurand=mid,
+            story.append(_para(esc(t("letter.measurand_heading", measurand=mid,
                                          name=sv["measurand"], unit=sv["unit"])), heading))
             story += section(sv, [r for r in rows if r.measurand == mid], views[mid],
                              own_results=False)
         story += results(statistics, rows)
     story.append(Spacer(1, 4 * _MM))
-    story.append(Paragraph(t.markup("letter.issued", organiser=s.get("organiser")
-                                    or t("letter.coordinator")), st["small"]))
+    story.append(_para(t.markup("letter.issued", organiser=s.get("organiser")
+                                or t("letter.coordinator")), st["small"]))
     return story
 
 
-def _measurand_style() -> Any:
-    """The style of a measurand's heading in a letter: above the sections' headings."""
-    from reportlab.lib.styles import ParagraphStyle
+def _styles() -> dict[str, Any]:
+    """Return the paragraph styles of a letter by name: ``_layout.styles()`` and the
+    letter's own. The letters of one batch share them."""
+    kept = _kept("styles")
+    if not kept:
+        from reportlab.lib.colors import HexColor
+        from reportlab.lib.styles import ParagraphStyle
 
-    return ParagraphStyle("measurand", parent=_layout.styles()["h2"], fontSize=13.5,
-                          leading=17, spaceBefore=10)
+        st = _layout.styles()
+        kept.update(st)
+        # a measurand's heading: above the sections' headings
+        kept["measurand"] = ParagraphStyle("measurand", parent=st["h2"], fontSize=13.5,
+                                           leading=17, spaceBefore=10)
+        # a table heading that wraps, and a table cell of text that wraps
+        kept["head-wrap"] = ParagraphStyle("head-wrap", parent=st["cell"],
+                                           fontName=_layout.BOLD, fontSize=8, leading=9.5,
+                                           textColor=HexColor(_layout.ACCENT), alignment=2)
+        kept["cell8r"] = ParagraphStyle("cell8r", parent=st["cell"], fontSize=8, leading=9.6,
+                                        alignment=2)
+    return kept
+
+
+def _kept(name: str) -> dict[Any, Any]:
+    """Return a cache the letters of one batch (``render_all``) share; a new one outside."""
+    return _SHARED.setdefault(name, {}) if _SHARED else {}
+
+
+def _para(text: str, style: Any, *, shared: bool = True) -> Any:
+    """Return a paragraph of ``text`` in ``style``. With ``shared`` (a text that recurs in
+    many letters) the letters of a batch share its layout: it is broken into lines once."""
+    from reportlab.platypus import Paragraph
+
+    if not shared or not _SHARED:
+        return Paragraph(text, style)
+    kept = _kept("paragraphs")
+    got = kept.get((text, style.name))
+    if got is None:
+        if len(kept) > 4096:  # a long-lived process: keep it small
+            kept.clear()
+        got = kept[(text, style.name)] = (Paragraph(text, style), {})
+    return _kinds().Laid(*got)
 
 
 def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
     """Return the functions that write a letter's parts: ``part`` (one measurand's scores,
     results and standing) and ``overview`` (the scores by measurand)."""
-    from reportlab.platypus import KeepTogether, Paragraph, Spacer
+    from reportlab.platypus import KeepTogether, Spacer
 
     from planner.render import _charts
 
-    st = _layout.styles()
+    st = _styles()
     esc = _layout.escape
     width = _layout.content_width(paper)
     comma = to.decimal == "comma"
@@ -193,21 +237,14 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             ("ALIGN", (right_from, 0), (-1, -1), "RIGHT"),
             ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
             *extra])
-        from planner.render import _tables
-
-        return _tables.table([head, *data[1:]], widths, style, repeatRows=1)
+        return _grid([head, *data[1:]], widths, style)
 
     def _head(text: Any, column: float) -> Any:
-        from reportlab.lib.colors import HexColor
-        from reportlab.lib.styles import ParagraphStyle
         from reportlab.pdfbase.pdfmetrics import stringWidth
 
         if not isinstance(text, str) or stringWidth(text, _layout.BOLD, 8) <= column - _PAD:
             return text
-        wrapped = ParagraphStyle("head-wrap", parent=st["cell"], fontName=_layout.BOLD,
-                                 fontSize=8, leading=9.5, textColor=HexColor(_layout.ACCENT),
-                                 alignment=2)
-        return Paragraph(esc(text), wrapped)
+        return _para(esc(text), st["head-wrap"])
 
     def bands(cells: Sequence[tuple[int, int, str | None]]) -> list[tuple[Any, ...]]:
         from reportlab.lib.colors import HexColor
@@ -227,10 +264,7 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
     def overview(statistics: Mapping[str, Any]) -> list[Any]:
         """The laboratory's scores by measurand: how many carry a band, how many are
         satisfactory, on which materials it is outside the band."""
-        from reportlab.lib.styles import ParagraphStyle
-
-        right = ParagraphStyle("cell8r", parent=st["cell"], fontSize=8, leading=9.6,
-                               alignment=2)
+        right = st["cell8r"]
         data: list[list[Any]] = [[t("letter.col_measurand"), t("letter.col_banded"),
                                   t("letter.band.satisfactory"), t("letter.col_outside")]]
         cells = []
@@ -250,17 +284,17 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             data.append([f"{mid} [{sv['unit']}]",
                          f"{len(banded)} / {len(sv.get('measured_on') or sv['materials'])}",
                          str(good) if banded else "-",
-                         Paragraph(esc(listed), right) if len(listed) > 40 else listed])
+                         _para(esc(listed), right) if len(listed) > 40 else listed])
             if outside:
                 worst = ("unsatisfactory" if any(banded[m].get("band") == "unsatisfactory"
                                                  or banded[m].get("en_band") == "unsatisfactory"
                                                  for m in outside) else "questionable")
                 cells.append((3, len(data) - 1, worst))
-        return [Paragraph(esc(t("letter.overview_heading")), st["h2"]),
+        return [_para(esc(t("letter.overview_heading")), st["h2"]),
                 table(data, [150, 60, 80, 190], [*bands(cells),
                                                   ("VALIGN", (0, 0), (-1, -1), "TOP"),
                                                   ("ALIGN", (0, 0), (0, -1), "LEFT")]),
-                Paragraph(esc(t("letter.overview_note")), st["small"])]
+                _para(esc(t("letter.overview_note")), st["small"])]
 
     def section(s: Mapping[str, Any], rows: Sequence[Unblinded],
                 view: Mapping[str, Any], own_results: bool = True) -> list[Any]:
@@ -274,11 +308,11 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
         if not scored:
             # Nothing to score: say so in words, not with a table of dashes or "0 of 0".
             text = t("letter.no_values") if own_rows else t("letter.no_results")
-            story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
-                      Paragraph(f"<b>{esc(text)}</b>", st["body"])]
+            story += [_para(esc(t("letter.scores_heading")), st["h2"]),
+                      _para(f"<b>{esc(text)}</b>", st["body"])]
         else:
-            story += [Paragraph(esc(t("letter.scores_heading")), st["h2"]),
-                      Paragraph(esc(_verdict(s, mine, t, comma)), st["body"]), Spacer(1, 2 * _MM)]
+            story += [_para(esc(t("letter.scores_heading")), st["h2"]),
+                      _para(esc(_verdict(s, mine, t, comma)), st["body"]), Spacer(1, 2 * _MM)]
         has_en = any(e and e.get("En") is not None for e in mine.values())
         head = [t("letter.col_material"), "x_pt", "u(x_pt)", "sigma_pt", t("letter.col_mean"),
                 "D%", t("letter.col_score")] + (["En"] if has_en else []) + [t("letter.col_band")]
@@ -316,8 +350,8 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             story.append(table(data, [66, 52, 46, 46, 54, 40, 62] + ([40] if has_en else []) + [70],
                                bands(cells)))
             # The rules of the bands are the same for every measurand: said once a letter.
-            story.append(Paragraph(esc(_method_note(s, in_house, n, t, comma,
-                                                    rules="rules" not in said)), st["small"]))
+            story.append(_para(esc(_method_note(s, in_house, n, t, comma,
+                                                rules="rules" not in said)), st["small"]))
             said.add("rules")
 
         # The laboratory's own results, unit by unit.
@@ -334,17 +368,17 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             cells_m = own.get(m, {})
             row = [m]
             for i in range(1, trials + 1):
-                r = cells_m.get(i)
-                if r is None:
+                unit = cells_m.get(i)
+                if unit is None:
                     row += ["-", ""]
                     continue
-                value = n(r.value) if r.value is not None else t("letter.no_value")
-                if r.uncertainty is not None:
-                    value += f" ± {n(r.uncertainty, 3)}"
+                value = n(unit.value) if unit.value is not None else t("letter.no_value")
+                if unit.uncertainty is not None:
+                    value += f" ± {n(unit.uncertainty, 3)}"
                 # Plain strings, not Paragraphs: a big round makes hundreds of these letters.
-                row += [value, codes.format(r.code)]
+                row += [value, codes.format(unit.code)]
                 extra = [t(f"letter.flag.{f}") if f"letter.flag.{f}" in t.entries else f
-                         for f in r.flags if f != "in-house"]
+                         for f in unit.flags if f != "in-house"]
                 if extra:
                     notes.append(t("letter.flag_item", material=m, trial=i, flags=", ".join(extra)))
             data.append(row)
@@ -353,12 +387,12 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
                 for c in range(2, 2 * trials + 1, 2)]
         align = [("ALIGN", (c, 0), (c, -1), "LEFT") for c in range(2, 2 * trials + 1, 2)]
         if own_rows and own_results:
-            story += [Paragraph(esc(t("letter.results_heading")), st["h2"]),
+            story += [_para(esc(t("letter.results_heading")), st["h2"]),
                       table(data, [70] + [tw, 58] * trials, mono + align)]
         if notes and own_results:
-            story.append(Paragraph(t.markup("letter.flags",
-                                            flags=t("common.semicolon").join(notes)),
-                                   st["small"]))
+            story.append(_para(t.markup("letter.flags",
+                                        flags=t("common.semicolon").join(notes)),
+                               st["small"], shared=False))
 
         # Everyone's scores, the own marked; then the others by participant code.
         strip_rows = []
@@ -371,12 +405,19 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             name = "z / z'" if any(mv["name"] == "z'" for mv in view["materials"].values()) else "z"
             note = (t.markup("letter.stand_note_bars", step=n(0.25))
                     if n_labs > _charts.MAX_LABELS else t.markup("letter.stand_note"))
+            # A chart of many materials goes on in a second chart: one taller than a page
+            # cannot be drawn at all. Each part keeps its own operators (``cache``).
+            charts = [_charts.StripChart(
+                strip_rows[i:i + _CHART_ROWS], width=width, score_name=name,
+                cache=view.get("cache") if not i or view.get("cache") is None
+                else view["cache"].setdefault(f"rows {i}", {}))
+                for i in range(0, len(strip_rows), _CHART_ROWS)]
             story.append(KeepTogether([
-                Paragraph(esc(t("letter.stand_heading")), st["h2"]),
-                *([Paragraph(note, st["small"])] if "stand" not in said else []),
-                _charts.StripChart(strip_rows, width=width, score_name=name,
-                                   cache=view.get("cache")),
+                _para(esc(t("letter.stand_heading")), st["h2"]),
+                *([_para(note, st["small"])] if "stand" not in said else []),
+                charts[0],
             ]))
+            story += charts[1:]
             said.add("stand")
         if n_labs <= TABLE_LABS and view["materials"]:
             mats = [m for m in s["materials"] if m in view["materials"]]
@@ -392,15 +433,15 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
                         row.append("-" if v is None else n(round(v, 2), 3))
                         cells.append((j, i, view["materials"][m]["bands"].get(code)))
                     data.append(row)
-                extra = bands(cells)
+                marks = bands(cells)
                 if me in view["codes"]:
                     r_me = view["codes"].index(me) + 1
-                    extra.append(("FONT", (0, r_me), (-1, r_me), _layout.BOLD, 8))
+                    marks.append(("FONT", (0, r_me), (-1, r_me), _layout.BOLD, 8))
                 block = [table(data, [70] + [min(52.0, (width - 70) / len(part))] * len(part),
-                               extra)]
+                               marks)]
                 if start == 0:
-                    block = [Paragraph(esc(t("letter.all_heading")), st["h2"]),
-                             Paragraph(esc(t("letter.all_note")), st["small"])] + block
+                    block = [_para(esc(t("letter.all_heading")), st["h2"]),
+                             _para(esc(t("letter.all_note")), st["small"])] + block
                 story.append(KeepTogether(block))
         return story
 
@@ -427,7 +468,7 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
             if extra:
                 notes.append(t("letter.flag_item", material=material, trial=trial,
                                flags=", ".join(extra)))
-        story: list[Any] = [Paragraph(esc(t("letter.results_heading")), st["h2"])]
+        story: list[Any] = [_para(esc(t("letter.results_heading")), st["h2"])]
         for start in range(0, len(ids), _PER_TABLE):
             part = ids[start:start + _PER_TABLE]
             data: list[list[Any]] = [[t("letter.col_material"), t("letter.col_trial_short"),
@@ -437,22 +478,23 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
                 got = by_unit[material, trial]
                 row = [material, str(trial), codes.format(next(iter(got.values())).code)]
                 for mid in part:
-                    r = got.get(mid)
-                    if r is None:
+                    unit = got.get(mid)
+                    if unit is None:
                         row.append("-")  # not measured on this material
                         continue
-                    value = n(r.value) if r.value is not None else t("letter.no_value")
-                    if r.uncertainty is not None:
-                        value += f" ± {n(r.uncertainty, 3)}"
+                    value = n(unit.value) if unit.value is not None else t("letter.no_value")
+                    if unit.uncertainty is not None:
+                        value += f" ± {n(unit.uncertainty, 3)}"
                     row.append(value)
                 data.append(row)
             story.append(table(data, [62, 34, 62] + [(width - 158) / len(part)] * len(part),
                                [("FONT", (2, 1), (2, -1), _layout.MONO_REGULAR, 7),
                                 ("ALIGN", (2, 0), (2, -1), "LEFT")], right_from=1))
-        story.append(Paragraph(esc(t("letter.results_note")), st["small"]))
+        story.append(_para(esc(t("letter.results_note")), st["small"]))
         if notes:
-            story.append(Paragraph(t.markup("letter.flags",
-                                            flags=t("common.semicolon").join(notes)), st["small"]))
+            story.append(_para(t.markup("letter.flags",
+                                        flags=t("common.semicolon").join(notes)), st["small"],
+                               shared=False))
         return story
 
     return section, overview, results
@@ -460,11 +502,11 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
 
 def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
     """Return how the key was opened, as the ledger shows it, and its full fingerprint."""
-    from reportlab.platypus import Paragraph, Spacer
+    from reportlab.platypus import Spacer
 
     from planner.render import _opening
 
-    st = _layout.styles()
+    st = _styles()
     esc = _layout.escape
     codes_of = s["participants"]
     opening = s.get("opening")
@@ -496,13 +538,13 @@ def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
                      esc(_opening.sealing_sentence(opening or {}, texts=t))]).strip()
     mono = f"<font face='{_layout.MONO_REGULAR}'>{{}}</font>"
     return [
-        Paragraph(esc(t("letter.key_heading")), st["h2"]),
-        Paragraph(text, st["body"]),
+        _para(esc(t("letter.key_heading")), st["h2"]),
+        _para(text, st["body"]),
         Spacer(1, 1.5 * _MM),
-        Paragraph(t.markup("letter.fingerprint_handover" if _circulating(s)
+        _para(t.markup("letter.fingerprint_handover" if _circulating(s)
                            else "letter.fingerprint_packing", fingerprint=language.Markup(
             mono.format(esc(_layout.grouped_fingerprint(s["fingerprint"]))))), st["body"]),
-        *([Paragraph(t.markup("letter.ledger", link=s["ledger"]["link"], head=language.Markup(
+        *([_para(t.markup("letter.ledger", link=s["ledger"]["link"], head=language.Markup(
             mono.format(esc(_layout.grouped_fingerprint(s["ledger"]["head"]))))), st["small"])]
           if s.get("ledger") else []),
     ]
@@ -578,6 +620,9 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: 
 
 
 _PAD = 8.0  # a table cell's padding, both sides (_layout.table_style)
+_CHART_ROWS = 40
+"""Materials to one chart of a letter: 40 rows (584 pt with the axis) and the section's
+heading fit the text frame of an A4 or US-letter page (some 690 and 650 pt)."""
 _PER_TABLE = 4  # measurands to a table of a laboratory's own results, so that they fit
 
 
@@ -677,9 +722,17 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
     ``statistics`` is statistics.json (format ``ringplan-statistics/3``); ``views`` is
     ``anonymous_views(statistics)``, computed once when many letters are made.
     """
+    return _render(path, statistics, rows, addressee, paper=paper, views=views,
+                   seeds=_seeds(statistics, [addressee], addressee.language))
+
+
+def _render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
+            addressee: Addressee, *, paper: str,
+            views: Mapping[str, Mapping[str, Any]] | None,
+            seeds: tuple[tuple[str, str], ...]) -> Path:
     s = statistics
     t = language.texts(addressee.language)
-    story = _story(s, rows, addressee, views or anonymous_views(s), paper, t)
+    story = [_Seed(seeds), *_story(s, rows, addressee, views or anonymous_views(s), paper, t)]
     running = _layout.Running(s["study"], s["title"], s["round"],
                               t("letter.running", lab=addressee.lab),
                               t("letter.confidential", name=addressee.name),
@@ -690,13 +743,571 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
                                  lab=addressee.lab))
 
 
+# --- tables and paragraphs laid out once ----------------------------------------
+#
+# A round of hundreds of laboratories makes hundreds of letters of the same build. Two
+# flowables of our own make them cheap. ``Grid`` draws a letter's tables as reportlab's
+# Table with our style (``_layout.table_style``) draws them: the same positions, fonts,
+# colours, rules and page splits with the heading repeated, worked out directly from the
+# style's commands rather than through reportlab's cell styles (a sixth of a letter's time
+# went there). ``Laid`` is a paragraph whose lines are broken once for every letter of a
+# batch that has the same text. A fresh ``Laid`` is made for each letter, as reportlab
+# marks the flowables it moves to the next page.
+
+_GRID_OPS = frozenset({"FONT", "TEXTCOLOR", "VALIGN", "ALIGN", "BACKGROUND", "LINEBELOW",
+                       "TOPPADDING", "BOTTOMPADDING", "LEFTPADDING", "RIGHTPADDING"})
+
+
+def _grid(rows: Sequence[Sequence[Any]], widths: Sequence[float], style: Any) -> Any:
+    """Return a table of ``rows`` with ``widths`` in ``style`` (a TableStyle), its first row
+    repeated at the top of every page it runs onto."""
+    commands = list(style.getCommands())
+    if all(c[0] in _GRID_OPS and not isinstance(c[1][1], str)
+           and (c[0] != "LINEBELOW" or len(c) == 5)
+           and (c[0] != "ALIGN" or c[3] in ("LEFT", "RIGHT", "CENTRE", "CENTER"))
+           and (c[0] != "VALIGN" or c[3] in ("TOP", "MIDDLE", "BOTTOM")) for c in commands):
+        return _kinds().Grid([list(r) for r in rows], list(widths), commands)
+    from planner.render import _tables  # a command Grid does not follow
+
+    return _tables.table(rows, widths, style, repeatRows=1)
+
+
+@cache
+def _kinds() -> Any:
+    """Return the flowable classes of letters (made on first use: reportlab loads late)."""
+    from types import SimpleNamespace
+
+    from reportlab import rl_config
+    from reportlab.lib.colors import toColor
+    from reportlab.lib.rl_accel import fp_str
+    from reportlab.pdfbase import pdfmetrics
+    from reportlab.platypus import Flowable
+
+    class Grid(Flowable):  # type: ignore[misc]
+        """A table drawn as reportlab's Table draws it with the same style commands."""
+
+        def __init__(self, cells: list[list[Any]], widths: list[float],
+                     commands: Sequence[tuple[Any, ...]]) -> None:
+            super().__init__()
+            self.hAlign = "LEFT"
+            self.cells, self.widths = cells, widths
+            self.order = list(range(len(cells)))  # the rows of this part of the table
+            self.heights: list[float] | None = None
+            n_rows, n_cols = len(cells), len(widths)
+            # reportlab's CellStyle before any command
+            self.font = [[(rl_config.canvas_basefontname, 10, 12)] * n_cols
+                         for _ in range(n_rows)]
+            self.colour = [[toColor("black")] * n_cols for _ in range(n_rows)]
+            self.align = [["LEFT"] * n_cols for _ in range(n_rows)]
+            self.valign = [["BOTTOM"] * n_cols for _ in range(n_rows)]
+            pads: dict[str, list[list[float]]] = {
+                side: [[width] * n_cols for _ in range(n_rows)] for side, width in
+                (("LEFTPADDING", 6), ("RIGHTPADDING", 6), ("TOPPADDING", 3),
+                 ("BOTTOMPADDING", 3))}
+            # what a command sets, by command: the array of every cell
+            target = {"TEXTCOLOR": self.colour, "ALIGN": self.align, "VALIGN": self.valign,
+                      **pads}
+            self.backgrounds: list[tuple[int, int, int, int, Any]] = []
+            self.rules: list[tuple[int, int, int, int, float, Any]] = []
+            for op, (c0, r0), (c1, r1), *values in commands:
+                c0, c1 = c0 + n_cols if c0 < 0 else c0, c1 + n_cols if c1 < 0 else c1
+                r0, r1 = r0 + n_rows if r0 < 0 else r0, r1 + n_rows if r1 < 0 else r1
+                if op == "BACKGROUND":
+                    self.backgrounds.append((c0, r0, c1, r1, toColor(values[0])))
+                    continue
+                if op == "LINEBELOW":
+                    self.rules.append((c0, r0, c1, r1, values[0], toColor(values[1])))
+                    continue
+                span = c1 - c0 + 1
+                for r in range(r0, min(r1, n_rows - 1) + 1):
+                    if op == "FONT" and len(values) == 1:
+                        self.font[r][c0:c1 + 1] = [(values[0], *f[1:])
+                                                   for f in self.font[r][c0:c1 + 1]]
+                    elif op == "FONT":
+                        lead = values[2] if len(values) > 2 else values[1] * 1.2
+                        self.font[r][c0:c1 + 1] = [(values[0], values[1], lead)] * span
+                    else:
+                        value = toColor(values[0]) if op == "TEXTCOLOR" else values[0]
+                        target[op][r][c0:c1 + 1] = [value] * span
+            self.pad = [list(zip(*sides)) for sides in zip(
+                *(pads[side] for side in ("LEFTPADDING", "RIGHTPADDING", "TOPPADDING",
+                                          "BOTTOMPADDING")))]  # per cell: left, right, top, bottom
+
+        def _part(self, order: list[int]) -> Grid:
+            # A new flowable (reportlab marks the ones it moved to the next page) that
+            # shares this one's cells and styles.
+            part = Grid.__new__(Grid)
+            Flowable.__init__(part)
+            for name in ("hAlign", "cells", "widths", "heights", "all_heights", "font",
+                         "colour", "align", "valign", "pad", "backgrounds", "rules"):
+                if hasattr(self, name):
+                    setattr(part, name, getattr(self, name))
+            part.order = order
+            part.heights = (None if self.heights is None else
+                            [self.all_heights[i] for i in order])
+            return part
+
+        def _row_heights(self) -> list[float]:
+            if self.heights is None:
+                out = []
+                for r in range(len(self.cells)):
+                    h = 0.0
+                    for c, value in enumerate(self.cells[r]):
+                        left, right, top, bottom = self.pad[r][c]
+                        if isinstance(value, Flowable):
+                            got = value.wrap(self.widths[c] - left - right,
+                                             72000 - top - bottom)[1]
+                        else:
+                            got = self.font[r][c][2] * len(str(value).split("\n"))
+                        h = max(h, got + top + bottom)
+                    out.append(h)
+                self.all_heights = out
+                self.heights = [out[i] for i in self.order]
+            return self.heights
+
+        def wrap(self, avail_width: float, avail_height: float) -> tuple[float, float]:
+            self.width, self.height = sum(self.widths), sum(self._row_heights())
+            return self.width, self.height
+
+        def split(self, avail_width: float, avail_height: float) -> list[Any]:
+            # As reportlab's Table, by rows: not before the first row after the heading.
+            heights = self._row_heights()
+            h, n = 0.0, 0
+            for rh in heights:
+                if h + rh > avail_height:
+                    break
+                h, n = h + rh, n + 1
+            if n <= 1:
+                return []
+            if n == len(heights):
+                return [self]
+            return [self._part(self.order[:n]), self._part(self.order[:1] + self.order[n:])]
+
+        def draw(self) -> None:
+            c = self.canv
+            heights = self._row_heights()
+            tops = [sum(heights)]
+            for h in heights:
+                tops.append(tops[-1] - h)
+            lefts = [0.0]
+            for w in self.widths:
+                lefts.append(lefts[-1] + w)
+            where = {r: i for i, r in enumerate(self.order)}  # row -> its place in this part
+            c.saveState()
+            for c0, r0, c1, r1, colour in self.backgrounds:
+                for i0, i1 in _runs([where[r] for r in range(r0, r1 + 1) if r in where]):
+                    c.setFillColor(colour)
+                    c.rect(lefts[c0], tops[i0], lefts[c1 + 1] - lefts[c0], tops[i1 + 1] - tops[i0],
+                           stroke=0, fill=1)
+            text = c.beginText()
+            doc = c._doc
+            font: tuple[str, float, float] | None = None
+            colour_now: Any = None
+            face: Any = None
+            tf = ""
+            subset_now = -1
+            for i, r in enumerate(self.order):
+                bottom, height = tops[i + 1], heights[i]
+                for col, value in enumerate(self.cells[r]):
+                    left, right, top, low = self.pad[r][col]
+                    x0, width = lefts[col], self.widths[col]
+                    align, valign = self.align[r][col], self.valign[r][col]
+                    if isinstance(value, Flowable):
+                        w, h = value.wrap(width - left - right, height - top - low)
+                        if valign == "TOP":
+                            y = bottom + height - top
+                        elif valign == "BOTTOM":
+                            y = bottom + low + h
+                        else:
+                            y = bottom + (height + low - top + h) / 2.0
+                        x = (x0 + left if align == "LEFT" else x0 + width - right - w
+                             if align == "RIGHT" else x0 + (width + left - right - w) / 2.0)
+                        value.drawOn(c, x, y - h)
+                        continue
+                    name, size, leading = self.font[r][col]
+                    lines = str(value).split("\n")
+                    if valign == "BOTTOM":
+                        y = bottom + low + len(lines) * leading - size
+                    elif valign == "TOP":
+                        y = bottom + height - top - size
+                    else:
+                        y = bottom + (low + height - top + len(lines) * leading) / 2.0 - size
+                    if font != (name, size, leading):
+                        text.setFont(name, size, leading)
+                        font = (name, size, leading)
+                        face = pdfmetrics.getFont(name)
+                        tf = f" {fp_str(size)} Tf {fp_str(leading)} TL"
+                        subset_now = -1
+                    if self.colour[r][col] is not colour_now:
+                        colour_now = self.colour[r][col]
+                        text.setFillColor(colour_now)
+                    for line in lines:
+                        wide, pieces = _encoded(face, line, size, doc)
+                        if align == "LEFT":
+                            x = x0 + left
+                        elif align == "RIGHT":
+                            x = x0 + width - right - wide
+                        else:
+                            x = x0 + (width + left - right) * 0.5 - 0.5 * wide
+                        if pieces is None or not c.bottomup:  # reportlab's own way
+                            text.setTextOrigin(x, y)
+                            text.textOut(line)
+                            subset_now = text._curSubset
+                        else:
+                            # As reportlab's text object writes a line of a TrueType font.
+                            code = text._code
+                            code.append(f"1 0 0 1 {fp_str(x, y)} Tm")
+                            for subset, escaped in pieces:
+                                if subset != subset_now:
+                                    code.append(face.getSubsetInternalName(subset, doc) + tf)
+                                    subset_now = text._curSubset = subset
+                                code.append(f"({escaped}) Tj")
+                        y -= leading
+            c.drawText(text)
+            c.saveState()
+            # reportlab's defaults for a rule command without them: round caps and joins
+            c.setLineCap(1)
+            c.setLineJoin(1)
+            weight = stroke = None
+            for c0, r0, c1, r1, width, colour in self.rules:
+                if colour != stroke:
+                    c.setStrokeColor(colour)
+                    stroke = colour
+                if width != weight:
+                    c.setLineWidth(width)
+                    weight = width
+                for r in range(r0, r1 + 1):
+                    if r in where:
+                        y = tops[where[r] + 1]
+                        c.line(lefts[c0], y, lefts[min(c1 + 1, len(self.widths))], y)
+            c.restoreState()
+            c.restoreState()
+
+    class Seed(Flowable):  # type: ignore[misc]
+        """Nothing to see: gives the letter's fonts their characters in a fixed order."""
+
+        _ZEROSIZE = True
+
+        def __init__(self, seeds: tuple[tuple[str, str], ...]) -> None:
+            super().__init__()
+            self.seeds = seeds
+
+        def wrap(self, avail_width: float, avail_height: float) -> tuple[float, float]:
+            return 0.0, 0.0
+
+        def draw(self) -> None:
+            from reportlab.pdfbase import pdfmetrics
+
+            doc = self.canv._doc
+            given = {}
+            for name, text in self.seeds:
+                font = pdfmetrics.getFont(name)
+                if hasattr(font, "splitString"):  # a TrueType font: subsets of its own
+                    font.splitString(text, doc)
+                    given[name] = text
+            doc._ringplan_seeds = given  # what ``_fixed`` reads
+
+    class Laid(Flowable):  # type: ignore[misc]
+        """A paragraph broken into lines once for every letter that has it."""
+
+        def __init__(self, paragraph: Any, sizes: dict[Any, Any]) -> None:
+            super().__init__()
+            self.paragraph, self.sizes = paragraph, sizes
+
+        def wrap(self, avail_width: float, avail_height: float) -> tuple[float, float]:
+            got: tuple[float, float] | None = self.sizes.get(avail_width)
+            if got is None:
+                got = self.sizes[avail_width] = self.paragraph.wrap(avail_width, avail_height)
+            self.avail = avail_width
+            width, height = got
+            self.width, self.height = width, height
+            return width, height
+
+        def draw(self) -> None:
+            c = self.canv
+            seeds = tuple(sorted(getattr(c._doc, "_ringplan_seeds", {}).items()))
+            drawn = self.sizes.get(("drawn", self.avail, seeds))
+            if drawn and all(font.getSubsetInternalName(0, c._doc) == name
+                             for font, name in drawn[1]):
+                # the operators it drew before, with the same codes and font names
+                c._code.extend(drawn[0])
+                return
+            # laid out for another width since, or its lines dropped by a split that failed
+            if self.paragraph.width != self.avail or not hasattr(self.paragraph, "blPara"):
+                self.paragraph.wrap(self.avail, 72000)
+            start = len(c._code)
+            self.paragraph.canv = c  # where this flowable stands already: draw it here
+            try:
+                self.paragraph.draw()
+            finally:
+                del self.paragraph.canv
+            if drawn is None:
+                fonts = self._fonts(c._doc)
+                ops = c._code[start:]
+                self.sizes[("drawn", self.avail, seeds)] = (
+                    (ops, tuple((f, f.getSubsetInternalName(0, c._doc)) for f in fonts))
+                    if fonts is not None and not any(" gs" in op for op in ops) else False)
+
+        def _fonts(self, doc: Any) -> list[Any] | None:
+            """Return the fonts the paragraph draws in, if its operators read the same in
+            every letter of its kind: only characters its fonts were given first (``_fixed``),
+            nothing but text (no links, no underlines, no pictures)."""
+            laid = self.paragraph.blPara
+            if laid.kind == 0:  # one font: lines of words
+                pieces = [(laid, " ".join(w for _, words in laid.lines for w in words))]
+            else:  # fragments of several fonts
+                pieces = [(f, getattr(f, "text", "")) for line in laid.lines for f in line.words]
+            fonts: dict[str, Any] = {}
+            for frag, text in pieces:
+                name = getattr(frag, "fontName", None)
+                if (not isinstance(name, str) or not isinstance(text, str)
+                        or not _fixed(doc, name).issuperset(text)
+                        or any(getattr(frag, a, None) for a in
+                               ("link", "cbDefn", "us_lines", "backColor", "img"))):
+                    return None
+                fonts[name] = pdfmetrics.getFont(name)
+            return list(fonts.values())
+
+        def split(self, avail_width: float, avail_height: float) -> list[Any]:
+            self.paragraph.wrap(avail_width, avail_height)
+            # the paragraph whole (as reportlab may answer) stays this letter's own flowable
+            return [self if part is self.paragraph else part
+                    for part in self.paragraph.split(avail_width, avail_height)]
+
+        def getSpaceBefore(self) -> float:  # noqa: N802 - reportlab's name
+            return float(self.paragraph.getSpaceBefore())
+
+        def getSpaceAfter(self) -> float:  # noqa: N802 - reportlab's name
+            return float(self.paragraph.getSpaceAfter())
+
+    return SimpleNamespace(Grid=Grid, Laid=Laid, Seed=Seed)
+
+
+_WIDTHS: dict[tuple[str, float, str], float] = {}
+_ENCODED: dict[tuple[str, str, str], list[tuple[int, str]]] = {}
+
+
+def _encoded(font: Any, line: str, size: float, doc: Any
+             ) -> tuple[float, list[tuple[int, str]] | None]:
+    """Return the width of a line in ``font`` at ``size`` and its (subset, escaped bytes)
+    pieces in this document as reportlab's text object writes them (None for a font that is
+    not TrueType).
+
+    A line of characters the font was given first (``_fixed``) reads the same in every
+    letter given the same characters: it is worked out once.
+    """
+    wide = _WIDTHS.get((font.fontName, size, line))
+    if wide is None:
+        if len(_WIDTHS) > 50_000:  # a long-lived process: keep it small
+            _WIDTHS.clear()
+        wide = _WIDTHS[(font.fontName, size, line)] = font.stringWidth(line, size)
+    if not getattr(font, "_dynamicFont", False) or getattr(font, "shapable", False):
+        return wide, None
+    seed = getattr(doc, "_ringplan_seeds", {}).get(font.fontName)
+    got = _ENCODED.get((font.fontName, seed, line)) if seed is not None else None
+    if got is None:
+        from reportlab.lib.rl_accel import escapePDF
+
+        got = [(subset, escapePDF(t)) for subset, t in font.splitString(line, doc)]
+        if seed is not None and _fixed(doc, font.fontName).issuperset(line):
+            if len(_ENCODED) > 50_000:
+                _ENCODED.clear()
+            _ENCODED[(font.fontName, seed, line)] = got
+    return wide, got
+
+
+def _fixed(doc: Any, name: str) -> frozenset[str]:
+    """Return the characters a document's font ``name`` was given first (``_Seed``), in an
+    order that depends on nothing else: they have the same codes in every letter given the
+    same characters. Empty for a font given none."""
+    seed = getattr(doc, "_ringplan_seeds", {}).get(name)
+    return _characters(seed) if seed is not None else frozenset()
+
+
+@cache
+def _characters(text: str) -> frozenset[str]:
+    return frozenset(text)
+
+
+def _runs(places: Sequence[int]) -> list[tuple[int, int]]:
+    """Return the runs of consecutive numbers in ``places`` as (first, last)."""
+    out: list[tuple[int, int]] = []
+    for p in places:
+        if out and out[-1][1] == p - 1:
+            out[-1] = (out[-1][0], p)
+        else:
+            out.append((p, p))
+    return out
+
+
+# --- the same font programs in every letter ------------------------------------
+#
+# A PDF embeds only the glyphs it uses of each font (a subset), and reportlab numbers
+# them in the order the text first uses them. Letters differ in their numbers, codes
+# and addresses, so each would embed its own subset, made and compressed anew (some
+# 0.9 ms per font, a fifth of a letter's time). A letter therefore first gives its
+# fonts every character that its kind of text may use, in a fixed order (``_Seed``):
+# the letters of one batch and language then embed the same subsets, and
+# ``_shared_font_files`` makes each one's font program once per process. A letter that
+# uses a character no seed has (say, in its own address) embeds it as well, after the
+# others; it is drawn all the same.
+
+_CODE_CHARACTERS = "0123456789ABCDEFGHJKMNPQRSTVWXYZ abcdef-"
+"""What the monospaced face sets in a letter: unit codes and the key's fingerprint."""
+
+
+def _seeds(statistics: Mapping[str, Any], addressees: Sequence[Addressee], code: str
+           ) -> tuple[tuple[str, str], ...]:
+    """Return (font name, characters) to give a letter's fonts first, in a fixed order.
+
+    The text face gets the characters of the language's texts, of the words and numbers of
+    the round's statistics and of the addressees; the bold face, which sets headings the
+    same in every letter, only what differs between letters (numbers, the addressee's id
+    and name); the monospaced face the characters of codes.
+    """
+    found = set("".join(v for k, v in language.texts(code).entries.items()
+                        if k.startswith(("letter.", "common."))))
+    found.update(_NUMBERS)
+    found.update(*_words(statistics))
+    bold = set(_NUMBERS)
+    for to in addressees:
+        found.update(to.name + to.contact + "".join(to.address) + to.lab)
+        bold.update(to.name + to.lab)
+    return ((_layout.FONT, "".join(sorted(c for c in found if c.isprintable()))),
+            (_layout.BOLD, "".join(sorted(c for c in bold if c.isprintable()))),
+            (_layout.MONO_REGULAR, _CODE_CHARACTERS))
+
+
+_NUMBERS = "0123456789.,+-e±='% ()[]/:;"
+"""What numbers, scores and table cells add to the words: digits, signs, marks."""
+
+
+def _words(value: Any) -> set[str]:
+    """Return every text in the statistics (values, not keys: keys are never printed, and a
+    material's id, say, is a value in its list as well)."""
+    found: set[str] = set()
+    stack = [value]
+    while stack:  # a round of hundreds of laboratories holds some 10^5 values
+        item = stack.pop()
+        if isinstance(item, str):
+            found.add(item)
+        elif isinstance(item, Mapping):
+            stack.extend(item.values())
+        elif isinstance(item, (list, tuple)):
+            stack.extend(item)
+    return found
+
+
+def _Seed(seeds: tuple[tuple[str, str], ...]) -> Any:  # noqa: N802 - a flowable's name
+    return _kinds().Seed(seeds)
+
+
+_FONT_FILES: dict[tuple[str, tuple[int, ...]], tuple[bytes, bytes]] = {}
+
+
+def _shared_font_files(names: Sequence[str]) -> Any:
+    """Make each embedded font program of the faces of ``names`` once per subset: the subset
+    (reportlab's ``makeSubset``) and its Flate stream are kept and given to every letter
+    that embeds the same subset. The PDF bytes are those reportlab writes. Returns a
+    function that takes the sharing back."""
+    import zlib
+
+    from reportlab.pdfbase import pdfdoc, pdfmetrics
+
+    faces = []
+    for name in dict.fromkeys(names):
+        face = getattr(pdfmetrics.getFont(name), "face", None)
+        if face is None or not hasattr(face, "makeSubset") or "makeSubset" in vars(face):
+            continue
+        make, add = face.makeSubset, face.addSubsetObjects
+        key_of = str(getattr(face, "filename", name))
+
+        def made(subset: Sequence[int], make: Any = make, key_of: str = key_of) -> bytes:
+            key = (key_of, tuple(subset))
+            if key not in _FONT_FILES:
+                if len(_FONT_FILES) > 64:  # a long-lived process: keep it small
+                    _FONT_FILES.clear()
+                raw = make(subset)
+                _FONT_FILES[key] = (raw, zlib.compress(raw))  # reportlab's own Flate
+            return _FONT_FILES[key][0]
+
+        def added(doc: Any, fontname: str, subset: Sequence[int], add: Any = add,
+                  key_of: str = key_of, face: Any = face) -> Any:
+            ref = add(doc, fontname, subset)
+            stream = doc.idToObject.get(f"fontFile:{face.filename}({fontname})")
+            packed = _FONT_FILES.get((key_of, tuple(subset)))
+            if (doc.compression and packed is not None and isinstance(stream, pdfdoc.PDFStream)
+                    and stream.content is packed[0] and "Filter" not in stream.dictionary.dict):
+                # already compressed: reportlab writes it as it is
+                stream.content = packed[1]
+                stream.dictionary["Filter"] = pdfdoc.PDFArray([pdfdoc.PDFName("FlateDecode")])
+            return ref
+
+        face.makeSubset, face.addSubsetObjects = made, added
+        faces.append(face)
+    fonts = []
+    for name in dict.fromkeys(names):
+        font = pdfmetrics.getFont(name)
+        if not hasattr(font, "state") or "addObjects" in vars(font):
+            continue
+        font.addObjects = _font_objects(font, font.addObjects)
+        fonts.append(font)
+
+    def restore() -> None:
+        for face in faces:
+            del face.makeSubset, face.addSubsetObjects
+        for font in fonts:
+            del font.addObjects
+
+    return restore
+
+
+_FONT_OBJECTS: dict[tuple[str, int, tuple[int, ...]], tuple[bytes, bytes]] = {}
+
+
+def _font_objects(font: Any, add: Any) -> Any:
+    """Return ``font.addObjects`` that gives each subset's widths and ToUnicode map, the same
+    in every letter that embeds the subset, as made once (reportlab's own bytes)."""
+    import zlib
+
+    from reportlab.pdfbase import pdfdoc
+
+    def objects(doc: Any) -> None:
+        state = font.state.get(doc)
+        subsets = [list(x) for x in state.subsets] if state is not None else []
+        names = [font.getSubsetInternalName(n, doc)[1:] for n in range(len(subsets))]
+        add(doc)
+        made = getattr(doc.idToObject.get("BasicFonts"), "dict", {})
+        for n, (subset, name) in enumerate(zip(subsets, names, strict=True)):
+            pdf_font = made.get(name)
+            if pdf_font is None:
+                continue
+            widths = getattr(pdf_font, "Widths", None)
+            cmap = getattr(pdf_font, "ToUnicode", None)
+            stream = doc.idToObject.get(getattr(cmap, "name", None))
+            if (not isinstance(widths, pdfdoc.PDFArray) or not isinstance(stream, pdfdoc.PDFStream)
+                    or not doc.compression or "Filter" in stream.dictionary.dict
+                    or not isinstance(stream.content, str)):
+                continue
+            key = (str(getattr(font.face, "filename", font.fontName)), n, tuple(subset))
+            if key not in _FONT_OBJECTS:
+                if len(_FONT_OBJECTS) > 256:  # a long-lived process: keep it small
+                    _FONT_OBJECTS.clear()
+                _FONT_OBJECTS[key] = (widths.format(doc),
+                                      zlib.compress(stream.content.encode("utf8")))
+            pdf_font.Widths, stream.content = _FONT_OBJECTS[key]
+            stream.dictionary["Filter"] = pdfdoc.PDFArray([pdfdoc.PDFName("FlateDecode")])
+
+    return objects
+
+
 # --- many letters in parallel --------------------------------------------------
 
 _SHARED: dict[str, Any] = {}
 
 
 def _init(statistics: Mapping[str, Any], rows_by_lab: Mapping[str, Sequence[Unblinded]],
-          paper: str, worker: bool = False) -> None:
+          paper: str, addressees: Sequence[Addressee], worker: bool = False) -> None:
     if worker:
         from reportlab import rl_config
 
@@ -711,13 +1322,27 @@ def _init(statistics: Mapping[str, Any], rows_by_lab: Mapping[str, Sequence[Unbl
         # it, and copy its pages from the parent, again and again.
         gc.freeze()
     _SHARED.update(statistics=statistics, rows=rows_by_lab, paper=paper,
-                   views=anonymous_views(statistics), widths={})
+                   views=anonymous_views(statistics), widths={},
+                   seeds={code: _seeds(statistics, [a for a in addressees if a.language == code],
+                                       code)
+                          for code in {a.language for a in addressees}},
+                   restore=_shared_font_files(_faces()))
+
+
+def _faces() -> list[str]:
+    """Return the names of the fonts letters are set in, the italic of <i> included."""
+    from reportlab.lib.fonts import tt2ps
+
+    _layout.fonts_ready()
+    return [_layout.FONT, _layout.BOLD, _layout.MONO_REGULAR, _layout.MONO,
+            tt2ps(_layout.FONT, 0, 1), tt2ps(_layout.FONT, 1, 1)]
 
 
 def _one(job: tuple[Path, Addressee]) -> Path:
     path, to = job
-    return render(path, _SHARED["statistics"], _SHARED["rows"].get(to.lab, ()), to,
-                  paper=_SHARED["paper"], views=_SHARED["views"])
+    return _render(path, _SHARED["statistics"], _SHARED["rows"].get(to.lab, ()), to,
+                   paper=_SHARED["paper"], views=_SHARED["views"],
+                   seeds=_SHARED["seeds"][to.language])
 
 
 def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
@@ -732,15 +1357,17 @@ def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unbli
         by_lab.setdefault(r.lab, []).append(r)
     jobs = [(Path(folder) / f"letter-{to.lab}.pdf", to) for to in addressees]
     if workers <= 1 or len(jobs) < 2:
-        _init(statistics, by_lab, paper)
+        _init(statistics, by_lab, paper, addressees)
         try:
             return [_one(job) for job in jobs]
         finally:
+            _SHARED.pop("restore", lambda: None)()
             _SHARED.clear()
     from planner.render import _workers
 
     # fork shares the parent's memory (no pickling of the statistics) where it exists.
     chunk = max(1, len(jobs) // (workers * 4))
-    with _workers.pool(workers, initializer=_init, initargs=(statistics, by_lab, paper, True),
+    with _workers.pool(workers, initializer=_init,
+                       initargs=(statistics, by_lab, paper, addressees, True),
                        fork=True) as pool:
         return list(pool.map(_one, jobs, chunksize=chunk))
