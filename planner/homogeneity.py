@@ -254,7 +254,7 @@ def _number(raw: Any, decimal: str) -> float:
     forms (``planner.intake``: no thousands separators, no limits or markers, finite and
     between 1e-100 and 1e100 in size, so that no square in the statistics overflows); raise
     IntakeError without a place."""
-    from planner.intake import _number as read_number
+    from planner.intake import read_number
 
     return read_number(raw, decimal, "value")
 

@@ -62,6 +62,7 @@ __all__ = [
     "describe_slot",
     "expected_codes",
     "inspect_form",
+    "read_number",
     "issued_spares",
     "code_owners",
     "spare_swaps",
@@ -759,13 +760,16 @@ def _quantity(raw: Any, decimal: str, what: str, where: Where,
     if raw is None or (isinstance(raw, str) and not raw.strip()):
         return None
     try:
-        return _number(raw, decimal, what, result=result)
+        return read_number(raw, decimal, what, result=result)
     except IntakeError as exc:
         found.append(IntakeError(exc.message, where))
         return None
 
 
-def _number(raw: Any, decimal: str, what: str, *, result: bool | None = None) -> float:
+def read_number(raw: Any, decimal: str, what: str, *, result: bool | None = None) -> float:
+    """Return the number a form cell holds in the form's decimal convention (``what`` names
+    the column); raise IntakeError saying what is wrong with it. The host's check forms
+    are read with it too."""
     if result is None:
         result = what == "value"
     if isinstance(raw, (bool, date)):   # datetime is a date

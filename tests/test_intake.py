@@ -241,7 +241,7 @@ def test_xlsx_text_value_names_the_row(planned, runner, tmp_path):
     (",5", "comma", 0.5), ("1e-3", "point", 0.001), ("7", "comma", 7.0),
 ], ids=str)
 def test_numbers_in_the_laboratory_convention(text, decimal, expected):
-    assert intake._number(text, decimal, "value") == expected
+    assert intake.read_number(text, decimal, "value") == expected
 
 
 @pytest.mark.parametrize("text, decimal, fragment", [
@@ -255,7 +255,7 @@ def test_numbers_in_the_laboratory_convention(text, decimal, expected):
 ], ids=str)
 def test_numbers_refused(text, decimal, fragment):
     with pytest.raises(IntakeError, match=fragment):
-        intake._number(text, decimal, "value")
+        intake.read_number(text, decimal, "value")
 
 
 def test_check_form_lists_problems_with_places(planned, tmp_path):
