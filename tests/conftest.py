@@ -95,44 +95,56 @@ def plan_example_round(study_dir, round_id=ROUND, host="kal", receive_by=None, *
     return result
 
 
+def fill_check(lines, material_of, value, *, remark=None):
+    """Return the lines of a host's check form with every value cell filled in the form's
+    decimal convention: ``value(code, material, replicate, run)`` -> a number, or None for a
+    blank (with ``remark`` under remarks). ``material_of``: code -> material (the form names
+    none)."""
+    from planner import codes
+
+    comma = "# decimal: comma" in lines
+    sep = ";" if comma else ","
+    header = None
+    out = []
+    for line in lines:
+        if line.startswith("#") or header is None:
+            header = header if line.startswith("#") else line.split(sep)
+            out.append(line)
+            continue
+        cells = line.split(sep)
+        code = codes.compact(cells[1])
+        v = value(code, material_of[code], int(cells[2]), int(cells[0]))
+        for i, name in enumerate(header):
+            if i >= 3 and name != "remarks" and cells[i] != "n/a":
+                text = "" if v is None else f"{v:.4f}"
+                cells[i] = text.replace(".", ",") if comma else text
+            elif name == "remarks" and v is None and remark:
+                cells[i] = remark
+        out.append(sep.join(cells))
+    return out
+
+
 def homogeneity_filled(study_dir, round_id=ROUND, *, spread=0.001, off=None, kind="homogeneity"):
     """Return the host's check form of a planned round filled in: every value 10 plus a small
     deterministic scatter (``spread`` times 0..4), plus ``off[material]`` on every unit of
     that material's first half of units (a between-unit difference), in the form's decimal
     convention."""
-    from planner import codes, homogeneity, plan
+    from planner import homogeneity, plan
     from planner.ledger import Ledger
 
     with Ledger.open(study_dir) as ledger:
         material_of = (homogeneity.checks_of(ledger, round_id) or {}).get(kind, {})
     path = plan.round_dir(study_dir, round_id) / "host" / f"{kind}-form.csv"
-    lines = path.read_text(encoding="utf-8").splitlines()
-    comma = "# decimal: comma" in lines
-    sep = ";" if comma else ","
-    header = None
     seen: dict[str, list[str]] = {}
-    out = []
-    for line in lines:
-        if line.startswith("#"):
-            out.append(line)
-            continue
-        cells = line.split(sep)
-        if header is None:
-            header = cells
-            out.append(line)
-            continue
-        run, code = int(cells[0]), cells[1]
-        material = material_of[codes.compact(code)]
+
+    def value(code, material, replicate, run):
         units = seen.setdefault(material, [])
         if code not in units:
             units.append(code)
         shift = (off or {}).get(material, 0.0) if units.index(code) % 2 == 0 else 0.0
-        for i, name in enumerate(header):
-            if i >= 3 and name != "remarks" and cells[i] != "n/a":
-                text = f"{10 + spread * ((run * 7) % 5) + shift:.4f}"
-                cells[i] = text.replace(".", ",") if comma else text
-        out.append(sep.join(cells))
-    return out
+        return 10 + spread * ((run * 7) % 5) + shift
+
+    return fill_check(path.read_text(encoding="utf-8").splitlines(), material_of, value)
 
 
 def clear_shipping(study_dir, round_id=ROUND):

@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from conftest import SECRET, plan_example_round
+from conftest import SECRET, fill_check, plan_example_round
 from planner import codes, homogeneity, spec
 from planner.errors import IntakeError, PlannerError
 from planner.ledger import Ledger
@@ -24,27 +24,9 @@ def round_(example_dir, clock):
 def _fill(text: str, values, checks, *, remark_for=None) -> str:
     """Fill the CSV check form: values(code, material, replicate) -> number or None; the
     form names no material, ``checks`` (code -> material) does."""
-    lines = text.splitlines()
-    sep = ";" if "# decimal: comma" in text else ","
-    out = []
-    header = None
-    for line in lines:
-        if line.startswith("#"):
-            out.append(line)
-            continue
-        cells = line.split(sep)
-        if header is None:
-            header = cells
-            out.append(line)
-            continue
-        row = dict(zip(header, cells))
-        code = codes.compact(row["code"])
-        v = values(code, checks[code], int(row["replicate"]))
-        row["value"] = "" if v is None else f"{v:.4f}".replace(".", "," if sep == ";" else ".")
-        if v is None and remark_for:
-            row["remarks"] = remark_for
-        out.append(sep.join(row[h] for h in header))
-    return "\n".join(out) + "\n"
+    return "\n".join(fill_check(text.splitlines(), checks,
+                                lambda code, material, rep, run: values(code, material, rep),
+                                remark=remark_for)) + "\n"
 
 
 def _simulated(spread_of):
