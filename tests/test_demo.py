@@ -106,3 +106,18 @@ def test_the_inhomogeneous_grade_holds_the_parcels_until_the_waiver(built):
     assert kinds == ["printed", "homogeneity-form", "homogeneity-waived", "printed"]
     assert all(m["stability"]["verdict"].startswith("stable")
                for per in checked["measurands"].values() for m in per.values())
+
+
+def test_the_letters_say_which_scores_allow_for_the_items(built):
+    # every laboratory's letter names the widened material and the SD, in its language
+    import pdfplumber
+
+    material, measurand, _ = demo.INHOMOGENEOUS
+    raw = json.loads(built["statistics"].read_text(encoding="utf-8"))
+    sd = raw["homogeneity"]["widened"][measurand][material]["sd"]
+    for path in built["letters"]:
+        with pdfplumber.open(path) as pdf:
+            text = " ".join(" ".join((p.extract_text() or "") for p in pdf.pages).split())
+        said = [f"{material} ({sd:.3g})", f"{material} ({sd:.3g})".replace(".", ",")]
+        assert any(s in text for s in said), path.name
+        assert "u(x_pt) " in text

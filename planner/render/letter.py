@@ -605,6 +605,17 @@ def _method_note(s: Mapping[str, Any], in_house: bool, n: Any, t: Texts, comma: 
     elif kinds:
         parts.append(t("letter.sigma_pt", policy=t("common.semicolon").join(
             f"{m}: {v}" for m, v in policies.items())))
+    # The host's checks of the items found differences between units or a drift: the
+    # score of those materials allows for it (evaluate.widen_of), and the letter says so.
+    widened = ((s.get("homogeneity") or {}).get("widened") or {}).get(
+        s.get("measurand_id", ""), {})
+    for into in ("uncertainty", "sigma_pt"):
+        items = [f"{m} ({n(w['sd'], 3)})" for m, w in widened.items()
+                 if w["into"] == into and m in s["materials"]]
+        if items:
+            parts.append(t("letter.items_widened",
+                           quantity="u(x_pt)" if into == "uncertainty" else "sigma_pt",
+                           values=t("common.semicolon").join(items)))
     if rules:
         parts.append(t("letter.rules", ratio=n(0.3)))
     # Only the host's own letter gives the consensus without the host: in anyone else's,
