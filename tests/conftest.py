@@ -147,6 +147,25 @@ def homogeneity_filled(study_dir, round_id=ROUND, *, spread=0.001, off=None, kin
     return fill_check(path.read_text(encoding="utf-8").splitlines(), material_of, value)
 
 
+def ledger_snapshot(study_dir, round_id=ROUND):
+    """Return the ledger's SQL dump and the round's results folder's names and hashes, to
+    show that a refused or killed command changed nothing."""
+    import hashlib
+    import sqlite3
+
+    from planner import plan
+
+    db = sqlite3.connect(Path(study_dir) / "ledger.sqlite")
+    try:
+        dump = list(db.iterdump())  # rolls back a hot journal left by a killed writer
+    finally:
+        db.close()
+    folder = plan.round_dir(study_dir, round_id) / "results"
+    found = (sorted((p.name, hashlib.sha256(p.read_bytes()).hexdigest())
+                    for p in folder.iterdir()) if folder.exists() else None)
+    return dump, found
+
+
 def clear_shipping(study_dir, round_id=ROUND):
     """Record a passing homogeneity check for a planned round (when it has homogeneity units),
     so that its packing lists may be printed; tests of the shipping gate itself do not call it."""

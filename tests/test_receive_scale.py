@@ -17,13 +17,13 @@ import errno
 import hashlib
 import os
 import signal
-import sqlite3
 import subprocess
 import sys
 import threading
 
 import pytest
 from conftest import (
+    ledger_snapshot,
     FIRST_ROW,
     LABS,
     ROOT,
@@ -187,19 +187,6 @@ def test_a_disk_that_fails_while_the_copies_are_flushed_records_nothing(planned,
     assert result.stdout.count("recorded version 1") == len(LABS)
 
 
-def _snapshot(study_dir):
-    """Return the ledger's SQL dump and the results folder's names and hashes."""
-    db = sqlite3.connect(study_dir / "ledger.sqlite")
-    try:
-        dump = list(db.iterdump())  # rolls back a hot journal left by a killed writer
-    finally:
-        db.close()
-    folder = plan.round_dir(study_dir, ROUND) / "results"
-    found = (sorted((p.name, hashlib.sha256(p.read_bytes()).hexdigest())
-                    for p in folder.iterdir()) if folder.exists() else None)
-    return dump, found
-
-
 def _kill_while_paused(study_dir, forms, stage):
     env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
     proc = subprocess.Popen(
@@ -221,9 +208,9 @@ def test_many_forms_killed_before_the_commit_leave_the_ledger_as_it_was(planned,
                                                                          tmp_path):
     # The subprocess runs on the real clock: the test dates stay empty.
     forms = _all_forms(planned, tmp_path, day="")
-    before, _ = _snapshot(planned)
+    before, _ = ledger_snapshot(planned)
     _kill_while_paused(planned, forms, "before-commit")
-    after, stored = _snapshot(planned)
+    after, stored = ledger_snapshot(planned)
     assert after == before and not stored  # (receive makes results/ before it records)
     staging = plan.round_dir(planned, ROUND) / returns.STAGING_DIR
     # the copies were whole on disk before the commit would have come

@@ -17,6 +17,7 @@ from datetime import date
 
 import pytest
 from conftest import (
+    ledger_snapshot,
     FIRST_ROW,
     LABS,
     NOW,
@@ -230,19 +231,6 @@ def test_after_unseal_flag_is_refused_while_sealed(planned, runner, tmp_path):
 
 # --- killed in the middle of receive -----------------------------------------------------
 
-def _snapshot(study_dir):
-    """Return the ledger's full SQL dump and the results folder's names and hashes."""
-    db = sqlite3.connect(study_dir / "ledger.sqlite")
-    try:
-        dump = list(db.iterdump())      # rolls back a hot journal left by a killed writer
-    finally:
-        db.close()
-    folder = plan.round_dir(study_dir, ROUND) / "results"
-    files = (sorted((p.name, hashlib.sha256(p.read_bytes()).hexdigest())
-                    for p in folder.iterdir()) if folder.exists() else None)
-    return dump, files
-
-
 def _kill_while_paused(study_dir, form, stage):
     env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
     proc = subprocess.Popen(
@@ -267,10 +255,10 @@ def _undated(study_dir, lab):
 def test_kill_before_commit_leaves_ledger_and_results_as_before(planned, runner, tmp_path):
     assert receive(runner, planned, write(tmp_path, "crx.csv",
                                           _undated(planned, "crx"))).exit_code == 0
-    before = _snapshot(planned)
+    before = ledger_snapshot(planned)
     form = write(tmp_path, "kal.csv", _undated(planned, "kal"))
     _kill_while_paused(planned, form, "before-commit")
-    assert _snapshot(planned) == before
+    assert ledger_snapshot(planned) == before
     # the next receive clears the stale staged copy and records the form as version 1
     result = receive(runner, planned, form)
     assert result.exit_code == 0, result.stderr
