@@ -166,6 +166,45 @@ def ledger_snapshot(study_dir, round_id=ROUND):
     return dump, found
 
 
+def ledger_shell(study_dir, *statements):
+    """Run SQL on the ledger file directly, as someone with the file would: the guards
+    (triggers) dropped first and put back after."""
+    import sqlite3
+
+    db = sqlite3.connect(Path(study_dir) / "ledger.sqlite", isolation_level=None)
+    guards = db.execute("SELECT name, sql FROM sqlite_master WHERE type = 'trigger'").fetchall()
+    for name, _ in guards:
+        db.execute(f"DROP TRIGGER {name}")
+    for sql in statements:
+        db.execute(sql)
+    for _, sql in guards:
+        db.execute(sql)
+    db.close()
+
+
+def kill_receive_while_paused(study_dir, forms, stage, round_id=ROUND):
+    """Run ``ringplan receive`` on ``forms`` in a process, let it pause at ``stage`` (the
+    RINGPLAN_TEST_PAUSE_RECEIVE hook) and kill it there with SIGKILL."""
+    import signal
+    import subprocess
+    import sys
+
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "planner", "receive", str(study_dir), "--round", round_id,
+         *map(str, forms)],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        line = proc.stderr.readline()
+        assert line.strip() == f"paused {stage}", line + proc.stderr.read()
+    finally:
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+        proc.stdout.close()
+        proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL
+
+
 def clear_shipping(study_dir, round_id=ROUND):
     """Record a passing homogeneity check for a planned round (when it has homogeneity units),
     so that its packing lists may be printed; tests of the shipping gate itself do not call it."""

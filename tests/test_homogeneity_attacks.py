@@ -17,14 +17,13 @@ from __future__ import annotations
 
 import json
 import math
-import sqlite3
 import time
 import zipfile
 
 import numpy as np
 import pytest
-from conftest import LABS, ROUND, filled, homogeneity_filled, plan_example_round, receive, \
-    run_cli, write
+from conftest import (LABS, ROUND, filled, homogeneity_filled, ledger_shell, plan_example_round,
+                      receive, run_cli, write)
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -538,20 +537,6 @@ def test_verify_says_when_the_host_form_is_gone_or_the_recorded_form_changed(
             in result.stderr)
 
 
-def _shell(study_dir, *statements):
-    """Run SQL on the ledger file directly, the guards dropped first and put back after (as
-    tests/test_ledger_chain.py does)."""
-    db = sqlite3.connect(study_dir / "ledger.sqlite", isolation_level=None)
-    guards = db.execute("SELECT name, sql FROM sqlite_master WHERE type = 'trigger'").fetchall()
-    for name, _ in guards:
-        db.execute(f"DROP TRIGGER {name}")
-    for sql in statements:
-        db.execute(sql)
-    for _, sql in guards:
-        db.execute(sql)
-    db.close()
-
-
 @pytest.mark.parametrize("statement", [
     # the failing form made to pass: RE-MIX's values set to one number
     "UPDATE events SET detail = json_set(detail, '$.values.value', json('{}')) "
@@ -566,7 +551,7 @@ def test_the_check_changed_in_the_ledger_behind_its_guards_is_refused(host_round
                                                                       tmp_path, statement):
     _ok(runner, "homogeneity", host_round, "--round", ROUND,
         write(tmp_path, "h.csv", homogeneity_filled(host_round, off={INHOMOGENEOUS: 1.0})))
-    _shell(host_round, statement)
+    ledger_shell(host_round, statement)
     for args in (("status",), ("print", "--only", "packing"), ("homogeneity",)):
         line = _one_line(run_cli(runner, *args, host_round, "--round", ROUND))
         assert "ledger" in line, line

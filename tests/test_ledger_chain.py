@@ -11,22 +11,9 @@ import sqlite3
 
 import pytest
 
-from conftest import ROUND, filled, receive, run_cli, write
+from conftest import ROUND, filled, ledger_shell, receive, run_cli, write
 from planner.errors import LedgerError
 from planner.ledger import Ledger
-
-
-def _shell(study_dir, *statements):
-    """Run SQL on the ledger file directly, the guards dropped first and put back after."""
-    db = sqlite3.connect(study_dir / "ledger.sqlite", isolation_level=None)
-    guards = db.execute("SELECT name, sql FROM sqlite_master WHERE type = 'trigger'").fetchall()
-    for name, _ in guards:
-        db.execute(f"DROP TRIGGER {name}")
-    for sql in statements:
-        db.execute(sql)
-    for _, sql in guards:
-        db.execute(sql)
-    db.close()
 
 
 def _received(planned, runner, tmp_path, lab="kal"):
@@ -56,7 +43,7 @@ def test_an_untouched_ledger_opens_and_its_chain_checks(planned, runner, tmp_pat
 
 def test_a_value_changed_behind_dropped_guards_is_detected(planned, runner, tmp_path):
     _received(planned, runner, tmp_path)
-    _shell(planned, "UPDATE result_rows SET value = value + 1 WHERE rowid = 3")
+    ledger_shell(planned, "UPDATE result_rows SET value = value + 1 WHERE rowid = 3")
     _refused(planned, runner, "result_rows rows 1-")
 
 
@@ -64,20 +51,20 @@ def test_a_deleted_unsealed_event_is_detected(planned, runner, tmp_path):
     _received(planned, runner, tmp_path)
     with Ledger.open(planned) as ledger, ledger.transaction():
         ledger.record_event(ROUND, "unsealed", {"forced": True, "reason": "x", "missing": []})
-    _shell(planned, "DELETE FROM events WHERE kind = 'unsealed'")
+    ledger_shell(planned, "DELETE FROM events WHERE kind = 'unsealed'")
     _refused(planned, runner, "were changed or deleted")
 
 
 def test_an_inserted_event_is_detected(planned, runner):
     # The forged 'received' event that would let the key open with forced: false.
-    _shell(planned, "INSERT INTO events (round, kind, at, detail) VALUES "
-                    "('2027-1', 'received', '2027-01-29T10:00:00+00:00', '{\"lab\": \"crx\"}')")
+    ledger_shell(planned, "INSERT INTO events (round, kind, at, detail) VALUES ('2027-1', "
+                          "'received', '2027-01-29T10:00:00+00:00', '{\"lab\": \"crx\"}')")
     _refused(planned, runner, "table events has rows that no ringplan command recorded")
 
 
 def test_an_inserted_planned_event_cannot_clear_the_way_for_replanning(planned, runner):
-    _shell(planned, "INSERT INTO events (round, kind, at, detail) VALUES "
-                    "('2027-1', 'planned', '2027-01-29T10:00:00+00:00', '{}')")
+    ledger_shell(planned, "INSERT INTO events (round, kind, at, detail) VALUES "
+                          "('2027-1', 'planned', '2027-01-29T10:00:00+00:00', '{}')")
     result = run_cli(runner, "plan", planned, "--round", ROUND, "--replace",
                      "--passphrase-file", planned / "nope.txt")
     assert result.exit_code == 2 and "altered outside ringplan" in result.stderr
@@ -98,14 +85,14 @@ def test_a_guard_left_dropped_is_named(planned, runner):
 
 def test_a_removed_last_link_leaves_rows_outside_the_chain(planned, runner, tmp_path):
     _received(planned, runner, tmp_path)
-    _shell(planned, "DELETE FROM chain WHERE seq = (SELECT MAX(seq) FROM chain)")
+    ledger_shell(planned, "DELETE FROM chain WHERE seq = (SELECT MAX(seq) FROM chain)")
     _refused(planned, runner, "rows that no ringplan command recorded")
 
 
 def test_a_removed_middle_link_breaks_the_chain(planned, runner, tmp_path):
     _received(planned, runner, tmp_path, "kal")
     _received(planned, runner, tmp_path, "tor")
-    _shell(planned, "DELETE FROM chain WHERE seq = 2")
+    ledger_shell(planned, "DELETE FROM chain WHERE seq = 2")
     _refused(planned, runner, "chain breaks before link 3")
 
 
@@ -153,7 +140,7 @@ def test_a_rewritten_chain_no_longer_matches_the_receipt(planned, runner, tmp_pa
     link, head = int(line.split("link ")[1].split(",")[0]), line.rsplit(" ", 1)[1]
     assert f"{link}:{head}" in result.stdout
     assert run_cli(runner, "chain", planned, "--link", link).stdout.strip().endswith(head)
-    _shell(planned, "UPDATE result_rows SET value = value + 1 WHERE rowid = 3")
+    ledger_shell(planned, "UPDATE result_rows SET value = value + 1 WHERE rowid = 3")
     _rechain(planned)
     # The rewritten ledger checks again, but its chain no longer passes through the head
     # the laboratory holds: the rewrite shows against the receipt.
@@ -190,8 +177,8 @@ def test_an_added_trigger_with_a_name_like_sqlites_own_is_found(planned, runner)
 
 def test_rows_with_rowids_below_one_are_outside_the_chain_and_found(planned, runner, tmp_path):
     _received(planned, runner, tmp_path)
-    _shell(planned, "INSERT INTO events (id, round, kind, at, detail) VALUES "
-                    "(-1, '2027-1', 'received', 't', '{\"lab\": \"crx\"}')")
+    ledger_shell(planned, "INSERT INTO events (id, round, kind, at, detail) VALUES "
+                          "(-1, '2027-1', 'received', 't', '{\"lab\": \"crx\"}')")
     _refused(planned, runner, "table events has rows that no ringplan command recorded")
 
 

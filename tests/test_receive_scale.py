@@ -16,17 +16,14 @@ from __future__ import annotations
 import errno
 import hashlib
 import os
-import signal
-import subprocess
-import sys
 import threading
 
 import pytest
 from conftest import (
+    kill_receive_while_paused,
     ledger_snapshot,
     FIRST_ROW,
     LABS,
-    ROOT,
     ROUND,
     filled,
     get_cell,
@@ -187,29 +184,12 @@ def test_a_disk_that_fails_while_the_copies_are_flushed_records_nothing(planned,
     assert result.stdout.count("recorded version 1") == len(LABS)
 
 
-def _kill_while_paused(study_dir, forms, stage):
-    env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "planner", "receive", str(study_dir), "--round", ROUND,
-         *map(str, forms)],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    try:
-        line = proc.stderr.readline()
-        assert line.strip() == f"paused {stage}", line + proc.stderr.read()
-    finally:
-        os.kill(proc.pid, signal.SIGKILL)
-        proc.wait(timeout=10)
-        proc.stdout.close()
-        proc.stderr.close()
-    assert proc.returncode == -signal.SIGKILL
-
-
 def test_many_forms_killed_before_the_commit_leave_the_ledger_as_it_was(planned, runner,
                                                                          tmp_path):
     # The subprocess runs on the real clock: the test dates stay empty.
     forms = _all_forms(planned, tmp_path, day="")
     before, _ = ledger_snapshot(planned)
-    _kill_while_paused(planned, forms, "before-commit")
+    kill_receive_while_paused(planned, forms, "before-commit")
     after, stored = ledger_snapshot(planned)
     assert after == before and not stored  # (receive makes results/ before it records)
     staging = plan.round_dir(planned, ROUND) / returns.STAGING_DIR
@@ -225,7 +205,7 @@ def test_many_forms_killed_before_the_commit_leave_the_ledger_as_it_was(planned,
 def test_many_forms_killed_after_the_commit_are_completed_by_the_next_receive(
         planned, runner, tmp_path):
     forms = _all_forms(planned, tmp_path, day="")
-    _kill_while_paused(planned, forms[:-1], "after-commit")
+    kill_receive_while_paused(planned, forms[:-1], "after-commit")
     results = plan.round_dir(planned, ROUND) / "results"
     assert not results.exists() or not any(results.glob("receipt-*"))
     assert receive(runner, planned, forms[-1]).exit_code == 0

@@ -9,19 +9,16 @@ from __future__ import annotations
 
 import hashlib
 import os
-import signal
 import sqlite3
-import subprocess
-import sys
 from datetime import date
 
 import pytest
 from conftest import (
+    kill_receive_while_paused,
     ledger_snapshot,
     FIRST_ROW,
     LABS,
     NOW,
-    ROOT,
     ROUND,
     filled,
     get_cell,
@@ -231,22 +228,6 @@ def test_after_unseal_flag_is_refused_while_sealed(planned, runner, tmp_path):
 
 # --- killed in the middle of receive -----------------------------------------------------
 
-def _kill_while_paused(study_dir, form, stage):
-    env = {**os.environ, "PYTHONPATH": str(ROOT), "RINGPLAN_TEST_PAUSE_RECEIVE": stage}
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "planner", "receive", str(study_dir), "--round", ROUND, str(form)],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    try:
-        line = proc.stderr.readline()
-        assert line.strip() == f"paused {stage}", line + proc.stderr.read()
-    finally:
-        os.kill(proc.pid, signal.SIGKILL)
-        proc.wait(timeout=10)
-        proc.stdout.close()
-        proc.stderr.close()
-    assert proc.returncode == -signal.SIGKILL
-
-
 def _undated(study_dir, lab):
     # The subprocess uses the real clock, so leave the test dates empty.
     return filled(study_dir, lab, day="")
@@ -257,7 +238,7 @@ def test_kill_before_commit_leaves_ledger_and_results_as_before(planned, runner,
                                           _undated(planned, "crx"))).exit_code == 0
     before = ledger_snapshot(planned)
     form = write(tmp_path, "kal.csv", _undated(planned, "kal"))
-    _kill_while_paused(planned, form, "before-commit")
+    kill_receive_while_paused(planned, [form], "before-commit")
     assert ledger_snapshot(planned) == before
     # the next receive clears the stale staged copy and records the form as version 1
     result = receive(runner, planned, form)
@@ -268,7 +249,7 @@ def test_kill_before_commit_leaves_ledger_and_results_as_before(planned, runner,
 
 def test_kill_after_commit_is_completed_by_the_next_receive(planned, runner, tmp_path):
     form = write(tmp_path, "kal.csv", _undated(planned, "kal"))
-    _kill_while_paused(planned, form, "after-commit")
+    kill_receive_while_paused(planned, [form], "after-commit")
     name = f"{hashlib.sha256(form.read_bytes()).hexdigest()}.csv"
     results = plan.round_dir(planned, ROUND) / "results"
     with Ledger.open(planned) as ledger:
