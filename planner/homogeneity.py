@@ -333,9 +333,10 @@ def read_values(study: Any, round_id: str, kind: str, checks: Mapping[str, str],
                 continue
             if text in ("", "n/a"):
                 if not remark:
-                    problems.append(IntakeError(f"column {name!r} of {raw} replicate {rep} is "
-                                                "empty; give the value, or say why under "
-                                                "remarks", where))
+                    # The line names the row: the same words on every row let
+                    # intake.condense fold an unfilled form into one line.
+                    problems.append(IntakeError(f"column {name!r} is empty; give the value, "
+                                                "or say why under remarks", where))
                 continue
             try:
                 values[mid][code][rep - 1] = _number(cell, decimal)

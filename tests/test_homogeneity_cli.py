@@ -346,3 +346,13 @@ def test_the_previous_rounds_sigma_pt_judges_a_check_before_any_result(example_d
     assert entry["sigma_pt"] == 0.42
     assert entry["sigma_pt_source"] == "the previous round's sigma_pt for this material"
     assert later["measurands"]["value"]["RE-MIX"]["verdict"] == "waits"
+
+
+def test_the_blank_form_sent_back_unfilled_is_one_line(example_dir, runner, passphrase, clock):
+    folder = _planned(runner, example_dir)
+    blank = folder / "host" / "homogeneity-form.csv"
+    result = run_cli(runner, "homogeneity", example_dir, "--round", ROUND, blank)
+    assert result.exit_code == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "is empty" in lines[0] and "119 more rows" in lines[0], lines
+    assert _events(example_dir, "homogeneity-form") == []
