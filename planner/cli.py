@@ -1024,7 +1024,8 @@ def homogeneity_command(
                 stored.relative_to(folder))})
         previous = homogeneity.previous_sigma(study_dir, ledger, round_id)
         found = homogeneity.assess(study, checks, ledger, round_id, previous=previous)
-        gate = homogeneity.shipping_gate(study, ledger, round_id, checks, previous=previous)
+        gate = homogeneity.shipping_gate(study, ledger, round_id, checks, previous=previous,
+                                         found=found)
     found["packing_lists"] = "held: " + gate if gate else "may be printed"
     if as_json:
         typer.echo(homogeneity.to_json(found), nl=False)

@@ -540,18 +540,21 @@ def _holding(measurands: Mapping[str, Mapping[str, Any]]) -> tuple[list[str], li
 
 def shipping_gate(study: Any, ledger: Any, round_id: str,
                   checks: Mapping[str, Mapping[str, str]], *,
-                  previous: Mapping[str, Mapping[str, float]] | None = None) -> str | None:
+                  previous: Mapping[str, Mapping[str, float]] | None = None,
+                  found: Mapping[str, Any] | None = None) -> str | None:
     """Return None when the participants' parcels may be printed, else why not.
 
     ``previous`` is the previous round's sigma_pt (``previous_sigma``), which judges the
     check before any result of this round, as ``ringplan homogeneity`` shows it. A pass
     whose s_w is not below 0.5 sigma_pt holds the parcels too: the method's scatter (often
-    a single mistyped value) is then what the check measured."""
+    a single mistyped value) is then what the check measured. ``found``: the caller's
+    ``assess`` of the same round and ``previous``, not computed again."""
     if study.design.homogeneity_units == 0 or not checks.get("homogeneity"):
         return None
     if waiver(ledger, round_id) is not None:
         return None
-    found = assess(study, checks, ledger, round_id, previous=previous)
+    if found is None:
+        found = assess(study, checks, ledger, round_id, previous=previous)
     if not found["recorded"]:
         return (f"the host's homogeneity check is not recorded yet: record the filled "
                 f"host/{FORM_CSV} with 'ringplan homogeneity STUDY_DIR --round {round_id} FILE', "
@@ -597,7 +600,7 @@ def state_lines(study: Any, ledger: Any, round_id: str,
         out.append(f"stability check: {late.get('file')} recorded" if late else
                    "stability check: not recorded yet (the host measures its retained units "
                    "after the round)")
-    gate = shipping_gate(study, ledger, round_id, checks, previous=previous)
+    gate = shipping_gate(study, ledger, round_id, checks, previous=previous, found=found)
     out.append(f"packing lists: held: {gate}" if gate else "packing lists: may be printed")
     return out
 
