@@ -12,14 +12,18 @@ Every step is printed with its ratio to that floor; min and median over the runs
 Targets (issue 17), on a 2-core machine:
 - print of all documents at 30,000 units at most 10 x the floor and under 60 s;
 - receive at 500 laboratories x 2 materials at most 1.3 x receive at 50 x 20 (3,000 units
-  each; ``--receive-compare``);
+  each; ``--receive-compare``, which also prints the file floor: reading each form and
+  making its copy and its receipt with bare calls, the part no receive can skip);
+- receive without a quadratic step: the cost per form flat from 125 to 1,000 forms
+  (``--receive-scaling``);
 - preparation sheet time per unit flat from 150 to 6,000 rows per material
   (``--prep-scaling``);
 - evaluate at 500 laboratories at most 7 s, and dominated by the statistics and the report
   rather than the letters (the letters' and the report's times within it are printed).
 
 Run: python tests/benchmarks/bench_round.py [--sizes 500x20x3,20x8x3] [--runs 3]
-     [--workers 2] [--no-accel] [--kinds] [--receive-compare] [--prep-scaling] [--only print,receive]
+     [--workers 2] [--no-accel] [--kinds] [--receive-compare] [--receive-scaling]
+     [--prep-scaling] [--only print,receive]
 (``--kinds`` adds each kind of document printed on its own; the 500-laboratory size takes
 some 2 minutes a run.)
 """
@@ -207,18 +211,48 @@ def _timing(times: dict[str, float], letters: str, report: str) -> Iterator[None
         letter_module.render_all, report_module.render = saved
 
 
-def receive_only(tmp: Path, labs: int, materials: int) -> float:
-    """Return the seconds to receive every form of a round of 3 trials (no spares)."""
+def receive_only(tmp: Path, labs: int, materials: int) -> tuple[float, float]:
+    """Return the seconds to receive every form of a round of 3 trials (no spares), and the
+    seconds of the per-form floor on the same forms (``file_floor``).
+
+    The disk is flushed (``os.sync``) after the forms are filled in and before the clock
+    starts, so that neither time includes writing back the setup's own files: a real round's
+    forms arrive over days."""
     from planner import returns
     from planner.ledger import Ledger
 
     folder = tmp / f"recv{labs}x{materials}"
     study, key = plan_round(folder, labs, materials, 3, spares=0, retained=0, homogeneity=0)
     forms = fill_forms(folder, key)
+    floor = file_floor(forms, folder / "floor")
+    os.sync()
     with Ledger.open(folder, create=False) as ledger:
         start = time.perf_counter()
         returns.receive(study, folder, "R1", forms, ledger)
-        return time.perf_counter() - start
+        return time.perf_counter() - start, floor
+
+
+def file_floor(forms: list[Path], out: Path) -> float:
+    """Return the seconds of what no receive can skip for each form, done with bare calls:
+    read the file and hash it, and make the two files each recorded form needs (its stored
+    copy and its receipt, each created new under a temporary name and renamed into place),
+    without any check, ledger or flush to disk."""
+    import hashlib
+
+    out.mkdir(parents=True)
+    receipt = b"r" * 700  # about a receipt's size
+    os.sync()
+    start = time.perf_counter()
+    for i, form in enumerate(forms):
+        data = form.read_bytes()
+        digest = hashlib.sha256(data).hexdigest()
+        for name, body in ((f"{digest}.csv", data), (f"receipt-{i}.txt", receipt)):
+            temp = out / f".{name}.tmp"
+            fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+            os.write(fd, body)
+            os.close(fd)
+            os.replace(temp, out / name)
+    return time.perf_counter() - start
 
 
 def prep_only(tmp: Path, labs: int) -> tuple[float, int]:
@@ -253,6 +287,8 @@ def main() -> None:
                     help="also print each kind of document on its own (--only), timed")
     ap.add_argument("--receive-compare", action="store_true",
                     help="receive at 500 x 2 against 50 x 20 (3,000 units each)")
+    ap.add_argument("--receive-scaling", action="store_true",
+                    help="receive 125 to 1,000 forms of 6 units each: the cost per form")
     ap.add_argument("--prep-scaling", action="store_true",
                     help="preparation sheet at 150 and 6,000 rows of one material")
     args = ap.parse_args()
@@ -296,15 +332,37 @@ def main() -> None:
                 print(f"  letters' share of evaluate: {100 * share:.0f} % (median; the issue "
                       "asks that statistics and report, not letters, take most of it)")
         if args.receive_compare:
-            wide, deep = [], []
+            wide, deep, wide_floor, deep_floor = [], [], [], []
             for i in range(args.runs):
-                wide.append(receive_only(tmp / f"rc{i}", 500, 2))
-                deep.append(receive_only(tmp / f"rc{i}", 50, 20))
+                seconds, floor_seconds = receive_only(tmp / f"rc{i}", 500, 2)
+                wide.append(seconds)
+                wide_floor.append(floor_seconds)
+                seconds, floor_seconds = receive_only(tmp / f"rc{i}", 50, 20)
+                deep.append(seconds)
+                deep_floor.append(floor_seconds)
             ratio = min(wide) / min(deep)
             print(f"\nreceive 500 x 2 x 3: {_stats(wide)} s;  50 x 20 x 3: {_stats(deep)} s;"
                   f"  ratio {ratio:.2f} (min), "
                   f"{statistics.median(wide) / statistics.median(deep):.2f} (median)"
                   f"  target <= 1.3: {'met' if ratio <= 1.3 else 'NOT met'}")
+            per_form = 1e6 * (min(wide) - min(deep)) / 450
+            floor_form = 1e6 * (min(wide_floor) - min(deep_floor)) / 450
+            print(f"  each of the 450 more forms costs {per_form:.0f} us; 1.3 allows "
+                  f"{1e6 * 0.3 * min(deep) / 450:.0f} us")
+            print(f"  file floor (read and hash each form, make its copy and receipt, bare "
+                  f"calls): 500 forms {_stats(wide_floor)} s, 50 forms {_stats(deep_floor)} s;"
+                  f" {floor_form:.0f} us per form; receive at the floor alone would be "
+                  f"{(min(deep) + 450 * floor_form / 1e6) / min(deep):.2f} x")
+        if args.receive_scaling:
+            print()
+            for labs in (125, 250, 500, 1000):
+                timed = [receive_only(tmp / f"rs{labs}-{i}", labs, 2) for i in range(args.runs)]
+                per = [1e6 * seconds / labs for seconds, _ in timed]
+                print(f"receive {labs:5d} forms of 6 units: "
+                      f"{_stats([seconds for seconds, _ in timed])} s; "
+                      f"{_stats(per)} us per form; file floor "
+                      f"{min(1e6 * floor / labs for _, floor in timed):.0f} us per form (min)")
+            print("  no quadratic step: the cost per form stays flat (or falls) as forms grow")
         if args.prep_scaling:
             print()
             per = {}
