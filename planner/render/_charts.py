@@ -648,9 +648,13 @@ class StripChart(_Chart):
         c.line(x_of(0), y0, x_of(0), y0 + h)
 
     def draw(self) -> None:
+        self._static(self.canv)
+        self._marks(self.canv)
+
+    def _static(self, c: Any) -> None:
+        """Draw all but the markers: the same in every letter of a round."""
         from reportlab.lib.colors import HexColor
 
-        c = self.canv
         self._draw_title(c)
         x0, y0, w, h = self._area
         lim = self.limit
@@ -675,6 +679,14 @@ class StripChart(_Chart):
             mid = y0 + h - r * rh - rh / 2
             c.drawRightString(x0 - 4, mid - 2.4, _layout.fit_text(label, _layout.FONT, 7,
                                                                   self._left - 6))
+
+    def _marks(self, c: Any) -> None:
+        """Draw the reader's own score of each row as a marker."""
+        from reportlab.lib.colors import HexColor
+
+        _, y0, _, h = self._area
+        x_of = self._x_of
+        rh = self.row_height
         c.setFillColor(HexColor(_layout.ACCENT))
         c.setStrokeColor(HexColor("#ffffff"))
         c.setLineWidth(0.6)

@@ -14,8 +14,9 @@ from, why a material has no band) is put in that language by matching it against
 the English texts, and stays as written if it does not match.
 
 Contents: the round, how the decoding key was opened as the ledger shows it
-(forced before every result was in, or not; when it was decrypted while sealed)
-with its full fingerprint, the assigned values, the laboratory's scores with
+(forced before every result was in, or not, with who was missing then: past
+``NAMED_MISSING`` laboratories how many, and whether the reader's own was among them;
+when it was decrypted while sealed) with its full fingerprint, the assigned values, the laboratory's scores with
 their bands, its results unit by unit, a chart of everyone's scores with its
 own marked, and for rounds of up to ``TABLE_LABS`` participants a table of the
 others' scores by participant code.
@@ -27,16 +28,21 @@ reads as it always has, without measurand headings.
 
 A round of hundreds of laboratories has hundreds of letters of one build, so
 ``render_all`` makes them cheap without changing a word or a pixel of them: tables
-drawn straight from the style's commands (``Grid``), paragraphs that recur broken
-into lines and turned into PDF operators once (``Laid``), and fonts given their
-characters in a fixed order first (``_Seed``) so that the letters of a language embed
-the same font subsets, each made once (``_shared_font_files``).
+drawn straight from the style's commands (``Grid``, each cell's style worked out once
+per shape), paragraphs that recur broken into lines and turned into PDF operators once
+(``Laid``, their parts at a page's foot too), the lead that differs only in the
+addressee's id broken once per width of the id (``Shaped``), the scores chart but its
+markers turned into operators once (``Chart``), lines of table text encoded with one
+``str.translate`` (``_first_subset``), and fonts given their characters in a fixed
+order first (``_Seed``) so that the letters of a language embed the same font
+subsets, each made once (``_shared_font_files``).
 tests/render/test_letter_batch.py holds them to what reportlab's Table and Paragraph
 draw.
 """
 
 from __future__ import annotations
 
+import copy
 import re
 import string
 from collections.abc import Mapping, Sequence
@@ -53,11 +59,16 @@ if TYPE_CHECKING:
     from planner.language import Texts
     from planner.results import Unblinded
 
-__all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "anonymous_view",
-           "anonymous_views"]
+__all__ = ["Addressee", "render", "render_all", "TABLE_LABS", "NAMED_MISSING",
+           "anonymous_view", "anonymous_views"]
 
 TABLE_LABS = 40
 """Largest round whose letters list every other participant's scores in a table."""
+
+NAMED_MISSING = 10
+"""Most laboratories a letter names (by participant code) as without results when the key
+was opened, or as recorded after it; past it, the letter says how many of how many
+participants, and whether its own laboratory is among them. The report names them all."""
 
 _MM = 72.0 / 25.4
 
@@ -144,7 +155,7 @@ def _story(statistics: Mapping[str, Any], rows: Sequence[Unblinded], to: Address
                            measurands=t("common.semicolon").join(
                                t("letter.measurand_item", measurand=mid, name=b["name"],
                                  unit=b["unit"]) for mid, b in s["measurands"].items()),
-                           lab=to.lab, you=t("letter.you")), st["lead"], shared=False),
+                           lab=to.lab, you=t("letter.you")), st["lead"], but=to.lab),
     ]
     if to.lab == s["host"]:
         story.append(_para(t.markup("letter.in_house"), st["body"]))
@@ -194,11 +205,15 @@ def _kept(name: str) -> dict[Any, Any]:
     return _SHARED.setdefault(name, {}) if _SHARED else {}
 
 
-def _para(text: str, style: Any, *, shared: bool = True) -> Any:
+def _para(text: str, style: Any, *, shared: bool = True, but: str = "") -> Any:
     """Return a paragraph of ``text`` in ``style``. With ``shared`` (a text that recurs in
-    many letters) the letters of a batch share its layout: it is broken into lines once."""
+    many letters) the letters of a batch share its layout: it is broken into lines once.
+    ``but`` is the word in which the letters' texts differ (the addressee's id, set as a
+    word of its own): letters whose word is as wide share the lines (``Shaped``)."""
     from reportlab.platypus import Paragraph
 
+    if but and _SHARED:
+        return _kinds().Shaped(text, style, but)
     if not shared or not _SHARED:
         return Paragraph(text, style)
     kept = _kept("paragraphs")
@@ -407,7 +422,7 @@ def _parts(s: Mapping[str, Any], to: Addressee, paper: str, t: Texts) -> Any:
                     if n_labs > _charts.MAX_LABELS else t.markup("letter.stand_note"))
             # A chart of many materials goes on in a second chart: one taller than a page
             # cannot be drawn at all. Each part keeps its own operators (``cache``).
-            charts = [_charts.StripChart(
+            charts = [_strip_chart(
                 strip_rows[i:i + _CHART_ROWS], width=width, score_name=name,
                 cache=view.get("cache") if not i or view.get("cache") is None
                 else view["cache"].setdefault(f"rows {i}", {}))
@@ -521,18 +536,27 @@ def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
         return (t("letter.your_laboratory") if lab == to.lab
                 else codes_of.get(lab, t("letter.another_participant")))
 
+    def names(slots: Sequence[str]) -> str:
+        # Hundreds of codes would help no reader: past a few, how many and whether its own.
+        if len(slots) <= NAMED_MISSING:
+            return ", ".join(name_of(slot) for slot in slots)
+        labs = {slot.partition("@")[0] for slot in slots}
+        return t("opening.count_yours" if to.lab in labs else "opening.count_others",
+                 count=len(labs), total=len(codes_of))
+
     def reason(text: str) -> str:
         nonlocal hidden
         out, hidden = _opening.masked(text, codes_of, keep=to.lab)
         return out
 
-    first = esc(_opening.opening_sentence(opening, name_of=name_of, reason=reason, texts=t))
+    first = esc(_opening.opening_sentence(opening, name_of=name_of, reason=reason, texts=t,
+                                          names=names))
     if hidden:
         first += " " + esc(t("letter.reason_masked"))
     if opening and opening.get("forced"):
         first = f"<b>{first}</b>"
     text = " ".join([first, *(esc(x) for x in _opening.later_sentences(
-        opening, name_of=name_of, texts=t,
+        opening, name_of=name_of, texts=t, names=names,
         spare_to=lambda slot: (t("letter.your_laboratory") if slot == to.lab
                                else t("letter.a_participant")))),
                      esc(_opening.sealing_sentence(opening or {}, texts=t))]).strip()
@@ -769,6 +793,13 @@ _GRID_OPS = frozenset({"FONT", "TEXTCOLOR", "VALIGN", "ALIGN", "BACKGROUND", "LI
                        "TOPPADDING", "BOTTOMPADDING", "LEFTPADDING", "RIGHTPADDING"})
 
 
+def _strip_chart(rows: Sequence[tuple[str, Sequence[float | None], float | None]],
+                 **options: Any) -> Any:
+    """Return the chart of everyone's scores (``_charts.StripChart``) of ``rows``; within a
+    batch its operators but the reader's own markers are worked out once (``Chart``)."""
+    return _kinds().Chart(rows, **options)
+
+
 def _grid(rows: Sequence[Sequence[Any]], widths: Sequence[float], style: Any) -> Any:
     """Return a table of ``rows`` with ``widths`` in ``style`` (a TableStyle), its first row
     repeated at the top of every page it runs onto."""
@@ -805,44 +836,64 @@ def _kinds() -> Any:
             self.order = list(range(len(cells)))  # the rows of this part of the table
             self.heights: list[float] | None = None
             n_rows, n_cols = len(cells), len(widths)
+            self.backgrounds: list[tuple[int, int, int, int, Any]] = []
+            self.rules: list[tuple[int, int, int, int, float, Any]] = []
+            styling = []
+            for op, (c0, r0), (c1, r1), *values in commands:
+                if op not in ("BACKGROUND", "LINEBELOW"):
+                    styling.append((op, (c0, r0), (c1, r1), *values))
+                    continue
+                c0, c1 = c0 + n_cols if c0 < 0 else c0, c1 + n_cols if c1 < 0 else c1
+                r0, r1 = r0 + n_rows if r0 < 0 else r0, r1 + n_rows if r1 < 0 else r1
+                if op == "BACKGROUND":
+                    self.backgrounds.append((c0, r0, c1, r1, toColor(values[0])))
+                else:
+                    self.rules.append((c0, r0, c1, r1, values[0], toColor(values[1])))
+            # The tables of a batch's letters have the same shape and styles but for their
+            # band colours (backgrounds): each cell's style is worked out once.
+            key = (n_rows, n_cols, repr(styling))
+            styled = _GRID_STYLES.get(key)
+            if styled is None:
+                styled = self._styled(n_rows, n_cols, styling)
+                if _SHARED:
+                    if len(_GRID_STYLES) > 256:  # a long-lived process: keep it small
+                        _GRID_STYLES.clear()
+                    _GRID_STYLES[key] = styled
+            self.font, self.colour, self.align, self.valign, self.pad = styled
+
+        @staticmethod
+        def _styled(n_rows: int, n_cols: int, commands: Sequence[tuple[Any, ...]]
+                    ) -> tuple[list[list[Any]], ...]:
+            """Return each cell's font, colour, alignment, vertical alignment and padding
+            (left, right, top, bottom) after ``commands``, as reportlab's Table sets them."""
             # reportlab's CellStyle before any command
-            self.font = [[(rl_config.canvas_basefontname, 10, 12)] * n_cols
-                         for _ in range(n_rows)]
-            self.colour = [[toColor("black")] * n_cols for _ in range(n_rows)]
-            self.align = [["LEFT"] * n_cols for _ in range(n_rows)]
-            self.valign = [["BOTTOM"] * n_cols for _ in range(n_rows)]
+            font = [[(rl_config.canvas_basefontname, 10, 12)] * n_cols for _ in range(n_rows)]
+            colour = [[toColor("black")] * n_cols for _ in range(n_rows)]
+            align = [["LEFT"] * n_cols for _ in range(n_rows)]
+            valign = [["BOTTOM"] * n_cols for _ in range(n_rows)]
             pads: dict[str, list[list[float]]] = {
                 side: [[width] * n_cols for _ in range(n_rows)] for side, width in
                 (("LEFTPADDING", 6), ("RIGHTPADDING", 6), ("TOPPADDING", 3),
                  ("BOTTOMPADDING", 3))}
             # what a command sets, by command: the array of every cell
-            target = {"TEXTCOLOR": self.colour, "ALIGN": self.align, "VALIGN": self.valign,
-                      **pads}
-            self.backgrounds: list[tuple[int, int, int, int, Any]] = []
-            self.rules: list[tuple[int, int, int, int, float, Any]] = []
+            target = {"TEXTCOLOR": colour, "ALIGN": align, "VALIGN": valign, **pads}
             for op, (c0, r0), (c1, r1), *values in commands:
                 c0, c1 = c0 + n_cols if c0 < 0 else c0, c1 + n_cols if c1 < 0 else c1
                 r0, r1 = r0 + n_rows if r0 < 0 else r0, r1 + n_rows if r1 < 0 else r1
-                if op == "BACKGROUND":
-                    self.backgrounds.append((c0, r0, c1, r1, toColor(values[0])))
-                    continue
-                if op == "LINEBELOW":
-                    self.rules.append((c0, r0, c1, r1, values[0], toColor(values[1])))
-                    continue
                 span = c1 - c0 + 1
                 for r in range(r0, min(r1, n_rows - 1) + 1):
                     if op == "FONT" and len(values) == 1:
-                        self.font[r][c0:c1 + 1] = [(values[0], *f[1:])
-                                                   for f in self.font[r][c0:c1 + 1]]
+                        font[r][c0:c1 + 1] = [(values[0], *f[1:]) for f in font[r][c0:c1 + 1]]
                     elif op == "FONT":
                         lead = values[2] if len(values) > 2 else values[1] * 1.2
-                        self.font[r][c0:c1 + 1] = [(values[0], values[1], lead)] * span
+                        font[r][c0:c1 + 1] = [(values[0], values[1], lead)] * span
                     else:
                         value = toColor(values[0]) if op == "TEXTCOLOR" else values[0]
                         target[op][r][c0:c1 + 1] = [value] * span
-            self.pad = [list(zip(*sides)) for sides in zip(
+            pad = [list(zip(*sides)) for sides in zip(
                 *(pads[side] for side in ("LEFTPADDING", "RIGHTPADDING", "TOPPADDING",
                                           "BOTTOMPADDING")))]  # per cell: left, right, top, bottom
+            return font, colour, align, valign, pad
 
         def _part(self, order: list[int]) -> Grid:
             # A new flowable (reportlab marks the ones it moved to the next page) that
@@ -917,13 +968,19 @@ def _kinds() -> Any:
             face: Any = None
             tf = ""
             subset_now = -1
+            seeds = getattr(doc, "_ringplan_seeds", {})
+            chars: frozenset[str] = frozenset()  # what the face sets straight (_first_subset)
+            table: dict[int, str] = {}
+            first = ""  # the face's subset 0 as the page names it, with its size
+            widths = self.widths
+            code = text._code
             for i, r in enumerate(self.order):
                 bottom, height = tops[i + 1], heights[i]
-                for col, value in enumerate(self.cells[r]):
-                    left, right, top, low = self.pad[r][col]
-                    x0, width = lefts[col], self.widths[col]
-                    align, valign = self.align[r][col], self.valign[r][col]
-                    if isinstance(value, Flowable):
+                for col, value, (left, right, top, low), align, valign, style, paint in zip(
+                        range(len(widths)), self.cells[r], self.pad[r], self.align[r],
+                        self.valign[r], self.font[r], self.colour[r]):
+                    x0, width = lefts[col], widths[col]
+                    if value.__class__ is not str and isinstance(value, Flowable):
                         w, h = value.wrap(width - left - right, height - top - low)
                         if valign == "TOP":
                             y = bottom + height - top
@@ -935,8 +992,9 @@ def _kinds() -> Any:
                              if align == "RIGHT" else x0 + (width + left - right - w) / 2.0)
                         value.drawOn(c, x, y - h)
                         continue
-                    name, size, leading = self.font[r][col]
-                    lines = str(value).split("\n")
+                    name, size, leading = style
+                    lines = (value.split("\n") if "\n" in value else (value,)
+                             ) if value.__class__ is str else str(value).split("\n")
                     if valign == "BOTTOM":
                         y = bottom + low + len(lines) * leading - size
                     elif valign == "TOP":
@@ -949,10 +1007,32 @@ def _kinds() -> Any:
                         face = pdfmetrics.getFont(name)
                         tf = f" {fp_str(size)} Tf {fp_str(leading)} TL"
                         subset_now = -1
-                    if self.colour[r][col] is not colour_now:
-                        colour_now = self.colour[r][col]
+                        seed = seeds.get(name)
+                        chars, table = ((frozenset(), {}) if seed is None or not c.bottomup
+                                        else _first_subset(face, seed, doc))
+                        first = ""
+                    if paint is not colour_now:
+                        colour_now = paint
                         text.setFillColor(colour_now)
                     for line in lines:
+                        if line and chars.issuperset(line):
+                            # the common case, as below with one piece in subset 0
+                            if align == "LEFT":
+                                x = x0 + left
+                            else:
+                                wide = _width(face, line, size)
+                                x = (x0 + width - right - wide if align == "RIGHT"
+                                     else x0 + (width + left - right) * 0.5 - 0.5 * wide)
+                            if subset_now:
+                                first = first or face.getSubsetInternalName(0, doc) + tf
+                                code.extend((f"1 0 0 1 {fp_str(x, y)} Tm", first,
+                                             f"({line.translate(table)}) Tj"))
+                                subset_now = text._curSubset = 0
+                            else:
+                                code.append(
+                                    f"1 0 0 1 {fp_str(x, y)} Tm ({line.translate(table)}) Tj")
+                            y -= leading
+                            continue
                         wide, pieces = _encoded(face, line, size, doc)
                         if align == "LEFT":
                             x = x0 + left
@@ -1080,10 +1160,16 @@ def _kinds() -> Any:
             return list(fonts.values())
 
         def split(self, avail_width: float, avail_height: float) -> list[Any]:
-            self.paragraph.wrap(avail_width, avail_height)
-            # the paragraph whole (as reportlab may answer) stays this letter's own flowable
-            return [self if part is self.paragraph else part
+            # The letters of a batch that have the paragraph at the foot of a page with the
+            # same room left share its parts as well (each part a paragraph laid out once).
+            parts = self.sizes.get(("split", avail_width, avail_height))
+            if parts is None:
+                self.paragraph.wrap(avail_width, avail_height)
+                parts = self.sizes[("split", avail_width, avail_height)] = [
+                    None if part is self.paragraph else (part, {})
                     for part in self.paragraph.split(avail_width, avail_height)]
+            # the paragraph whole (as reportlab may answer) stays this letter's own flowable
+            return [self if part is None else Laid(*part) for part in parts]
 
         def getSpaceBefore(self) -> float:  # noqa: N802 - reportlab's name
             return float(self.paragraph.getSpaceBefore())
@@ -1091,11 +1177,107 @@ def _kinds() -> Any:
         def getSpaceAfter(self) -> float:  # noqa: N802 - reportlab's name
             return float(self.paragraph.getSpaceAfter())
 
-    return SimpleNamespace(Grid=Grid, Laid=Laid, Seed=Seed)
+    from reportlab.platypus import Paragraph
+
+    class Shaped(Paragraph):  # type: ignore[misc]
+        """A paragraph that every letter of a batch has but for one word (``but``): broken
+        into lines once for the letters whose word is as wide in its font. Its lines are
+        those of the first such letter with the word's fragment given this letter's word.
+        Line breaks depend on the widths of words only: letters have no hyphenation, and
+        the word, a fragment of its own without spaces, is far shorter than a line."""
+
+        def __init__(self, text: str, style: Any, but: str) -> None:
+            super().__init__(text, style)
+            self.but = but
+            found = [f for f in self.frags if getattr(f, "text", None) == but]
+            wide = (pdfmetrics.stringWidth(but, found[0].fontName, found[0].fontSize)
+                    if len(found) == 1 else 0.0)
+            self.key = ((text.replace(_layout.escape(but), "\0"), style.name,
+                         found[0].fontName, found[0].fontSize, wide)
+                        if wide and text.count(_layout.escape(but)) == 1 and but.strip()
+                        and not any(c.isspace() for c in but) else None)
+
+        def wrap(self, avail_width: float, avail_height: float) -> tuple[float, float]:
+            if self.key is None or self.key[-1] * 4 > avail_width:
+                return super().wrap(avail_width, avail_height)  # type: ignore[no-any-return]
+            kept = _kept("shaped")
+            key = (self.key, avail_width)
+            got = kept.get(key)
+            if not got:
+                size = super().wrap(avail_width, avail_height)
+                if got is None:
+                    if len(kept) > 256:  # a long-lived process: keep it small
+                        kept.clear()
+                    kept[key] = self._spot()
+                return size  # type: ignore[no-any-return]
+            laid, at, word, height, widths = got
+            lines = list(laid.lines)
+            line = copy.copy(lines[at])
+            line.words = list(line.words)
+            line.words[word] = line.words[word].clone(text=self.but)
+            lines[at] = line
+            self.width, self._wrapWidths, self.height = avail_width, widths, height
+            self.blPara = copy.copy(laid)
+            self.blPara.lines = lines
+            return avail_width, height
+
+        def _spot(self) -> Any:
+            """Return what a letter with a word as wide reuses: the lines and where the word
+            is in them; False if it is not one fragment of one line."""
+            laid = self.blPara
+            if getattr(laid, "kind", 0) != 1:
+                return False
+            spots = [(i, j) for i, line in enumerate(laid.lines)
+                     for j, f in enumerate(line.words) if getattr(f, "text", None) == self.but]
+            if len(spots) != 1:
+                return False
+            return (laid, *spots[0], self.height, self._wrapWidths)
+
+    from planner.render import _charts
+
+    class Chart(_charts.StripChart):  # type: ignore[misc]
+        """The chart of everyone's scores whose operators, all but the reader's own markers,
+        are worked out once for the letters of a batch given the same characters first."""
+
+        def draw(self) -> None:
+            c = self.canv
+            seeds = tuple(sorted(getattr(c._doc, "_ringplan_seeds", {}).items()))
+            key = ("drawn", seeds)
+            kept = self.cache if self.cache is not None and _SHARED else None
+            drawn = kept.get(key) if kept is not None else None
+            if drawn and all(font.getSubsetInternalName(0, c._doc) == name
+                             for font, name in drawn[1]):
+                c._code.extend(drawn[0])
+            else:
+                start = len(c._code)
+                self._static(c)
+                if kept is not None and drawn is None:
+                    # its words: row names, the axis' numbers and name, in the text face
+                    words = "".join(_layout.fit_text(label, _layout.FONT, 7, self._left - 6)
+                                    for label, _, _ in self.rows) + self.score_name
+                    fixed = _fixed(c._doc, _layout.FONT).issuperset(words + "+-0123456789")
+                    ops = c._code[start:]
+                    font = pdfmetrics.getFont(_layout.FONT)
+                    kept[key] = ((ops, ((font, font.getSubsetInternalName(0, c._doc)),))
+                                 if fixed and not any(" gs" in op for op in ops) else False)
+            self._marks(c)
+
+    return SimpleNamespace(Grid=Grid, Laid=Laid, Seed=Seed, Chart=Chart, Shaped=Shaped)
 
 
+_GRID_STYLES: dict[tuple[int, int, str], tuple[list[list[Any]], ...]] = {}
 _WIDTHS: dict[tuple[str, float, str], float] = {}
 _ENCODED: dict[tuple[str, str, str], list[tuple[int, str]]] = {}
+
+
+def _width(font: Any, line: str, size: float) -> float:
+    """Return the width of ``line`` in ``font`` at ``size``, each measured once."""
+    wide = _WIDTHS.get((font.fontName, size, line))
+    if wide is None:
+        if len(_WIDTHS) > 50_000:  # a long-lived process: keep it small
+            _WIDTHS.clear()
+        wide = _WIDTHS[(font.fontName, size, line)] = font.stringWidth(line, size)
+    return wide
 
 
 def _encoded(font: Any, line: str, size: float, doc: Any
@@ -1107,14 +1289,15 @@ def _encoded(font: Any, line: str, size: float, doc: Any
     A line of characters the font was given first (``_fixed``) reads the same in every
     letter given the same characters: it is worked out once.
     """
-    wide = _WIDTHS.get((font.fontName, size, line))
-    if wide is None:
-        if len(_WIDTHS) > 50_000:  # a long-lived process: keep it small
-            _WIDTHS.clear()
-        wide = _WIDTHS[(font.fontName, size, line)] = font.stringWidth(line, size)
+    wide = _width(font, line, size)
     if not getattr(font, "_dynamicFont", False) or getattr(font, "shapable", False):
         return wide, None
     seed = getattr(doc, "_ringplan_seeds", {}).get(font.fontName)
+    if seed is not None:
+        # Most lines: characters of the seed's first subset, each its own escaped code
+        chars, table = _first_subset(font, seed, doc)
+        if chars.issuperset(line):
+            return wide, [(0, line.translate(table))]
     got = _ENCODED.get((font.fontName, seed, line)) if seed is not None else None
     if got is None:
         from reportlab.lib.rl_accel import escapePDF
@@ -1125,6 +1308,29 @@ def _encoded(font: Any, line: str, size: float, doc: Any
                 _ENCODED.clear()
             _ENCODED[(font.fontName, seed, line)] = got
     return wide, got
+
+
+_FIRST: dict[tuple[str, str], tuple[frozenset[str], dict[int, str]]] = {}
+
+
+def _first_subset(font: Any, seed: str, doc: Any) -> tuple[frozenset[str], dict[int, str]]:
+    """Return the characters of ``seed`` that a document given it first (``_Seed``) sets in
+    subset 0 of ``font``, and a ``str.translate`` table from each to its code as reportlab
+    escapes it in a string: the same in every document given the same seed."""
+    got = _FIRST.get((font.fontName, seed))
+    if got is None:
+        from reportlab.lib.rl_accel import escapePDF
+
+        assigned = font.state[doc].assignments
+        table = {}
+        for c in set(seed):
+            n = assigned.get(32 if c == "\xa0" else ord(c))  # reportlab sets nbsp as a space
+            if n is not None and n >> 8 == 0:
+                table[ord(c)] = escapePDF(bytes([n]))
+        if len(_FIRST) > 64:  # a long-lived process: keep it small
+            _FIRST.clear()
+        got = _FIRST[(font.fontName, seed)] = (frozenset(map(chr, table)), table)
+    return got
 
 
 def _fixed(doc: Any, name: str) -> frozenset[str]:
@@ -1172,15 +1378,27 @@ def _seeds(statistics: Mapping[str, Any], addressees: Sequence[Addressee], code:
     """Return (font name, characters) to give a letter's fonts first, in a fixed order.
 
     The text face gets the characters of the language's texts, of the words and numbers of
-    the round's statistics and of the addressees; the bold face, which sets headings the
-    same in every letter, only what differs between letters (numbers, the addressee's id
-    and name); the monospaced face the characters of codes.
+    the round's statistics and of the addressees; the bold face what differs between
+    letters (numbers, the addressee's id and name) and what letters set in bold the same
+    in every letter (headings, the account of a forced opening), so that a heading's
+    operators can be drawn once for all letters (``Laid``); the monospaced face the
+    characters of codes.
     """
-    found = set("".join(v for k, v in language.texts(code).entries.items()
-                        if k.startswith(("letter.", "common."))))
+    entries = language.texts(code).entries
+    found = set("".join(v for k, v in entries.items()
+                        if k.startswith(("letter.", "common.", "opening."))))
     found.update(_NUMBERS)
     found.update(*_words(statistics))
     bold = set(_NUMBERS)
+    bold.update(_BOLD_HEADS, *(v for k, v in entries.items() if k == "letter.title"
+                               or k.startswith(("letter.col_", "letter.band."))
+                               or k.endswith("_heading") and k.startswith("letter.")))
+    if (statistics.get("opening") or {}).get("forced"):
+        # the account of the opening, with the participant codes of its reason
+        bold.update(*(v for k, v in entries.items() if k.startswith("opening.")),
+                    entries["letter.reason_masked"],
+                    *(statistics.get("participants") or {}).values())
+    bold -= set("{}")  # placeholders' braces; their values are among the numbers and words
     for to in addressees:
         found.update(to.name + to.contact + "".join(to.address) + to.lab)
         bold.update(to.name + to.lab)
@@ -1188,6 +1406,9 @@ def _seeds(statistics: Mapping[str, Any], addressees: Sequence[Addressee], code:
             (_layout.BOLD, "".join(sorted(c for c in bold if c.isprintable()))),
             (_layout.MONO_REGULAR, _CODE_CHARACTERS))
 
+
+_BOLD_HEADS = "x_pt u(x_pt) sigma_pt D% En"
+"""Column headings of a letter's tables that are no text of a language file."""
 
 _NUMBERS = "0123456789.,+-e±='% ()[]/:;"
 """What numbers, scores and table cells add to the words: digits, signs, marks."""
@@ -1198,9 +1419,20 @@ def _words(value: Any) -> set[str]:
     material's id, say, is a value in its list as well)."""
     found: set[str] = set()
     stack = [value]
+    plain = (float, int, bool, type(None))
     while stack:  # a round of hundreds of laboratories holds some 10^5 values
         item = stack.pop()
-        if isinstance(item, str):
+        kind = type(item)
+        # JSON's own types first: an isinstance of Mapping costs as much as the rest
+        if kind in plain:
+            continue
+        if kind is str:
+            found.add(item)
+        elif kind is dict:
+            stack.extend(item.values())
+        elif kind is list or kind is tuple:
+            stack.extend(item)
+        elif isinstance(item, str):
             found.add(item)
         elif isinstance(item, Mapping):
             stack.extend(item.values())

@@ -2,9 +2,9 @@
 
 Plans and seals an invented round of that size in a scratch folder, unseals it
 (forced: the results are handed to ``evaluate_round`` directly rather than
-received as 500 forms, so every letter's account of the opening names all 500
-laboratories as without a form, a long paragraph of its own in each letter;
-tests/benchmarks/bench_round.py receives the forms and has no such paragraph), then times
+received as 500 forms, so the ledger records all 500 laboratories as without a form
+at the opening; the report lists them all, every letter says how many and whether its
+own was among them), then times
 
 - the statistics alone (``evaluate.round_statistics``: every method, twice,
   the second time without the host), target at most 1 s;
@@ -13,6 +13,10 @@ tests/benchmarks/bench_round.py receives the forms and has no such paragraph), t
   a 2-core machine (issue 17), with the report's and the letters' share of it: the
   statistics and the report, not the letters, should take most of it;
 - the letters alone in one process, per letter (``--letters N`` of them; 0 skips).
+
+The received scenario (every form received, a normal opening) is measured by
+tests/benchmarks/bench_round.py (``--sizes 500x20x3 --only evaluate``), which prints the
+letters' share of evaluate as well; receiving 500 forms would more than double this run.
 
 Run: python tests/benchmarks/bench_evaluate.py [--labs N] [--materials M] [--workers W]
      [--letters N]
@@ -149,6 +153,8 @@ def main() -> None:
         if per_letter:
             print(f"one letter in one process: {1000 * per_letter[0]:.1f} ms "
                   f"({1000 * per_letter[1]:.1f} ms CPU), {args.letters} letters")
+        print("letters of the received scenario (no forced opening): "
+              "tests/benchmarks/bench_round.py --sizes 500x20x3 --only evaluate")
         print(f"report.pdf: {pages} pages, {report.stat().st_size / 1e6:.2f} MB; letters: "
               f"{len(letters)}, {sum(p.stat().st_size for p in letters) / 1e6:.1f} MB")
 

@@ -2,8 +2,9 @@
 
 ``render_all`` lays out a round's letters with flowables of our own: tables drawn straight
 from the style's commands (``Grid``), paragraphs broken into lines once for every letter
-that has them (``Laid``), lines of text and whole paragraphs whose PDF operators are
-worked out once, and font programs made once per subset. These tests hold them to what
+that has them (``Laid``) or has them but for the addressee's id (``Shaped``), lines of
+text, whole paragraphs and the scores chart but its markers whose PDF operators are
+worked out once (``Chart``), and font programs made once per subset. These tests hold them to what
 reportlab's Table and Paragraph draw, page by page (pypdfium2 renderings) and word for
 word (pdfplumber text), on the demo round (three measurands, a letter in German, decimal
 commas, the host's own letter, wrapped headings) and on tables that run over pages.
@@ -71,11 +72,13 @@ def _reportlab_only(monkeypatch):
     """Make letters the way reportlab lays them out, with none of the batch's shortcuts."""
     from reportlab.platypus import Paragraph, Spacer
 
-    from planner.render import _tables, letter
+    from planner.render import _charts, _tables, letter
 
     monkeypatch.setattr(letter, "_grid", lambda rows, widths, style: _tables.table(
         rows, widths, style, repeatRows=1))
-    monkeypatch.setattr(letter, "_para", lambda text, style, shared=True: Paragraph(text, style))
+    monkeypatch.setattr(letter, "_para", lambda text, style, shared=True, but="":
+                        Paragraph(text, style))
+    monkeypatch.setattr(letter, "_strip_chart", _charts.StripChart)
     monkeypatch.setattr(letter, "_Seed", lambda seeds: Spacer(0, 0))
     monkeypatch.setattr(letter, "_shared_font_files", lambda names: lambda: None)
 
@@ -96,8 +99,9 @@ def test_letters_of_a_batch_read_and_look_as_reportlab_lays_them_out(demo_round,
 
 
 def test_a_letter_in_a_batch_is_byte_for_byte_the_letter_made_alone(demo_round, tmp_path):
-    # Shared font programs, widths and maps, cached encodings and replayed paragraphs
-    # change nothing in the file but its /ID (reportlab's hash of the temporary name).
+    # Shared font programs, widths and maps, cached encodings and replayed paragraphs and
+    # charts change nothing in the file but its /ID (reportlab's hash of the temporary name)
+    # and its dates (the clock's second, which may tick between the two).
     import json
 
     from planner import evaluate, intake, language, plan, spec
@@ -130,7 +134,8 @@ def test_a_letter_in_a_batch_is_byte_for_byte_the_letter_made_alone(demo_round, 
                        views=views, seeds=seeds)
 
     def without_id(path: Path) -> bytes:
-        return re.sub(rb"/ID \n\[<[0-9a-f]+><[0-9a-f]+>\]", b"", path.read_bytes())
+        data = re.sub(rb"/ID \n\[<[0-9a-f]+><[0-9a-f]+>\]", b"", path.read_bytes())
+        return re.sub(rb"/(Creation|Mod)Date \(D:[0-9+'Z]+\)", b"", data)
 
     for a in to:
         name = f"letter-{a.lab}.pdf"
