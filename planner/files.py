@@ -2,7 +2,8 @@
 
 Every file ringplan writes inside a study folder goes through ``write_atomic`` (or
 ``write_bytes`` / ``write_text``, or ``write_many`` for many files at once, whose flushes to
-disk overlap): the bytes go to a temporary file beside the target,
+disk overlap, or ``stage`` and ``settle`` for documents made one by one and put in place
+together): the bytes go to a temporary file beside the target,
 created new (``O_EXCL``) and never through a link (``O_NOFOLLOW``), are flushed to disk,
 and the file is then renamed into place, so a reader finds the old file or the new one,
 never half of either. Before anything is made, each part of the path from the study
@@ -52,6 +53,8 @@ __all__ = [
     "write_bytes",
     "write_text",
     "write_many",
+    "stage",
+    "settle",
     "make_folders",
     "check_paths",
     "placement",
@@ -126,6 +129,21 @@ def write_atomic(path: Path, write: Callable[[Path], None], *, root: Path,
     ``path``; raises PlannerError when a link, a file or a folder is in the way below
     ``root`` or the disk refuses (the temporary file is removed then).
     """
+    settle([(Path(path), stage(path, write, root=root, private=private,
+                               read_only=read_only))], root=root)
+    return Path(path)
+
+
+def stage(path: Path, write: Callable[[Path], None], *, root: Path, private: bool,
+          read_only: bool = False) -> Path:
+    """Do the first half of ``write_atomic``: return the temporary file beside ``path``,
+    written whole by ``write`` and given its rights, but neither flushed to disk nor
+    renamed; ``settle`` does both, for many files together.
+
+    For documents made one by one, perhaps in other processes, whose flushes should
+    overlap (letters). A temporary file never settled is a leftover of its process
+    (``remove_stale``).
+    """
     path, root = Path(path), Path(root)
     check_paths([path], root=root)
     make_folders(path.parent, root=root)
@@ -144,20 +162,57 @@ def write_atomic(path: Path, write: Callable[[Path], None], *, root: Path,
                 mode &= ~0o222
             if hasattr(os, "fchmod"):  # a writer that made the file anew: the rights back
                 os.fchmod(fd, mode)
-            os.fsync(fd)
         finally:
             os.close(fd)
-        check_paths([path], root=root)  # again, right before the rename
-        os.replace(temp, path)
-        made = False
     except BaseException as exc:
         if made:
             _discard(temp)
         if isinstance(exc, OSError) and exc.errno in USER_ERRNOS:
             raise explain(exc, path) from None
         raise
-    _sync_folder(path.parent)
-    return path
+    return temp
+
+
+def settle(staged: Sequence[tuple[Path, Path]], *, root: Path) -> list[Path]:
+    """Put each (target, temporary file of ``stage``) in place: flush every temporary file
+    to disk (the flushes side by side), then rename each onto its target and flush each
+    folder once. Every target is then whole or as it was.
+
+    Returns the targets; raises PlannerError as ``write_atomic`` does, after removing
+    every temporary file not yet renamed (the targets renamed by then stay, each whole).
+    """
+    root = Path(root)
+    paths = [Path(path) for path, _ in staged]
+    current = paths[0] if paths else root
+    renamed = 0
+    try:
+        fds: list[int] = []
+        try:
+            for path, temp in staged:
+                current = path
+                fds.append(os.open(temp, os.O_RDONLY | _NOFOLLOW | _CLOEXEC))
+            flushed = _flush_together(fds)
+        finally:
+            for fd in fds:
+                os.close(fd)
+        for path, failure in zip(paths, flushed, strict=True):
+            if failure is not None:
+                current = path
+                raise failure
+        _check_many(paths, root=root)  # again, right before the renames
+        for path, temp in staged:
+            current = Path(path)
+            os.replace(temp, path)
+            renamed += 1
+    except BaseException as exc:
+        for _, temp in staged[renamed:]:
+            _discard(Path(temp))
+        if isinstance(exc, OSError) and exc.errno in USER_ERRNOS:
+            raise explain(exc, current) from None
+        raise
+    for folder in dict.fromkeys(path.parent for path in paths):
+        _sync_folder(folder)
+    return paths
 
 
 def write_bytes(path: Path, data: bytes, *, root: Path, private: bool,
@@ -194,8 +249,6 @@ def write_many(items: Sequence[tuple[Path, bytes]], *, root: Path, private: bool
     if len(items) <= 1:
         return [write_bytes(path, data, root=root, private=private, read_only=read_only)
                 for path, data in items]
-    from concurrent.futures import ThreadPoolExecutor
-
     root = Path(root)
     paths = [Path(path) for path, _ in items]
     folders = list(dict.fromkeys(path.parent for path in paths))
@@ -221,13 +274,7 @@ def write_many(items: Sequence[tuple[Path, bytes]], *, root: Path, private: bool
                 mode &= ~0o222
             if hasattr(os, "fchmod"):  # as write_atomic: the rights of a file made anew
                 os.fchmod(fd, mode)
-        # fsync lets other threads run while it waits: the flushes overlap
-        fds = list(temps.values())
-        share = -(-len(fds) // _FLUSHERS)
-        with ThreadPoolExecutor(max_workers=_FLUSHERS) as pool:
-            flushed = [failure for part in pool.map(
-                _flush, [fds[i:i + share] for i in range(0, len(fds), share)])
-                for failure in part]
+        flushed = _flush_together(list(temps.values()))
         for path, failure in zip(paths, flushed, strict=True):
             if failure is not None:
                 current = path
@@ -273,7 +320,20 @@ def _check_many(paths: Sequence[Path], *, root: Path) -> None:
         _check_part(path, info, last=True)
 
 
-_FLUSHERS = 16  # fsync calls at a time in write_many
+_FLUSHERS = 16  # fsync calls at a time in write_many and settle
+
+
+def _flush_together(fds: Sequence[int | None]) -> list[OSError | None]:
+    """Flush files to disk side by side (fsync lets other threads run while it waits, so
+    the file system commits them together); return each one's error, or None."""
+    if len(fds) <= 1:
+        return _flush(fds)
+    from concurrent.futures import ThreadPoolExecutor
+
+    share = -(-len(fds) // _FLUSHERS)
+    with ThreadPoolExecutor(max_workers=_FLUSHERS) as pool:
+        return [failure for part in pool.map(
+            _flush, [fds[i:i + share] for i in range(0, len(fds), share)]) for failure in part]
 
 
 def _flush(fds: Sequence[int | None]) -> list[OSError | None]:

@@ -200,15 +200,19 @@ class Running:
     page_text: str = "page {number} of {total}"
 
 
-def write_atomic(path: Path, write: Callable[[Path], None]) -> Path:
+def write_atomic(path: Path, write: Callable[[Path], None], *, staged: bool = False) -> Path:
     """Call ``write`` with a temporary name beside ``path``, then rename it into place; return ``path``.
 
     Through ``planner.files``: never through a link, owner-only where the round's layout
     says so (host documents, the report and letters); PlannerError when the disk refuses.
+    ``staged`` stops short of flushing and renaming and returns the temporary file, for
+    ``files.settle`` to put in place together with others (``files.stage``).
     """
     from planner import files
 
     root, private = files.placement(path)
+    if staged:
+        return files.stage(path, write, root=root, private=private)
     return files.write_atomic(path, write, root=root, private=private)
 
 
@@ -273,8 +277,9 @@ def _numbered_canvas(running: Running) -> type:
 
 
 def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
-          title: str) -> Path:
-    """Lay out ``story`` on pages of ``paper`` with our header and footer; write ``path`` atomically."""
+          title: str, staged: bool = False) -> Path:
+    """Lay out ``story`` on pages of ``paper`` with our header and footer; write ``path``
+    atomically (``staged``: return the temporary file, as ``write_atomic`` says)."""
     from reportlab.platypus import SimpleDocTemplate
 
     fonts_ready()
@@ -298,7 +303,7 @@ def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
         finally:
             rl_config.useA85 = was
 
-    return write_atomic(path, write)
+    return write_atomic(path, write, staged=staged)
 
 
 def fit_text(text: str, font: str, size: float, width: float) -> str:

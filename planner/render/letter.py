@@ -764,7 +764,9 @@ def render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
 def _render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
             addressee: Addressee, *, paper: str,
             views: Mapping[str, Mapping[str, Any]] | None,
-            seeds: tuple[tuple[str, str], ...]) -> Path:
+            seeds: tuple[tuple[str, str], ...], staged: bool = False) -> Path:
+    """Write the letter as ``render`` does; ``staged``: return its temporary file, for
+    ``render_all`` to flush and put in place with the others (``files.settle``)."""
     s = statistics
     t = language.texts(addressee.language)
     story = [_Seed(seeds), *_story(s, rows, addressee, views or anonymous_views(s), paper, t)]
@@ -775,7 +777,7 @@ def _render(path: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded]
                               page_text=t.template("common.page"))
     return _layout.build(path, story, paper=paper, running=running,
                          title=t("letter.pdf_title", study=s["study"], round=s["round"],
-                                 lab=addressee.lab))
+                                 lab=addressee.lab), staged=staged)
 
 
 # --- tables and paragraphs laid out once ----------------------------------------
@@ -1581,11 +1583,12 @@ def _faces() -> list[str]:
             tt2ps(_layout.FONT, 0, 1), tt2ps(_layout.FONT, 1, 1)]
 
 
-def _one(job: tuple[Path, Addressee]) -> Path:
+def _one(job: tuple[Path, Addressee]) -> tuple[Path, Path]:
+    """Make one letter of a batch; return (its path, its temporary file, not yet in place)."""
     path, to = job
-    return _render(path, _SHARED["statistics"], _SHARED["rows"].get(to.lab, ()), to,
-                   paper=_SHARED["paper"], views=_SHARED["views"],
-                   seeds=_SHARED["seeds"][to.language])
+    return path, _render(path, _SHARED["statistics"], _SHARED["rows"].get(to.lab, ()), to,
+                         paper=_SHARED["paper"], views=_SHARED["views"],
+                         seeds=_SHARED["seeds"][to.language], staged=True)
 
 
 def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unblinded],
@@ -1593,24 +1596,42 @@ def render_all(folder: Path, statistics: Mapping[str, Any], rows: Sequence[Unbli
     """Write ``letter-<lab>.pdf`` for every addressee into ``folder``; return the paths.
 
     With ``workers`` > 1 the letters are made in that many processes; each process
-    receives the statistics once, not once per letter.
+    receives the statistics once, not once per letter. Each letter is written to a
+    temporary file; when all are made, they are flushed to disk together and renamed into
+    place (``files.settle``): a letter is the new one or the one before, never half, and
+    a batch that fails leaves the letters before it as they were.
     """
+    from planner import files
+
     by_lab: dict[str, list[Unblinded]] = {}
     for r in rows:
         by_lab.setdefault(r.lab, []).append(r)
     jobs = [(Path(folder) / f"letter-{to.lab}.pdf", to) for to in addressees]
-    if workers <= 1 or len(jobs) < 2:
-        _init(statistics, by_lab, paper, addressees)
-        try:
-            return [_one(job) for job in jobs]
-        finally:
-            _SHARED.pop("restore", lambda: None)()
-            _SHARED.clear()
-    from planner.render import _workers
+    if not jobs:
+        return []
+    staged: list[tuple[Path, Path]] = []
+    try:
+        if workers <= 1 or len(jobs) < 2:
+            _init(statistics, by_lab, paper, addressees)
+            try:
+                for job in jobs:
+                    staged.append(_one(job))
+            finally:
+                _SHARED.pop("restore", lambda: None)()
+                _SHARED.clear()
+        else:
+            from planner.render import _workers
 
-    # fork shares the parent's memory (no pickling of the statistics) where it exists.
-    chunk = max(1, len(jobs) // (workers * 4))
-    with _workers.pool(workers, initializer=_init,
-                       initargs=(statistics, by_lab, paper, addressees, True),
-                       fork=True) as pool:
-        return list(pool.map(_one, jobs, chunksize=chunk))
+            # fork shares the parent's memory (no pickling of the statistics) where it exists.
+            chunk = max(1, len(jobs) // (workers * 4))
+            with _workers.pool(workers, initializer=_init,
+                               initargs=(statistics, by_lab, paper, addressees, True),
+                               fork=True) as pool:
+                for made in pool.map(_one, jobs, chunksize=chunk):
+                    staged.append(made)
+    except BaseException:
+        for _, temp in staged:  # those of letters after a failed one are their worker's
+            temp.unlink(missing_ok=True)  # leftovers (files.remove_stale)
+        raise
+    root, _ = files.placement(jobs[0][0])
+    return files.settle(staged, root=root)

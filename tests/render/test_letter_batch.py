@@ -68,6 +68,29 @@ def _evaluate(source: Path, target: Path, round_id: str, **workers) -> Path:
         return evaluate.evaluate_round(study, target, round_id, ledger, **workers)
 
 
+def _batch_inputs(source: Path, round_id: str) -> tuple[dict, list, list]:
+    """Return what ``letter.render_all`` takes for an evaluated round: its statistics, its
+    unblinded rows and the addressees."""
+    import json
+
+    from planner import evaluate, intake, language, plan, spec
+    from planner.ledger import Ledger
+    from planner.render import letter
+
+    study = spec.load(source)
+    folder = plan.round_dir(source, round_id)
+    statistics = json.loads((folder / evaluate.REPORT_DIR / evaluate.STATISTICS_NAME)
+                            .read_text(encoding="utf-8"))
+    with Ledger.open(source, create=False) as ledger:
+        key = json.loads((folder / "key.json").read_text(encoding="utf-8"))
+        accepted = evaluate.accepted_results(study, ledger, round_id,
+                                             manifest=plan.read_manifest(folder))
+        rows = evaluate.unblind(key, accepted, issued=intake.issued_spares(ledger, round_id))
+    to = [letter.Addressee(lab.id, lab.name, tuple(lab.address), lab.contact.name,
+                           lab.decimal, language.of(lab)) for lab in study.laboratories]
+    return statistics, rows, to
+
+
 def _reportlab_only(monkeypatch):
     """Make letters the way reportlab lays them out, with none of the batch's shortcuts."""
     from reportlab.platypus import Paragraph, Spacer
@@ -102,24 +125,9 @@ def test_a_letter_in_a_batch_is_byte_for_byte_the_letter_made_alone(demo_round, 
     # Shared font programs, widths and maps, cached encodings and replayed paragraphs and
     # charts change nothing in the file but its /ID (reportlab's hash of the temporary name)
     # and its dates (the clock's second, which may tick between the two).
-    import json
-
-    from planner import evaluate, intake, language, plan, spec
-    from planner.ledger import Ledger
     from planner.render import letter
 
-    source, round_id = demo_round
-    study = spec.load(source)
-    folder = plan.round_dir(source, round_id)
-    statistics = json.loads((folder / evaluate.REPORT_DIR / evaluate.STATISTICS_NAME)
-                            .read_text(encoding="utf-8"))
-    with Ledger.open(source, create=False) as ledger:
-        key = json.loads((folder / "key.json").read_text(encoding="utf-8"))
-        accepted = evaluate.accepted_results(study, ledger, round_id,
-                                             manifest=plan.read_manifest(folder))
-        rows = evaluate.unblind(key, accepted, issued=intake.issued_spares(ledger, round_id))
-    to = [letter.Addressee(lab.id, lab.name, tuple(lab.address), lab.contact.name,
-                           lab.decimal, language.of(lab)) for lab in study.laboratories]
+    statistics, rows, to = _batch_inputs(*demo_round)
     batch, alone = tmp_path / "batch", tmp_path / "alone"
     batch.mkdir()
     alone.mkdir()
@@ -221,3 +229,48 @@ def test_a_table_moved_to_the_next_page_twice_still_splits(tmp_path):
     text = "\n".join(_text(tmp_path / "t.pdf"))
     assert all(f"M{i:02d}" in text for i in range(56))
     assert text.count("material value") >= 2  # the heading repeated on the next page
+
+
+
+@pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="names a file by /proc/self/fd")
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_batch_of_letters_is_put_in_place_whole_or_not_at_all(demo_round, tmp_path,
+                                                               monkeypatch, workers):
+    # Letters are made as temporary files (in the workers), then flushed together and
+    # renamed by the parent: a disk that fails while a letter is flushed leaves every
+    # letter as it was, and no temporary file behind.
+    import errno
+    import os
+
+    from planner import evaluate, files, plan
+    from planner.errors import PlannerError
+    from planner.render import letter
+
+    source, round_id = demo_round
+    statistics, rows, to = _batch_inputs(source, round_id)
+    target = tmp_path / "copy"
+    shutil.copytree(source, target, symlinks=True)
+    out = plan.round_dir(target, round_id) / evaluate.REPORT_DIR
+    before = {p.name: p.read_bytes() for p in out.glob("letter-*.pdf")}
+    assert len(before) == len(to) == 5
+    real, flushed = os.fsync, []
+
+    def failing(fd):
+        name = os.path.basename(os.readlink(f"/proc/self/fd/{fd}"))
+        if name.startswith(".letter-"):
+            flushed.append(name)
+            if len(flushed) == 3:
+                raise OSError(errno.ENOSPC, "No space left on device")
+        return real(fd)
+
+    monkeypatch.setattr(os, "fsync", failing)
+    with pytest.raises(PlannerError, match="no space left on the disk"):
+        letter.render_all(out, statistics, rows, to, paper="A4", workers=workers)
+    monkeypatch.undo()
+    assert len(flushed) == 5  # every letter made before any was flushed, all in the parent
+    assert {p.name: p.read_bytes() for p in out.glob("letter-*.pdf")} == before
+    assert sorted(out.glob(f"*{files.TEMP_SUFFIX}")) == []
+    paths = letter.render_all(out, statistics, rows, to, paper="A4", workers=workers)
+    assert sorted(p.name for p in paths) == sorted(before)
+    assert sorted(out.glob(f"*{files.TEMP_SUFFIX}")) == []
+    assert all(p.read_bytes().startswith(b"%PDF") for p in paths)
