@@ -73,7 +73,7 @@ def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
 
 
 def _fmt(v: float) -> str:
-    return f"{v:.4g}"
+    return f"{v + 0.0:.4g}"  # + 0.0: a negative zero prints as 0, not '-0'
 
 
 @dataclass(frozen=True, slots=True)

@@ -89,7 +89,8 @@ class Addressee:
 def _num(v: Any, digits: int = 4, comma: bool = False) -> str:
     if v is None:
         return "-"
-    text = f"{v:.{digits}g}" if isinstance(v, float) else str(v)
+    # + 0.0 turns a negative zero (a difference of equal values, say) into 0, not '-0'
+    text = f"{v + 0.0:.{digits}g}" if isinstance(v, float) else str(v)
     return text.replace(".", ",") if comma else text
 
 

@@ -61,7 +61,7 @@ def fmt(v: Any, digits: int = 4) -> str:
     if isinstance(v, int):
         return str(v)
     if isinstance(v, float):
-        return f"{v:.{digits}g}"
+        return f"{v + 0.0:.{digits}g}"  # + 0.0: a negative zero prints as 0, not '-0'
     return str(v)
 
 
