@@ -18,7 +18,8 @@ was chosen. Registration happens once per process and never at import, so that
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -47,6 +48,9 @@ __all__ = [
     "fonts_ready",
     "grouped_fingerprint",
     "page_size",
+    "deflate",
+    "plain_streams",
+    "FLATE_LEVEL",
     "rounded_box",
     "styles",
     "table",
@@ -293,17 +297,54 @@ def build(path: Path, story: Sequence[Any], *, paper: str, running: Running,
             # reportlab's default first font is Helvetica, a font of no document of ours
             initialFontName=FONT,
             subject=f"{running.study_id} round {running.round_id}", creator="ringplan")
-        from reportlab import rl_config
-
-        # Plain Flate streams: ASCII85 on top makes every page a quarter bigger and the
-        # pure-Python encoder slower, and every PDF reader takes either.
-        was, rl_config.useA85 = rl_config.useA85, 0
-        try:
+        with plain_streams():
             doc.build(list(story), canvasmaker=_numbered_canvas(running))
-        finally:
-            rl_config.useA85 = was
 
     return write_atomic(path, write, staged=staged)
+
+
+FLATE_LEVEL = 1
+"""The zlib level of our page streams. Measured on a page of table operators (40 kB):
+level 1 deflates it in 0.09 ms, reportlab's default (6) in 0.35 ms, for 17 % more bytes;
+at 500 letters some 4 % of their time. Embedded fonts are deflated at the same level."""
+
+
+def deflate(data: bytes) -> bytes:
+    """Return ``data`` deflated as our PDFs' streams are (``FLATE_LEVEL``): for a stream
+    made once and given to many documents, as reportlab would have deflated it."""
+    import zlib
+
+    return zlib.compress(data, FLATE_LEVEL)
+
+
+@contextmanager
+def plain_streams() -> Iterator[None]:
+    """Write the streams of the PDFs made inside (pages, and the fonts embedded in them) as
+    plain Flate at ``FLATE_LEVEL``.
+
+    reportlab's default wraps them in ASCII85 as well, which makes every page a quarter
+    bigger and its pure-Python encoder slower; every PDF reader takes binary streams.
+    Both settings are reportlab's module-wide ones and are put back on leaving.
+    """
+    from reportlab import rl_config
+    from reportlab.pdfbase import pdfdoc
+
+    flate = pdfdoc.PDFZCompress
+
+    def encode(text: Any) -> bytes:
+        return deflate(text.encode("utf8") if isinstance(text, str) else text)
+
+    was = rl_config.useA85
+    had = vars(flate).get("encode")
+    rl_config.useA85, flate.encode = 0, encode
+    try:
+        yield
+    finally:
+        rl_config.useA85 = was
+        if had is None:
+            del flate.encode
+        else:
+            flate.encode = had
 
 
 def fit_text(text: str, font: str, size: float, width: float) -> str:

@@ -628,15 +628,8 @@ def render(path: Path, items: Sequence[Label | Separator], geometry: Geometry, *
         canvas.showPage()
         canvas.save()
 
-    from reportlab import rl_config
-
-    # Page streams deflated but not ASCII85-wrapped: a quarter smaller and
-    # faster to write; every PDF reader takes binary streams.
-    was, rl_config.useA85 = rl_config.useA85, 0
-    try:
+    with _layout.plain_streams():  # deflated, not ASCII85-wrapped
         return _layout.write_atomic(path, write)
-    finally:
-        rl_config.useA85 = was
 
 
 def render_calibration(path: Path, geometry: Geometry, *,

@@ -1456,8 +1456,6 @@ def _shared_font_files(names: Sequence[str]) -> Any:
     (reportlab's ``makeSubset``) and its Flate stream are kept and given to every letter
     that embeds the same subset. The PDF bytes are those reportlab writes. Returns a
     function that takes the sharing back."""
-    import zlib
-
     from reportlab.pdfbase import pdfdoc, pdfmetrics
 
     faces = []
@@ -1474,7 +1472,7 @@ def _shared_font_files(names: Sequence[str]) -> Any:
                 if len(_FONT_FILES) > 64:  # a long-lived process: keep it small
                     _FONT_FILES.clear()
                 raw = make(subset)
-                _FONT_FILES[key] = (raw, zlib.compress(raw))  # reportlab's own Flate
+                _FONT_FILES[key] = (raw, _layout.deflate(raw))  # as reportlab would
             return _FONT_FILES[key][0]
 
         def added(doc: Any, fontname: str, subset: Sequence[int], add: Any = add,
@@ -1514,8 +1512,6 @@ _FONT_OBJECTS: dict[tuple[str, int, tuple[int, ...]], tuple[bytes, bytes]] = {}
 def _font_objects(font: Any, add: Any) -> Any:
     """Return ``font.addObjects`` that gives each subset's widths and ToUnicode map, the same
     in every letter that embeds the subset, as made once (reportlab's own bytes)."""
-    import zlib
-
     from reportlab.pdfbase import pdfdoc
 
     def objects(doc: Any) -> None:
@@ -1540,7 +1536,7 @@ def _font_objects(font: Any, add: Any) -> Any:
                 if len(_FONT_OBJECTS) > 256:  # a long-lived process: keep it small
                     _FONT_OBJECTS.clear()
                 _FONT_OBJECTS[key] = (widths.format(doc),
-                                      zlib.compress(stream.content.encode("utf8")))
+                                      _layout.deflate(stream.content.encode("utf8")))
             pdf_font.Widths, stream.content = _FONT_OBJECTS[key]
             stream.dictionary["Filter"] = pdfdoc.PDFArray([pdfdoc.PDFName("FlateDecode")])
 
