@@ -325,3 +325,13 @@ def mistype(code_text):
     """Change the check character to another symbol; Luhn mod N catches every such change."""
     last = code_text[-1]
     return code_text[:-1] + ("0" if last != "0" else "1")
+
+
+@pytest.fixture
+def study(tmp_path):
+    """A bare study folder, a study.yaml and nothing else: what ``planner.files`` needs to
+    find a study's root. A module with a study of its own (test_circulate) defines its own."""
+    folder = tmp_path / "study"
+    folder.mkdir()
+    (folder / "study.yaml").write_text("study: {}\n", encoding="utf-8")
+    return folder

@@ -23,14 +23,6 @@ from planner.ledger import LEDGER_NAME
 ROUND = "2027-1"
 
 
-@pytest.fixture
-def study(tmp_path):
-    folder = tmp_path / "study"
-    folder.mkdir()
-    (folder / "study.yaml").write_text("study: {}\n", encoding="utf-8")
-    return folder
-
-
 def _mode(path):
     return stat.S_IMODE(os.lstat(path).st_mode)
 

@@ -218,14 +218,6 @@ def test_many_forms_killed_after_the_commit_are_completed_by_the_next_receive(
 
 # --- files.write_many ----------------------------------------------------------------------
 
-@pytest.fixture
-def study(tmp_path):
-    folder = tmp_path / "study"
-    folder.mkdir()
-    (folder / "study.yaml").write_text("study: {}\n", encoding="utf-8")
-    return folder
-
-
 def _targets(study, count=6):
     folder = study / "rounds" / ROUND / "results"
     return [(folder / f"f{i}.txt", f"file {i}\n".encode() * (i + 1)) for i in range(count)]

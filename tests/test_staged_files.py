@@ -17,14 +17,6 @@ from planner import files
 from planner.errors import PlannerError
 
 
-@pytest.fixture
-def study(tmp_path):
-    folder = tmp_path / "study"
-    folder.mkdir()
-    (folder / "study.yaml").write_text("study: {}\n", encoding="utf-8")
-    return folder
-
-
 def _targets(study, count=5):
     folder = study / "rounds" / "R1" / "report"
     return [folder / f"letter-L{i}.pdf" for i in range(count)]
