@@ -542,6 +542,8 @@ def _key_section(s: Mapping[str, Any], to: Addressee, t: Texts) -> list[Any]:
         if len(slots) <= NAMED_MISSING:
             return ", ".join(name_of(slot) for slot in slots)
         labs = {slot.partition("@")[0] for slot in slots}
+        if len(labs) == len(codes_of):
+            return t("opening.count_all", total=len(codes_of))
         return t("opening.count_yours" if to.lab in labs else "opening.count_others",
                  count=len(labs), total=len(codes_of))
 

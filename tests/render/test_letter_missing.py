@@ -122,7 +122,7 @@ def test_a_letter_gives_the_count_and_its_own_among_them_and_no_code(forced, lab
     text = _text(out / f"letter-{lab}.pdf")
     t = language.texts(LANGUAGES[LABS.index(lab)])
     part = _key_part(text, t)
-    said = t("opening.count_yours", count=14, total=14)
+    said = t("opening.count_all", total=14)  # every participant: "all 14", not "14 of 14"
     assert _flat(said) in part
     # the sentence from the time on, in the laboratory's language
     assert _flat(t("opening.forced", when="WHEN", why=t("opening.reason",
