@@ -122,3 +122,33 @@ def pdf_text(path: Path) -> list[str]:
 def secret_words(study: Any) -> list[str]:
     """Return every material id and description of the study: text no participant may see."""
     return [w for m in study.materials for w in (m.id, m.description)]
+
+
+def long_table(head: list[Any], *extra: tuple[Any, ...]) -> tuple[list[list[Any]], Any]:
+    """Return (rows, style) of a table long enough to run over pages, its heading ``head``
+    repeated: numbers, a cell in two lines, paragraphs in some cells, fonts, alignments,
+    a colour and a background of our table style, and ``extra`` style commands."""
+    from reportlab.lib.colors import HexColor
+    from reportlab.platypus import Paragraph
+
+    from planner.render import _layout
+
+    st = _layout.styles()
+    rows = [head]
+    for i in range(70):
+        rows.append([f"M{i:02d}", f"{10 + i / 7:.4g}", "12,5 ± 0,3" if i % 3 else "-",
+                     Paragraph(f"<b>z</b> = {i / 10 - 3:.2f}", st["cell"]) if i % 11 == 0
+                     else f"z' = {i / 10 - 3:.2f}", "satisfactory" if i % 5 else "questionable"])
+    style = _layout.table_style(extra=[
+        ("FONT", (0, 1), (-1, -1), _layout.FONT, 8),
+        ("ALIGN", (1, 0), (-1, -1), "RIGHT"),
+        ("ALIGN", (4, 0), (4, -1), "CENTRE"),
+        ("VALIGN", (2, 0), (2, -1), "TOP"),
+        ("VALIGN", (3, 0), (3, -1), "BOTTOM"),
+        ("FONT", (0, 5), (-1, 5), _layout.BOLD, 8),
+        ("FONT", (2, 1), (2, -1), _layout.MONO_REGULAR, 7),
+        ("TEXTCOLOR", (1, 7), (1, 9), HexColor("#b03a2e")),
+        ("BACKGROUND", (4, 3), (4, 3), HexColor("#e8d9b0")),
+        *extra,
+    ])
+    return rows, style

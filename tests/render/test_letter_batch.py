@@ -172,28 +172,13 @@ def _table_document(path: Path, make) -> Path:
     from reportlab.platypus import Paragraph, SimpleDocTemplate, Spacer
 
     from planner.render import _layout
+    from tests.render.conftest import long_table
 
-    st = _layout.styles()
-    head = ["material", "x_pt", "a long heading\nin two lines",
-            Paragraph("a heading that wraps in its column", st["cell"]), "band"]
-    rows = [head]
-    for i in range(70):  # long enough to run over three pages, the heading repeated
-        rows.append([f"M{i:02d}", f"{10 + i / 7:.4g}", "12,5 ± 0,3" if i % 3 else "-",
-                     Paragraph(f"<b>z</b> = {i / 10 - 3:.2f}", st["cell"]) if i % 11 == 0
-                     else f"z' = {i / 10 - 3:.2f}", "satisfactory" if i % 5 else "questionable"])
-    style = _layout.table_style(extra=[
-        ("FONT", (0, 1), (-1, -1), _layout.FONT, 8),
-        ("ALIGN", (1, 0), (-1, -1), "RIGHT"),
-        ("ALIGN", (4, 0), (4, -1), "CENTRE"),
-        ("VALIGN", (2, 0), (2, -1), "TOP"),
-        ("VALIGN", (3, 0), (3, -1), "BOTTOM"),
-        ("FONT", (0, 5), (-1, 5), _layout.BOLD, 8),
-        ("FONT", (2, 1), (2, -1), _layout.MONO_REGULAR, 7),
-        ("TEXTCOLOR", (1, 7), (1, 9), HexColor("#b03a2e")),
+    rows, style = long_table(
+        ["material", "x_pt", "a long heading\nin two lines",
+         Paragraph("a heading that wraps in its column", _layout.styles()["cell"]), "band"],
         ("TOPPADDING", (0, 0), (-1, -1), 2.2), ("BOTTOMPADDING", (0, 0), (-1, -1), 2.2),
-        ("BACKGROUND", (4, 3), (4, 3), HexColor("#e8d9b0")),
-        ("BACKGROUND", (0, 40), (2, 60), HexColor("#f3e2dd")),  # over a page break
-    ])
+        ("BACKGROUND", (0, 40), (2, 60), HexColor("#f3e2dd")))  # over a page break
     _layout.fonts_ready()
     SimpleDocTemplate(str(path), pagesize=A4).build(
         [Spacer(1, 300), make(rows, [70, 60, 110, 90, 90], style)])
