@@ -1015,13 +1015,17 @@ def homogeneity_command(
                                    f"{kind} form to record", _where(path))
             read.append((kind, path, homogeneity.read_values(study, round_id, kind,
                                                              checks[kind], path)))
+        # Every copy on disk before anything is recorded: a disk that refuses one leaves the
+        # ledger as it was (a copy is named by its SHA-256, so one written twice is the same).
+        stored = []
+        for kind, path, data in read:
+            copy = folder / "host" / "checks" / f"{kind}-{data['sha256'][:12]}{path.suffix}"
+            files.write_bytes(copy, _read_bytes(path), root=study_dir, private=True)
+            stored.append(str(copy.relative_to(folder)))
         if waive is not None:
             homogeneity.waive(ledger, round_id, waive)
-        for kind, path, data in read:
-            stored = folder / "host" / "checks" / f"{kind}-{data['sha256'][:12]}{path.suffix}"
-            files.write_bytes(stored, _read_bytes(path), root=study_dir, private=True)
-            homogeneity.record(ledger, round_id, kind, {**data, "stored": str(
-                stored.relative_to(folder))})
+        for (kind, _, data), copy_name in zip(read, stored, strict=True):
+            homogeneity.record(ledger, round_id, kind, {**data, "stored": copy_name})
         previous = homogeneity.previous_sigma(study_dir, ledger, round_id)
         found = homogeneity.assess(study, checks, ledger, round_id, previous=previous)
         gate = homogeneity.shipping_gate(study, ledger, round_id, checks, previous=previous,

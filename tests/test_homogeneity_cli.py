@@ -356,3 +356,37 @@ def test_the_blank_form_sent_back_unfilled_is_one_line(example_dir, runner, pass
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and "is empty" in lines[0] and "119 more rows" in lines[0], lines
     assert _events(example_dir, "homogeneity-form") == []
+
+
+def test_a_disk_that_refuses_a_copy_records_neither_form_nor_waiver(example_dir, runner,
+                                                                    passphrase, clock,
+                                                                    tmp_path, monkeypatch):
+    # Both forms and a waiver in one call, and the disk full when the second copy is
+    # written: nothing is in the ledger, so the same call can simply be made again.
+    import errno
+
+    from planner import files
+
+    _planned(runner, example_dir)
+    form = write(tmp_path, "h.csv", homogeneity_filled(example_dir))
+    stab = write(tmp_path, "s.csv", homogeneity_filled(example_dir, kind="stability"))
+    real, calls = files.write_bytes, []
+
+    def full(path, data, **kwargs):
+        calls.append(path)
+        if len(calls) == 2:
+            raise files.explain(OSError(errno.ENOSPC, "No space left on device"), path)
+        return real(path, data, **kwargs)
+
+    monkeypatch.setattr(files, "write_bytes", full)
+    args = ("homogeneity", example_dir, "--round", ROUND, form, "--stability", stab,
+            "--waive", "the batch was checked by the supplier")
+    result = run_cli(runner, *args)
+    monkeypatch.undo()
+    assert result.exit_code == 2
+    assert "no space left on the disk" in result.stderr
+    for kind in ("homogeneity-form", "stability-form", "homogeneity-waived"):
+        assert _events(example_dir, kind) == [], kind
+    _ok(runner, *args)
+    assert [len(_events(example_dir, k)) for k in
+            ("homogeneity-form", "stability-form", "homogeneity-waived")] == [1, 1, 1]
